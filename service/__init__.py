@@ -1,0 +1,3 @@
+"""Evenhand: a governed decision-policy service."""
+
+__version__ = "0.1.0"

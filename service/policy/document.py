@@ -1,0 +1,306 @@
+"""The policy document: what a policy version says, validated by pydantic.
+
+A document is plain JSON. Once stored as a version it never changes; its content hash is
+computed over :func:`canonical_json`.
+
+Rules are non-decreasing step functions from score to the probability of the action. A
+rule is a list of steps ``{"from": s, "probability": p}``: at scores ``>= s`` the action is
+taken with probability ``p`` (until the next step); below the first step, never. A plain
+cut ``t`` is ``[{"from": t, "probability": 1}]``; a band ``[lo, hi)`` with probability
+``p`` is ``[{"from": lo, "probability": p}, {"from": hi, "probability": 1}]``.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+from enum import StrEnum
+from typing import Annotated, Any, Literal, Self
+
+from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
+
+GROUP_SEPARATOR = "|"
+"""Joins attribute values into a group key: ``quarry-hill|es``."""
+
+
+class Criterion(StrEnum):
+    MAX_UTILITY = "max-utility"
+    SINGLE_CUT = "single-cut"
+    DEMOGRAPHIC_PARITY = "demographic-parity"
+    EQUAL_OPPORTUNITY = "equal-opportunity"
+    PREDICTIVE_EQUALITY = "predictive-equality"
+    EQUALIZED_ODDS = "equalized-odds"
+    FOUR_FIFTHS = "four-fifths"
+
+
+Probability = Annotated[float, Field(ge=0.0, le=1.0, allow_inf_nan=False)]
+FiniteFloat = Annotated[float, Field(allow_inf_nan=False)]
+NonNegative = Annotated[float, Field(ge=0.0, allow_inf_nan=False)]
+Slug = Annotated[str, Field(pattern=r"^[a-z0-9][a-z0-9._-]{0,63}$")]
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True, populate_by_name=True)
+
+
+class Step(_Strict):
+    """From score ``start`` upward the action is taken with ``probability``."""
+
+    start: FiniteFloat = Field(alias="from")
+    probability: Probability
+
+
+class Rule(_Strict):
+    """A non-decreasing step function from score to P(action)."""
+
+    steps: list[Step] = Field(min_length=1)
+
+    @field_validator("steps")
+    @classmethod
+    def _monotone(cls, steps: list[Step]) -> list[Step]:
+        for i in range(1, len(steps)):
+            prev, cur = steps[i - 1], steps[i]
+            if not cur.start > prev.start:
+                raise ValueError(
+                    f"steps[{i}].from ({cur.start}) must be greater than "
+                    f"steps[{i - 1}].from ({prev.start}): breakpoints must be in increasing order"
+                )
+            if cur.probability < prev.probability:
+                raise ValueError(
+                    f"steps[{i}].probability ({cur.probability}) is below "
+                    f"steps[{i - 1}].probability ({prev.probability}): a rule must never "
+                    "lower the probability of the action as the score rises"
+                )
+        return steps
+
+    @classmethod
+    def cut(cls, threshold: float) -> Rule:
+        return cls(steps=[Step(start=threshold, probability=1.0)])
+
+    @classmethod
+    def band(cls, low: float, high: float, probability: float) -> Rule:
+        return cls(
+            steps=[Step(start=low, probability=probability), Step(start=high, probability=1.0)]
+        )
+
+    def probability_at(self, score: float) -> float:
+        """P(action | score): the probability of the last step at or below ``score``."""
+        p = 0.0
+        for step in self.steps:
+            if score >= step.start:
+                p = step.probability
+            else:
+                break
+        return p
+
+    def describe(self) -> str:
+        """The rule in words, for diffs and reports."""
+        parts: list[str] = []
+        for i, step in enumerate(self.steps):
+            upper = self.steps[i + 1].start if i + 1 < len(self.steps) else None
+            where = (
+                f"score >= {step.start:g}"
+                if upper is None
+                else (f"{step.start:g} <= score < {upper:g}")
+            )
+            if step.probability == 1.0:
+                parts.append(f"always act at {where}")
+            elif step.probability == 0.0:
+                parts.append(f"never act at {where}")
+            else:
+                parts.append(f"act with probability {step.probability:g} at {where}")
+        first = self.steps[0].start
+        return f"never act below {first:g}; " + "; ".join(parts)
+
+
+class Costs(_Strict):
+    """Error costs the policy was derived with (per case, in any one unit)."""
+
+    false_positive: NonNegative
+    false_negative: NonNegative
+
+    @model_validator(mode="after")
+    def _not_both_zero(self) -> Self:
+        if self.false_positive == 0 and self.false_negative == 0:
+            raise ValueError("costs: false_positive and false_negative cannot both be 0")
+        return self
+
+
+class Fallback(_Strict):
+    """What to do for a group without a rule of its own.
+
+    Tried in order: the parent group (drop attributes from the right, so
+    ``quarry-hill|es`` falls back to ``quarry-hill``) when ``use_parent`` is set, then the
+    ``default`` rule when there is one. If neither gives a rule the evaluation is refused.
+    ``unknown_groups`` says whether a group that is not in ``groups.known`` may fall back at
+    all, or is refused outright.
+    """
+
+    use_parent: bool = False
+    default: Rule | None = None
+    unknown_groups: Literal["fallback", "refuse"] = "refuse"
+
+
+class Groups(_Strict):
+    attributes: list[Slug] = Field(min_length=1, description="request attributes forming the key")
+    known: list[str] = Field(min_length=1, description="group keys, values joined by '|'")
+    fallback: Fallback = Fallback()
+
+    @field_validator("attributes")
+    @classmethod
+    def _unique_attributes(cls, attributes: list[str]) -> list[str]:
+        if len(set(attributes)) != len(attributes):
+            raise ValueError("groups.attributes: each attribute may appear only once")
+        return attributes
+
+    @model_validator(mode="after")
+    def _known_keys_match_attributes(self) -> Self:
+        seen: set[str] = set()
+        for i, key in enumerate(self.known):
+            parts = key.split(GROUP_SEPARATOR)
+            if len(parts) != len(self.attributes) or any(not p for p in parts):
+                raise ValueError(
+                    f"groups.known[{i}] ({key!r}) must have one non-empty value per attribute "
+                    f"{self.attributes}, joined by {GROUP_SEPARATOR!r}"
+                )
+            if key in seen:
+                raise ValueError(f"groups.known[{i}] ({key!r}) is listed twice")
+            seen.add(key)
+        return self
+
+
+class GroupTarget(_Strict):
+    """Rates the policy was expected to produce for one group on its calibration data."""
+
+    n: int | None = Field(default=None, ge=0)
+    prevalence: Probability | None = None
+    action_rate: Probability
+    tpr: Probability
+    fpr: Probability
+
+
+class Targets(_Strict):
+    criterion: Criterion
+    tolerance: NonNegative = 0.0
+    expected_cost: NonNegative | None = None
+    groups: dict[str, GroupTarget] = Field(default_factory=dict)
+
+
+class PolicyDocument(_Strict):
+    """One policy: how a score becomes a recommendation, for every group."""
+
+    name: Slug
+    description: str = ""
+    score_meaning: str = Field(description="what the score estimates, e.g. P(readmission in 30 d)")
+    score_range: tuple[FiniteFloat, FiniteFloat] = (0.0, 1.0)
+    action_label: str = Field(min_length=1)
+    no_action_label: str = Field(min_length=1)
+    favourable: Literal["action", "no-action"] = Field(
+        description="which outcome of the decision is favourable to the person"
+    )
+    outcome_observed_after: Literal["both", "action", "no-action"] = Field(
+        default="both",
+        description="after which decisions the outcome can be observed (selective labels)",
+    )
+    costs: Costs
+    groups: Groups
+    rules: dict[str, Rule] = Field(description="group key (or parent key) -> rule")
+    targets: Targets | None = None
+
+    @model_validator(mode="after")
+    def _consistent(self) -> Self:
+        low, high = self.score_range
+        if not low < high:
+            raise ValueError(f"score_range: low ({low}) must be below high ({high})")
+        n_attr = len(self.groups.attributes)
+        known = set(self.groups.known)
+        named = dict(self.rules)
+        if self.groups.fallback.default is not None:
+            named["fallback.default"] = self.groups.fallback.default
+        for key, rule in named.items():
+            where = "groups.fallback.default" if key == "fallback.default" else f"rules[{key!r}]"
+            if key != "fallback.default":
+                parts = key.split(GROUP_SEPARATOR)
+                is_parent = len(parts) < n_attr and any(
+                    k.split(GROUP_SEPARATOR)[: len(parts)] == parts for k in known
+                )
+                if key not in known and not is_parent:
+                    raise ValueError(
+                        f"{where}: not a known group (groups.known) nor the parent of one"
+                    )
+            for i, step in enumerate(rule.steps):
+                if not low <= step.start <= high:
+                    raise ValueError(
+                        f"{where}.steps[{i}].from ({step.start}) is outside "
+                        f"score_range [{low}, {high}]"
+                    )
+        for key in self.groups.known:
+            if resolve_rule_key(self, key) is None:
+                raise ValueError(
+                    f"groups.known: {key!r} has no rule and no fallback reaches one "
+                    "(add rules[...], groups.fallback.use_parent or groups.fallback.default)"
+                )
+        if self.targets is not None:
+            for key in self.targets.groups:
+                if key not in known:
+                    raise ValueError(f"targets.groups[{key!r}]: not a known group")
+        return self
+
+    def group_key(self, attributes: dict[str, Any]) -> str:
+        """The group key for a request's attributes (only the policy's attributes count)."""
+        from service.policy.errors import MissingAttribute
+
+        values: list[str] = []
+        for attr in self.groups.attributes:
+            if attr not in attributes or attributes[attr] is None:
+                raise MissingAttribute(
+                    f"attribute {attr!r} is required by policy {self.name!r}",
+                    field=f"attributes.{attr}",
+                )
+            value = str(attributes[attr])
+            if GROUP_SEPARATOR in value or not value:
+                raise MissingAttribute(
+                    f"attribute {attr!r} must be a non-empty value without {GROUP_SEPARATOR!r}",
+                    field=f"attributes.{attr}",
+                )
+            values.append(value)
+        return GROUP_SEPARATOR.join(values)
+
+
+def resolve_rule_key(policy: PolicyDocument, group: str) -> str | None:
+    """Which rule applies to ``group``: its own key, a parent key, ``"default"`` or None."""
+    if group in policy.rules:
+        return group
+    fallback = policy.groups.fallback
+    if group not in policy.groups.known and fallback.unknown_groups == "refuse":
+        return None
+    if fallback.use_parent:
+        parts = group.split(GROUP_SEPARATOR)
+        for length in range(len(parts) - 1, 0, -1):
+            parent = GROUP_SEPARATOR.join(parts[:length])
+            if parent in policy.rules:
+                return parent
+    if fallback.default is not None:
+        return DEFAULT_RULE_KEY
+    return None
+
+
+DEFAULT_RULE_KEY = "default"
+"""The ``rule`` reported when the fallback default rule was used."""
+
+
+def canonical_json(value: Any) -> bytes:
+    """Compact, key-sorted JSON bytes: the form hashes are computed over."""
+    return json.dumps(
+        value, sort_keys=True, separators=(",", ":"), ensure_ascii=False, allow_nan=False
+    ).encode("utf-8")
+
+
+def document_json(policy: PolicyDocument) -> dict[str, Any]:
+    """The document as plain JSON data, with the public field names (``from``)."""
+    return policy.model_dump(mode="json", by_alias=True, exclude_none=True)
+
+
+def content_hash(policy: PolicyDocument) -> str:
+    """SHA-256 hex digest of the canonical JSON of the document."""
+    return hashlib.sha256(canonical_json(document_json(policy))).hexdigest()
