@@ -112,11 +112,15 @@ def expected_counts_by_group(
         raise ValueError("probabilities, outcomes and group_codes must have the same length")
     if len(p) and (np.any(p < 0.0) or np.any(p > 1.0) or not np.all(np.isfinite(p))):
         raise ValueError("probabilities must lie in [0, 1]")
-    positives = np.bincount(codes, weights=y.astype(np.float64), minlength=n_groups)
-    negatives = np.bincount(codes, weights=(~y).astype(np.float64), minlength=n_groups)
-    tp = np.bincount(codes, weights=np.where(y, p, 0.0), minlength=n_groups)
-    fp = np.bincount(codes, weights=np.where(y, 0.0, p), minlength=n_groups)
+    positives = _sum_by(codes, y.astype(np.float64), n_groups)
+    negatives = _sum_by(codes, (~y).astype(np.float64), n_groups)
+    tp = _sum_by(codes, np.where(y, p, 0.0), n_groups)
+    fp = _sum_by(codes, np.where(y, 0.0, p), n_groups)
     return ExpectedCounts(tp=tp, fp=fp, fn=positives - tp, tn=negatives - fp)
+
+
+def _sum_by(codes: npt.NDArray[np.intp], weights: FloatArray, n_groups: int) -> FloatArray:
+    return np.bincount(codes, weights=weights, minlength=n_groups).astype(np.float64)
 
 
 def chouldechova_fpr(prevalence: float, ppv: float, fnr: float) -> float:
