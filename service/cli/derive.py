@@ -41,14 +41,9 @@ DEFAULT_MIN_GROUP_SIZE = 50
 DEFAULT_HOLDOUT_SEED = 20261201
 
 
-def _non_negative(text: str) -> float:
-    try:
-        value = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
+def _check_non_negative(option: str, value: float) -> None:
     if not (math.isfinite(value) and value >= 0):
-        raise argparse.ArgumentTypeError(f"{text!r} must be a finite number >= 0")
-    return value
+        raise CliError(f"{option} {value}: must be a finite number >= 0")
 
 
 def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
@@ -65,11 +60,9 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
         "--group", required=True, action="append", help="group column (repeat for an intersection)"
     )
     p.add_argument("--criterion", required=True, choices=[c.value for c in Criterion])
-    p.add_argument("--cost-fp", required=True, type=_non_negative, help="cost of acting when y=0")
-    p.add_argument("--cost-fn", required=True, type=_non_negative, help="cost of not acting at y=1")
-    p.add_argument(
-        "--tolerance", type=_non_negative, default=0.0, help="bound on every pairwise gap (0)"
-    )
+    p.add_argument("--cost-fp", required=True, type=float, help="cost of acting when y=0")
+    p.add_argument("--cost-fn", required=True, type=float, help="cost of not acting at y=1")
+    p.add_argument("--tolerance", type=float, default=0.0, help="bound on every pairwise gap (0)")
     p.add_argument("--holdout", type=float, help="fraction held out to check the rates (0..1)")
     p.add_argument("--holdout-seed", type=int, default=DEFAULT_HOLDOUT_SEED)
     p.add_argument(
@@ -116,6 +109,11 @@ def run(args: argparse.Namespace) -> int:
             raise CliError(f"--group {col!r}: attribute names must be lowercase slugs")
     if len(set(args.group)) != len(args.group):
         raise CliError("--group: each column may be named only once")
+    _check_non_negative("--cost-fp", args.cost_fp)
+    _check_non_negative("--cost-fn", args.cost_fn)
+    # Every criterion is met at the chance diagonal, so only a negative tolerance is infeasible.
+    if not (math.isfinite(args.tolerance) and args.tolerance >= 0):
+        raise CliError(f"--tolerance {args.tolerance}: infeasible, must be a finite number >= 0")
     if args.cost_fp == 0 and args.cost_fn == 0:
         raise CliError("--cost-fp and --cost-fn cannot both be 0")
     if args.holdout is not None and not 0.0 < args.holdout < 1.0:

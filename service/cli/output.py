@@ -26,12 +26,14 @@ def check_targets(paths: list[Path]) -> None:
 def write_all(outputs: dict[Path, bytes]) -> None:
     """Write every output to a temporary file beside it, then rename them all into place."""
     staged: list[tuple[str, Path]] = []
+    mode = 0o666 & ~_umask()  # mkstemp makes 0600 files; outputs get the usual mode
     try:
         for path, data in outputs.items():
             fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
             staged.append((tmp, path))
             with os.fdopen(fd, "wb") as f:
                 f.write(data)
+            os.chmod(tmp, mode)
         for tmp, path in staged:
             os.replace(tmp, path)
     except OSError as exc:
@@ -39,3 +41,9 @@ def write_all(outputs: dict[Path, bytes]) -> None:
             if os.path.exists(tmp):
                 os.unlink(tmp)
         raise CliError(f"cannot write output: {exc}") from exc
+
+
+def _umask() -> int:
+    current = os.umask(0)
+    os.umask(current)
+    return current

@@ -19,7 +19,10 @@ _MAX_PLOTTED_POINTS = 400
 
 def _svg(fig: Any) -> str:
     buf = io.StringIO()
-    fig.savefig(buf, format="svg", bbox_inches="tight")
+    # No date or creator metadata and fixed element ids: the same report gives the same page.
+    metadata = {"Creator": None, "Date": None, "Format": None, "Type": None}
+    with matplotlib.rc_context({"svg.hashsalt": "evenhand"}):
+        fig.savefig(buf, format="svg", bbox_inches="tight", metadata=metadata)
     plt.close(fig)
     text = buf.getvalue()
     return text[text.index("<svg") :]  # drop the XML prolog: the SVG sits inside HTML
