@@ -487,7 +487,9 @@ def cut_mixture(hull: Hull, point: LpPoint) -> list[tuple[float, float]]:
     mixture: dict[float, float] = {}
     for weight, k, frac in ((beta, ka, frac_a), (1.0 - beta, kb, frac_b)):
         for cut, w in ((hull.cuts[k], weight * (1.0 - frac)), (hull.cuts[k + 1], weight * frac)):
-            if w > 1e-15 and np.isfinite(cut):
+            # Weights below 1e-12 are rounding dust of beta or frac; they would only add
+            # steps with probabilities like 1e-15 that change no rate measurably.
+            if w > 1e-12 and np.isfinite(cut):
                 mixture[float(cut)] = mixture.get(float(cut), 0.0) + w
     return sorted(mixture.items())
 

@@ -83,3 +83,18 @@ def test_rates_module_satisfies_chouldechova_identity() -> None:
 def test_rejects_probabilities_outside_unit_interval() -> None:
     with pytest.raises(ValueError, match="probabilities"):
         expected_counts(np.array([0.5, 1.5]), np.array([0, 1]))
+
+
+def test_wilson_for_expected_rates_matches_statsmodels() -> None:
+    # Reference: statsmodels proportion_confint(method="wilson") (Seabold & Perktold 2010),
+    # which accepts a non-integer count: the holdout applies Wilson (1927) to expected rates.
+    from statsmodels.stats.proportion import proportion_confint
+
+    from service.policy.intervals import wilson_interval_for_rate
+
+    for count, nobs in [(81.0, 263), (37.25, 148), (0.0, 20), (19.5, 20), (3.3, 7)]:
+        ours = wilson_interval_for_rate(count / nobs, nobs)
+        ref = proportion_confint(count, nobs, alpha=0.05, method="wilson")
+        assert ours == pytest.approx(ref, abs=1e-12)
+    # Newcombe 1998a Table I, secondary (GUIDE.md section 7): 81/263 -> 0.2553-0.3662.
+    assert wilson_interval_for_rate(81 / 263, 263) == pytest.approx((0.2553, 0.3662), abs=5e-5)
