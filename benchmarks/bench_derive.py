@@ -137,8 +137,13 @@ def bench_draws(n: int = 300_000) -> dict[str, float]:
             h.update(m)
             h.digest()
 
-    t_floor = best_of(floor)
-    t_ours = best_of(lambda: keyed_draws(secret, "fernhollow-follow-up", 3, ids))
+    # Interleaved rounds, best of each: other processes on the machine then slow both alike.
+    t_floor = t_ours = float("inf")
+    for _ in range(5):
+        t_floor = min(t_floor, best_of(floor, repeat=1))
+        t_ours = min(
+            t_ours, best_of(lambda: keyed_draws(secret, "fernhollow-follow-up", 3, ids), 1)
+        )
     return {
         "cases": n,
         "floor_per_s": n / t_floor,

@@ -546,16 +546,23 @@ def solve(prepared: Prepared, criterion: Criterion, tolerance: float = 0.0) -> S
     units = [prepared.pooled] if criterion is Criterion.SINGLE_CUT else prepared.units
     points, lp_cost = solve_lp(units, criterion, tolerance, settings, len(data.scores))
     rules: dict[str, Rule] = {}
+    unit_probabilities: dict[str, FloatArray] = {}
     for unit, point in zip(units, points, strict=True):
         rule = rule_for_point(unit.hull, point, low)
-        _check_rule(unit, rule, point, data)
+        unit_probabilities[unit.key] = _check_rule(unit, rule, point, data)
         rules[unit.key] = rule
 
     groups: list[GroupResult] = []
-    probabilities = np.empty(len(data.scores))
-    for key, rows in zip(data.group_keys, prepared.group_rows, strict=True):
-        rule_key = POOLED_UNIT if criterion is Criterion.SINGLE_CUT else prepared.rule_key_of[key]
-        probabilities[rows] = rule_probabilities(rules[rule_key], data.scores[rows])
+    if criterion is Criterion.SINGLE_CUT:
+        probabilities = unit_probabilities[POOLED_UNIT]  # the pooled unit is every row, in order
+    else:
+        probabilities = np.empty(len(data.scores))
+        for key, rows in zip(data.group_keys, prepared.group_rows, strict=True):
+            rule_key = prepared.rule_key_of[key]
+            if rule_key == key:  # the group's own unit: same rows, already evaluated
+                probabilities[rows] = unit_probabilities[key]
+            else:
+                probabilities[rows] = rule_probabilities(rules[rule_key], data.scores[rows])
     counts = expected_counts_by_group(
         probabilities, data.outcomes, data.group_codes, len(data.group_keys)
     )
@@ -577,7 +584,8 @@ def solve(prepared: Prepared, criterion: Criterion, tolerance: float = 0.0) -> S
     )
 
 
-def _check_rule(unit: Unit, rule: Rule, point: LpPoint, data: CalibrationData) -> None:
+def _check_rule(unit: Unit, rule: Rule, point: LpPoint, data: CalibrationData) -> FloatArray:
+    """The rule's probabilities on the unit's rows, once its rates are seen to match."""
     probabilities = rule_probabilities(rule, data.scores[unit.rows])
     counts = expected_counts(probabilities, data.outcomes[unit.rows])
     gap = max(abs(float(counts.fpr[0]) - point.fpr), abs(float(counts.tpr[0]) - point.tpr))
@@ -585,6 +593,7 @@ def _check_rule(unit: Unit, rule: Rule, point: LpPoint, data: CalibrationData) -
         raise RuntimeError(
             f"internal error: the rule for {unit.key!r} misses the LP point by {gap:.3g}"
         )
+    return probabilities
 
 
 # --- Comparison and frontier ------------------------------------------------------------
