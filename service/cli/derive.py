@@ -29,12 +29,12 @@ from service.policy.derive import (
     compare,
     frontier,
     prepare,
-    roc_curve,
     solve,
 )
 from service.policy.derive_report import build_report
 from service.policy.document import Criterion, document_json
 from service.policy.holdout import holdout_rates, stratified_split, subset
+from service.policy.roc import roc_curve
 
 _SLUG = re.compile(r"^[a-z0-9][a-z0-9._-]{0,63}$")
 DEFAULT_MIN_GROUP_SIZE = 50

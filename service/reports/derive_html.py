@@ -12,7 +12,7 @@ import matplotlib.pyplot as plt
 import numpy as np
 from jinja2 import Environment, PackageLoader, select_autoescape
 
-from service.policy.derive import RocCurve, upper_hull
+from service.policy.roc import RocCurve, upper_hull
 
 _MAX_PLOTTED_POINTS = 400
 

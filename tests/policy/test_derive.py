@@ -17,11 +17,10 @@ from service.policy.derive import (
     compare,
     frontier,
     prepare,
-    roc_curve,
     solve,
-    upper_hull,
 )
 from service.policy.document import Criterion
+from service.policy.roc import roc_curve, upper_hull
 from service.policy.rules import rule_probabilities
 from tests.policy.reference_lp import reference_cost
 
@@ -286,3 +285,34 @@ def test_negative_tolerance_is_refused() -> None:
     prepared = prepare(make_data(s, y, g), DeriveSettings(1.0, 4.0))
     with pytest.raises(DeriveError, match="tolerance"):
         solve(prepared, Criterion.DEMOGRAPHIC_PARITY, -0.01)
+
+
+@pytest.mark.parametrize(("seed", "decimals"), [(60, None), (61, 2), (62, 1)])
+def test_upper_hull_matches_qhull(seed: int, decimals: int | None) -> None:
+    # Reference: scipy.spatial.ConvexHull (Qhull; Barber, Dobkin & Huhdanpaa 1996, ACM TOMS
+    # 22:469-483) on the integer (FP, TP) counts. The upper hull is (0, 0), (N, P) and the
+    # Qhull vertices strictly above the chance diagonal TP/P = FP/N.
+    from scipy.spatial import ConvexHull
+
+    s, y, _ = synthetic(seed, 4000, 1, decimals)
+    curve = roc_curve(s, y)
+    points = np.column_stack([curve.fp, curve.tp]).astype(float)
+    qhull = ConvexHull(points)
+    above = {
+        (int(curve.fp[i]), int(curve.tp[i]))
+        for i in qhull.vertices
+        if curve.tp[i] * curve.negatives > curve.fp[i] * curve.positives
+    }
+    ends = {(0, 0), (curve.negatives, curve.positives)}
+    ours = {(int(curve.fp[i]), int(curve.tp[i])) for i in upper_hull(curve)}
+    assert ours == above | ends
+
+
+def test_monotone_chain_fallback_agrees_with_pruning() -> None:
+    # The fallback (Andrew's monotone chain, common practice) must give the same vertices.
+    from service.policy.roc import _monotone_chain
+
+    s, y, _ = synthetic(63, 5000, 1, 3)
+    curve = roc_curve(s, y)
+    every = np.arange(len(curve.fp), dtype=np.intp)
+    np.testing.assert_array_equal(_monotone_chain(curve.fp, curve.tp, every), upper_hull(curve))
