@@ -93,7 +93,8 @@ def build_report(
             "criterion": solution.criterion.value,
             "points": [{"tolerance": t, "expected_cost": c} for t, c in frontier],
         },
-        "fallbacks": list(prepared.notes),
+        # One rule for everyone needs no fallback; the notes belong to the per-group criteria.
+        "fallbacks": [] if POOLED_UNIT in solution.rules else list(prepared.notes),
         "cautions": list(CAUTIONS),
     }
     if holdout is not None:
