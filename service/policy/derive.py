@@ -253,6 +253,10 @@ def solve_lp(
     - "gap" (every pairwise |q_u - q_v| <= eps): lo <= q_u <= hi for all u, hi - lo <= eps;
     - "ratio" (four-fifths on the favourable rate r_u, r_u >= 0.8 r_v - eps for all u, v):
       r_u <= M for all u and 0.8 M - r_u <= eps, M an auxiliary variable.
+
+    Each unit's cost is weighted by the rows it governs. For a parent unit that is an
+    estimate (its rates come from the whole parent population, its weight from the small
+    groups using it); :func:`solve` always recomputes the expected cost exactly from the rules.
     """
     sizes = [len(u.hull.fpr) for u in units]
     offsets = np.concatenate([[0], np.cumsum(sizes)]).astype(int)
