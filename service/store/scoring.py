@@ -17,7 +17,7 @@ from dataclasses import dataclass
 from datetime import datetime
 from typing import Any, Protocol
 
-from sqlalchemy import select
+from sqlalchemy import bindparam, select
 from sqlalchemy.orm import Session, aliased
 
 from service.errors import Conflict, PayloadTooLarge, ServiceError, Unprocessable
@@ -113,19 +113,24 @@ class Plan:
 
 _Shadow = aliased(PolicyVersion)
 
+# Hot-path statements, built once (only their parameters change per request).
+_PLAN_QUERY = (
+    select(PolicyVersion.version, PolicyVersion.content_hash, _Shadow.version, _Shadow.content_hash)
+    .outerjoin(PolicyShadow, PolicyShadow.name == PolicyVersion.name)
+    .outerjoin(
+        _Shadow, (_Shadow.name == PolicyShadow.name) & (_Shadow.version == PolicyShadow.version)
+    )
+    .where(
+        PolicyVersion.name == bindparam("name"),
+        PolicyVersion.status == VersionStatus.ACTIVE.value,
+    )
+)
+_EXISTING_QUERY = select(*_STORED).where(Recommendation.request_id == bindparam("request_id"))
+
 
 def resolve_plan(session: Session, name: str, ctx: ScoringContext) -> Plan:
     """The active (and shadow) version of ``name``, read in the request's transaction."""
-    row = session.execute(
-        select(
-            PolicyVersion.version, PolicyVersion.content_hash, _Shadow.version, _Shadow.content_hash
-        )
-        .outerjoin(PolicyShadow, PolicyShadow.name == PolicyVersion.name)
-        .outerjoin(
-            _Shadow, (_Shadow.name == PolicyShadow.name) & (_Shadow.version == PolicyShadow.version)
-        )
-        .where(PolicyVersion.name == name, PolicyVersion.status == VersionStatus.ACTIVE.value)
-    ).first()
+    row = session.connection().execute(_PLAN_QUERY, {"name": name}).first()
     if row is None:
         exists = session.scalar(select(PolicyVersion.id).where(PolicyVersion.name == name).limit(1))
         if exists is None:
@@ -184,9 +189,7 @@ def _replay(row: Any, req: ScoreInput, fp: str) -> dict[str, Any]:
 
 def find_existing(session: Session, req: ScoreInput) -> dict[str, Any] | None:
     """The stored answer for this request_id (None if new); 409 if the body differs."""
-    row = session.execute(
-        select(*_STORED).where(Recommendation.request_id == req.request_id)
-    ).first()
+    row = session.connection().execute(_EXISTING_QUERY, {"request_id": req.request_id}).first()
     return None if row is None else _replay(row, req, fingerprint(req))
 
 
