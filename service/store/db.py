@@ -10,8 +10,11 @@ makes concurrent writers queue instead of failing.
 Within one process the queue is a plain mutex held from BEGIN to the end of COMMIT or
 ROLLBACK: SQLite allows one writer at a time anyway, and threads waiting on a mutex are woken
 at once, where SQLite's busy handler polls with growing sleeps (requests then stall for
-seconds under load). Across processes the busy timeout still applies. PostgreSQL takes no
-such lock: its transactions run concurrently.
+seconds under load). Across processes the busy timeout still applies. A transaction that
+only reads can say so with :func:`begin_read_only` (a deferred BEGIN: a WAL snapshot, no
+lock). A thread must not open a second write transaction while it holds one (the mutex is
+not re-entrant; after the busy timeout the second gets a 503). PostgreSQL takes no such
+lock: its transactions run concurrently.
 """
 
 from __future__ import annotations
@@ -25,6 +28,7 @@ from sqlalchemy import Engine, create_engine, event
 from sqlalchemy.engine import make_url
 from sqlalchemy.orm import Session, sessionmaker
 
+from service.errors import ServiceUnavailable
 from service.settings import Settings
 
 READ_ONLY = "evenhand_read_only"
@@ -92,7 +96,7 @@ def _configure_sqlite(engine: Engine, settings: Settings) -> None:
             connection.exec_driver_sql("BEGIN")  # deferred: a snapshot read, no lock
             return
         dbapi_connection = connection.connection.dbapi_connection
-        dbapi_connection.acquire_write_lock()
+        dbapi_connection.acquire_write_lock(busy_ms / 1000)
         try:
             connection.exec_driver_sql("BEGIN IMMEDIATE")
         except BaseException:
@@ -107,8 +111,13 @@ def _serialized_connection_class() -> type[sqlite3.Connection]:
     class SerializedConnection(sqlite3.Connection):
         _holds_lock = False
 
-        def acquire_write_lock(self) -> None:
-            lock.acquire()
+        def acquire_write_lock(self, timeout: float) -> None:
+            if not lock.acquire(timeout=timeout if timeout > 0 else -1):
+                raise ServiceUnavailable(
+                    f"the database stayed busy for {timeout:g} s "
+                    "(EVENHAND_SQLITE_BUSY_TIMEOUT_MS); retry",
+                    code="database_busy",
+                )
             self._holds_lock = True
 
         def release_write_lock(self) -> None:
