@@ -5,6 +5,11 @@ is designated; the shadow result is recorded, never returned). The record and th
 are built from the same values, and a repeated ``request_id`` is answered from the stored
 record, so a replayed request gets byte-for-byte the same answer. Nothing here commits: the
 caller commits once, before it responds.
+
+The active version is looked up on every request, in the request's own transaction (one
+indexed query that also finds the shadow): correct across worker processes and rollbacks
+without any invalidation. Only the parsed documents are cached, by content hash, since a
+stored version never changes.
 """
 
 from __future__ import annotations
@@ -25,7 +30,7 @@ from service.policy.document import PolicyDocument, resolve_rule_key
 from service.policy.errors import PolicyError
 from service.policy.rules import check_score, evaluate, evaluate_batch, rule_for
 from service.store.models import PolicyShadow, PolicyVersion, Recommendation, VersionStatus, utcnow
-from service.store.recommendations import insert_records
+from service.store.recommendations import insert_new_record, insert_records
 from service.store.records import format_timestamp, payload_leaf_hash
 
 AttributeValue = str | int | float | bool
@@ -261,20 +266,35 @@ def _now() -> tuple[datetime, str]:
 def recommend(
     session: Session, req: ScoreInput, ctx: ScoringContext
 ) -> tuple[dict[str, Any], bool]:
-    """(response, created). A replay of a stored request returns it with created=False."""
-    existing = find_existing(session, req)
-    if existing is not None:
-        return existing, False
-    plan = resolve_plan(session, req.policy, ctx)
-    d = evaluate(
-        plan.document, plan.version, req.score, dict(req.attributes), req.case_id, ctx.secret
-    )
+    """(response, created). A replay of a stored request returns it with created=False.
+
+    New requests, the common case, cost two statements: the plan lookup and an insert that
+    skips a request_id already stored (``ON CONFLICT DO NOTHING``, which also settles two
+    concurrent requests with one request_id without an error). Only when nothing was
+    inserted, or the request cannot be decided, is the stored record looked up: a replay
+    gets its stored answer even after the policy moved on, a reuse with another body a 409.
+    The single write is the last statement, so a failure leaves nothing to undo.
+    """
+    try:
+        plan = resolve_plan(session, req.policy, ctx)
+        d = evaluate(
+            plan.document, plan.version, req.score, dict(req.attributes), req.case_id, ctx.secret
+        )
+    except (ServiceError, PolicyError):
+        existing = find_existing(session, req)
+        if existing is not None:
+            return existing, False
+        raise
     decision = (d.group, d.rule, float(d.probability), float(d.draw), bool(d.action))
     row, response = _row(
         plan, req, fingerprint(req), decision, _shadow_one(plan, req, ctx.secret), _now()
     )
-    insert_records(session, [row])
-    return response, True
+    if insert_new_record(session, row):
+        return response, True
+    existing = find_existing(session, req)
+    if existing is None:  # cannot happen: the conflicting row is visible once we waited on it
+        raise Conflict("request_id is being recorded concurrently; retry", code="concurrent_change")
+    return existing, False
 
 
 # -- batches ------------------------------------------------------------------------------
