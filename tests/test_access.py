@@ -12,6 +12,8 @@ import pytest
 from fastapi.testclient import TestClient
 from sqlalchemy.orm import Session, sessionmaker
 
+from service.app import create_app
+from service.settings import Settings
 from service.store import keys
 from tests.helpers import bearer
 
@@ -100,3 +102,24 @@ def test_malformed_authorization_headers(client: TestClient, make_key: Callable[
     for value in [token, f"Basic {token}", "Bearer", "Bearer  ", f"Token {token}"]:
         r = client.post("/v1/recommendations", json={}, headers={"Authorization": value})
         assert r.status_code == 401, value
+
+
+@pytest.mark.parametrize("ttl", [0.0, 3600.0])
+def test_revocation_and_the_key_cache(
+    settings: Settings,
+    make_key: Callable[..., str],
+    session_factory: sessionmaker[Session],
+    ttl: float,
+) -> None:
+    token = make_key("admin", "soon-revoked")
+    with TestClient(create_app(settings.model_copy(update={"auth_cache_seconds": ttl}))) as c:
+        assert c.get("/v1/policies", headers=bearer(token)).status_code == 200
+        with session_factory() as session:
+            keys.revoke_key(session, "soon-revoked")
+            session.commit()
+        after = c.get("/v1/policies", headers=bearer(token)).status_code
+    # Without the cache the next request is refused; with it, the process keeps trusting a
+    # key it has just checked until the entry expires (docs/operations.md).
+    assert after == (401 if ttl == 0 else 200)
+    with TestClient(create_app(settings)) as fresh:
+        assert fresh.get("/v1/policies", headers=bearer(token)).status_code == 401
