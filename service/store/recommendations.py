@@ -13,6 +13,7 @@ from __future__ import annotations
 import json
 from collections.abc import Sequence
 from datetime import UTC, datetime
+from operator import itemgetter
 from typing import Any
 
 from sqlalchemy import Dialect, Table
@@ -26,6 +27,11 @@ INSERT_COLUMNS: tuple[str, ...] = tuple(
     c.name for c in TABLE.columns if c.name not in ("id", "seal_id")
 )
 _JSON = json.JSONEncoder(separators=(",", ":"), ensure_ascii=False, allow_nan=False)
+ATTRIBUTES_JSON = "_attributes_json"
+"""Optional row key: the attributes already encoded (the JSON column's text)."""
+_GET_ROW = itemgetter(*INSERT_COLUMNS)
+_ATTRIBUTES_AT = INSERT_COLUMNS.index("attributes")
+_ISSUED_AT = INSERT_COLUMNS.index("issued_at")
 _SQL_CACHE: dict[tuple[str, bool], str] = {}
 
 
@@ -72,13 +78,16 @@ def _driver_params(dialect: Dialect, rows: Sequence[dict[str, Any]]) -> list[Any
                 text = stamps[value] = value.astimezone(UTC).strftime("%Y-%m-%d %H:%M:%S.%f")
             return text
 
-        return [
-            tuple(
-                row[c]
-                if c not in ("attributes", "issued_at")
-                else (_JSON.encode(row[c]) if c == "attributes" else stamp(row[c]))
-                for c in INSERT_COLUMNS
-            )
-            for row in rows
-        ]
-    return [{**row, "attributes": _JSON.encode(row["attributes"])} for row in rows]
+        params: list[Any] = []
+        for row in rows:
+            values = list(_GET_ROW(row))
+            values[_ATTRIBUTES_AT] = _attributes_text(row)
+            values[_ISSUED_AT] = stamp(row["issued_at"])
+            params.append(tuple(values))
+        return params
+    return [{**row, "attributes": _attributes_text(row)} for row in rows]
+
+
+def _attributes_text(row: dict[str, Any]) -> str:
+    text = row.get(ATTRIBUTES_JSON)
+    return text if text is not None else _JSON.encode(row["attributes"])

@@ -20,6 +20,7 @@ import uuid
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from datetime import datetime
+from functools import lru_cache
 from typing import Any, Protocol
 
 from sqlalchemy import bindparam, select
@@ -30,8 +31,8 @@ from service.policy.document import PolicyDocument, resolve_rule_key
 from service.policy.errors import PolicyError
 from service.policy.rules import check_score, evaluate, evaluate_batch, rule_for
 from service.store.models import PolicyShadow, PolicyVersion, Recommendation, VersionStatus, utcnow
-from service.store.recommendations import insert_new_record, insert_records
-from service.store.records import format_timestamp, payload_leaf_hash
+from service.store.recommendations import ATTRIBUTES_JSON, insert_new_record, insert_records
+from service.store.records import encode_attributes, format_timestamp, payload_leaf_hash
 
 AttributeValue = str | int | float | bool
 
@@ -203,6 +204,12 @@ def _stored_attributes(plan: Plan, attributes: Mapping[str, AttributeValue]) -> 
     return {a: attributes[a] for a in plan.stored_attributes if a in attributes}
 
 
+@lru_cache(maxsize=4096)
+def _attributes_json(items: tuple[tuple[str, type, Any], ...]) -> str:
+    # Keyed with the value's type: 1, 1.0 and True are equal as keys but not as JSON.
+    return encode_attributes({k: v for k, _, v in items})
+
+
 def _shadow_one(plan: Plan, req: ScoreInput, secret: bytes) -> tuple[float | None, bool | None]:
     if plan.shadow is None or plan.shadow_version is None:
         return None, None
@@ -229,6 +236,8 @@ def _row(
     second pass over the row (verify recomputes it from the stored row the general way).
     """
     group, rule, probability, draw, action = decision
+    attributes = _stored_attributes(plan, req.attributes)
+    attributes_json = _attributes_json(tuple((k, type(v), v) for k, v in attributes.items()))
     payload = {
         "recommendation_id": str(uuid.uuid4()),
         "request_id": req.request_id,
@@ -236,7 +245,7 @@ def _row(
         "policy": plan.name,
         "version": plan.version,
         "score": float(req.score),
-        "attributes": _stored_attributes(plan, req.attributes),
+        "attributes": attributes,
         "group": group,
         "rule": rule,
         "probability": probability,
@@ -253,7 +262,8 @@ def _row(
         **payload,
         "issued_at": issued_at[0],
         "request_fingerprint": fp,
-        "record_hash": payload_leaf_hash(payload),
+        "record_hash": payload_leaf_hash(payload, attributes_json),
+        ATTRIBUTES_JSON: attributes_json,
     }
     return row, response
 
