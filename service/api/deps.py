@@ -1,0 +1,139 @@
+"""Request dependencies: the database session and the bearer-token role check.
+
+Routers use ``DbSession`` for the session (``ReadSession`` when the route only reads) and
+``require_role("audit")`` (or several roles) for access. The session never commits on its
+own: a route that writes calls ``session.commit()`` itself before it returns, so the write is
+durable before the response is sent (FastAPI runs the exit code of yield dependencies only
+after the response by default).
+"""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Callable, Iterator
+from dataclasses import dataclass
+from typing import Annotated
+
+from fastapi import Depends, Request
+from sqlalchemy.orm import Session, sessionmaker
+
+from service.errors import Forbidden, Unauthorized
+from service.settings import Settings
+from service.store import keys
+from service.store.db import begin_read_only
+
+
+def get_settings(request: Request) -> Settings:
+    settings: Settings = request.app.state.settings
+    return settings
+
+
+def get_session(request: Request) -> Iterator[Session]:
+    factory: sessionmaker[Session] = request.app.state.session_factory
+    session = factory()
+    try:
+        yield session
+    finally:
+        # Anything not committed by the route is rolled back here.
+        session.close()
+
+
+def get_read_session(request: Request) -> Iterator[Session]:
+    """A session whose transaction only reads: on SQLite a WAL snapshot without the write
+    lock, so long reads (reports, listings) never hold up scoring."""
+    factory: sessionmaker[Session] = request.app.state.session_factory
+    session = factory()
+    try:
+        begin_read_only(session)
+        yield session
+    finally:
+        session.close()
+
+
+DbSession = Annotated[Session, Depends(get_session, scope="function")]
+ReadSession = Annotated[Session, Depends(get_read_session, scope="function")]
+AppSettings = Annotated[Settings, Depends(get_settings)]
+
+
+def _bearer_token(request: Request) -> str:
+    header = request.headers.get("authorization")
+    if not header:
+        raise Unauthorized("missing bearer token: send 'Authorization: Bearer <token>'")
+    scheme, _, token = header.partition(" ")
+    if scheme.lower() != "bearer" or not token.strip():
+        raise Unauthorized("malformed Authorization header: expected 'Bearer <token>'")
+    return token.strip()
+
+
+@dataclass(frozen=True, slots=True)
+class Caller:
+    """The authenticated API key: ``name`` is the actor recorded in histories."""
+
+    id: int
+    name: str
+    role: str
+
+
+class KeyCache:
+    """Live keys seen in the last ``ttl`` seconds, by token hash (0 turns it off).
+
+    Spares the hot path a database round trip per request; the price is that a revoked key
+    may still be accepted for up to ``ttl`` seconds in a process that saw it just before.
+    Unknown and revoked tokens are never cached: they always ask the database.
+    """
+
+    def __init__(self, ttl: float, max_entries: int = 10_000) -> None:
+        self.ttl = ttl
+        self._max = max_entries
+        self._entries: dict[str, tuple[Caller, float]] = {}
+
+    def get(self, digest: str) -> Caller | None:
+        entry = self._entries.get(digest)
+        if entry is None or entry[1] < time.monotonic():
+            return None
+        return entry[0]
+
+    def put(self, digest: str, caller: Caller) -> None:
+        if self.ttl <= 0:
+            return
+        if len(self._entries) >= self._max:
+            self._entries.clear()
+        self._entries[digest] = (caller, time.monotonic() + self.ttl)
+
+
+def _lookup(request: Request, session: Session, token: str) -> Caller | None:
+    cache: KeyCache | None = getattr(request.app.state, "key_cache", None)
+    digest = keys.hash_token(token)
+    if cache is not None:
+        cached = cache.get(digest)
+        if cached is not None:
+            return cached
+    # A short read of its own: the route's writes start a fresh (write) transaction.
+    begin_read_only(session)
+    found = keys.authenticate(session, token)
+    caller = None if found is None else Caller(found.id, found.name, found.role)
+    session.rollback()
+    if caller is not None and cache is not None:
+        cache.put(digest, caller)
+    return caller
+
+
+def require_role(*roles: str) -> Callable[..., Caller]:
+    """A dependency that admits keys with one of ``roles`` and returns the caller."""
+    allowed = frozenset(roles)
+
+    def check(request: Request, session: DbSession) -> Caller:
+        key = _lookup(request, session, _bearer_token(request))
+        if key is None:
+            raise Unauthorized("unknown or revoked API key")
+        if key.role not in allowed:
+            needs = ", ".join(sorted(allowed))
+            raise Forbidden(f"a {key.role!r} key may not call this endpoint (needs: {needs})")
+        return key
+
+    return check
+
+
+ScoringKey = Annotated[Caller, Depends(require_role("scoring"))]
+AuditKey = Annotated[Caller, Depends(require_role("audit"))]
+AdminKey = Annotated[Caller, Depends(require_role("admin"))]

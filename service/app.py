@@ -1,0 +1,60 @@
+"""The application factory: settings in, a FastAPI app out; the lifespan owns the engine."""
+
+from __future__ import annotations
+
+from collections.abc import AsyncIterator
+from contextlib import asynccontextmanager
+
+from fastapi import FastAPI
+
+from service.api import health, policies, recommendations
+from service.api.deps import KeyCache
+from service.api.errors import install_error_handlers
+from service.api.limits import BodySizeLimit
+from service.settings import Settings
+from service.store.committer import GroupCommitter
+from service.store.db import create_db_engine, create_session_factory, is_sqlite
+from service.store.scoring import DocumentCache, ScoringContext
+
+
+def create_app(settings: Settings | None = None) -> FastAPI:
+    settings = settings or Settings()
+    # Refuse to start without the draw secret: every recommendation needs it.
+    secret = settings.draw_key()
+
+    @asynccontextmanager
+    async def lifespan(app: FastAPI) -> AsyncIterator[None]:
+        engine = create_db_engine(settings)
+        app.state.engine = engine
+        app.state.session_factory = create_session_factory(engine)
+        # SQLite: single recommendations share transactions (one fsync per group).
+        committer = GroupCommitter(engine) if is_sqlite(settings.database_url) else None
+        app.state.committer = committer
+        if committer is not None:
+            committer.start()
+        # Background tasks (e.g. the periodic log sealer) start here and stop after `yield`.
+        try:
+            yield
+        finally:
+            if committer is not None:
+                committer.stop()
+            engine.dispose()
+
+    app = FastAPI(
+        title="Evenhand",
+        version="0.1.0",
+        description=(
+            "Governed decision policies, a keyed scoring API and a tamper-evident decision "
+            "log. Recommendations are advisory: a person decides and can override."
+        ),
+        lifespan=lifespan,
+    )
+    app.state.settings = settings
+    app.state.scoring = ScoringContext(secret, DocumentCache(), settings.max_batch_items)
+    app.state.key_cache = KeyCache(settings.auth_cache_seconds)
+    install_error_handlers(app)
+    app.include_router(health.router)
+    app.include_router(policies.router)
+    app.include_router(recommendations.router)
+    app.add_middleware(BodySizeLimit, max_bytes=settings.max_body_bytes)
+    return app

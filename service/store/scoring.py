@@ -1,0 +1,467 @@
+"""Scoring: turn requests into recommendations and their decision log records.
+
+A request is evaluated against the policy's active version (and its shadow version, if one
+is designated; the shadow result is recorded, never returned). The record and the response
+are built from the same values, and a repeated ``request_id`` is answered from the stored
+record, so a replayed request gets byte-for-byte the same answer. Nothing here commits: the
+caller commits once, before it responds.
+
+The active version is looked up on every request, in the request's own transaction (one
+indexed query that also finds the shadow): correct across worker processes and rollbacks
+without any invalidation. Only the parsed documents are cached, by content hash, since a
+stored version never changes.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import threading
+import uuid
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from datetime import datetime
+from functools import lru_cache
+from typing import Any, Protocol
+
+from sqlalchemy import bindparam, select
+from sqlalchemy.orm import Session, aliased
+
+from service.errors import Conflict, PayloadTooLarge, ServiceError, Unprocessable
+from service.policy.document import PolicyDocument, resolve_rule_key
+from service.policy.errors import PolicyError
+from service.policy.rules import check_score, evaluate, evaluate_batch, rule_for
+from service.store.models import PolicyShadow, PolicyVersion, Recommendation, VersionStatus, utcnow
+from service.store.recommendations import ATTRIBUTES_JSON, insert_new_record, insert_records
+from service.store.records import encode_attributes, format_timestamp, payload_leaf_hash
+
+AttributeValue = str | int | float | bool
+
+
+class ScoreInput(Protocol):
+    @property
+    def request_id(self) -> str: ...
+    @property
+    def case_id(self) -> str: ...
+    @property
+    def policy(self) -> str: ...
+    @property
+    def score(self) -> float: ...
+    @property
+    def attributes(self) -> Mapping[str, AttributeValue]: ...
+
+
+RESPONSE_FIELDS = (
+    "recommendation_id",
+    "request_id",
+    "case_id",
+    "policy",
+    "version",
+    "group",
+    "rule",
+    "probability",
+    "draw",
+    "action",
+    "action_label",
+    "issued_at",
+)
+
+_STORED = [getattr(Recommendation, f) for f in RESPONSE_FIELDS if f != "issued_at"] + [
+    Recommendation.issued_at,
+    Recommendation.request_fingerprint,
+]
+
+
+class DocumentCache:
+    """Parsed policy documents by (name, version, content hash).
+
+    Stored versions never change, so an entry never goes stale; the content hash in the key
+    makes even a database that was emptied and refilled safe.
+    """
+
+    def __init__(self) -> None:
+        self._docs: dict[tuple[str, int, str], PolicyDocument] = {}
+        self._lock = threading.Lock()
+
+    def get(self, session: Session, name: str, version: int, digest: str) -> PolicyDocument:
+        key = (name, version, digest)
+        doc = self._docs.get(key)
+        if doc is not None:
+            return doc
+        data = session.scalar(
+            select(PolicyVersion.document).where(
+                PolicyVersion.name == name, PolicyVersion.version == version
+            )
+        )
+        doc = PolicyDocument.model_validate(data)
+        with self._lock:
+            self._docs[key] = doc
+        return doc
+
+
+@dataclass(frozen=True, slots=True)
+class ScoringContext:
+    secret: bytes
+    documents: DocumentCache
+    max_batch_items: int = 10_000
+
+
+@dataclass(frozen=True, slots=True)
+class Plan:
+    """What a policy's requests are evaluated with right now."""
+
+    name: str
+    version: int
+    document: PolicyDocument
+    shadow_version: int | None
+    shadow: PolicyDocument | None
+    stored_attributes: tuple[str, ...]
+
+
+_Shadow = aliased(PolicyVersion)
+
+# Hot-path statements, built once (only their parameters change per request).
+_PLAN_QUERY = (
+    select(PolicyVersion.version, PolicyVersion.content_hash, _Shadow.version, _Shadow.content_hash)
+    .outerjoin(PolicyShadow, PolicyShadow.name == PolicyVersion.name)
+    .outerjoin(
+        _Shadow, (_Shadow.name == PolicyShadow.name) & (_Shadow.version == PolicyShadow.version)
+    )
+    .where(
+        PolicyVersion.name == bindparam("name"),
+        PolicyVersion.status == VersionStatus.ACTIVE.value,
+    )
+)
+_EXISTING_QUERY = select(*_STORED).where(Recommendation.request_id == bindparam("request_id"))
+
+
+def resolve_plan(session: Session, name: str, ctx: ScoringContext) -> Plan:
+    """The active (and shadow) version of ``name``, read in the request's transaction."""
+    row = session.connection().execute(_PLAN_QUERY, {"name": name}).first()
+    if row is None:
+        exists = session.scalar(select(PolicyVersion.id).where(PolicyVersion.name == name).limit(1))
+        if exists is None:
+            raise Unprocessable(f"no policy named {name!r}", code="unknown_policy", field="policy")
+        raise Conflict(
+            f"policy {name!r} has no active version: an admin must activate one",
+            code="no_active_version",
+            field="policy",
+        )
+    version, digest, shadow_version, shadow_digest = row
+    document = ctx.documents.get(session, name, version, digest)
+    shadow = None
+    if shadow_version is not None:
+        shadow = ctx.documents.get(session, name, shadow_version, shadow_digest)
+    attrs = list(document.groups.attributes)
+    if shadow is not None:
+        attrs += [a for a in shadow.groups.attributes if a not in attrs]
+    return Plan(name, int(version), document, shadow_version, shadow, tuple(attrs))
+
+
+def fingerprint(req: ScoreInput) -> str:
+    """A digest of the request body, to tell a replay from a reuse of its request_id.
+
+    Only ever compared with itself, so it need not be canonical JSON: ``repr`` of a tuple of
+    str, float and sorted (name, value) pairs is deterministic and keeps 1, 1.0 and True apart.
+    """
+    body = (
+        req.request_id,
+        req.case_id,
+        req.policy,
+        float(req.score),
+        sorted(req.attributes.items()),
+    )
+    return hashlib.sha256(repr(body).encode("utf-8")).hexdigest()
+
+
+def response_of(values: Any) -> dict[str, Any]:
+    """The API response for a record (a row or a mapping of its values)."""
+    get = values.__getitem__ if isinstance(values, Mapping) else values._mapping.__getitem__
+    out = {f: get(f) for f in RESPONSE_FIELDS}
+    out["issued_at"] = format_timestamp(out["issued_at"])
+    out["action"] = bool(out["action"])
+    return out
+
+
+def _replay(row: Any, req: ScoreInput, fp: str) -> dict[str, Any]:
+    if row.request_fingerprint != fp:
+        raise Conflict(
+            f"request_id {req.request_id!r} was already used with a different body; use a new "
+            "request_id for a new request",
+            code="idempotency_conflict",
+            field="request_id",
+        )
+    return response_of(row)
+
+
+def find_existing(session: Session, req: ScoreInput) -> dict[str, Any] | None:
+    """The stored answer for this request_id (None if new); 409 if the body differs."""
+    row = session.connection().execute(_EXISTING_QUERY, {"request_id": req.request_id}).first()
+    return None if row is None else _replay(row, req, fingerprint(req))
+
+
+def _stored_attributes(plan: Plan, attributes: Mapping[str, AttributeValue]) -> dict[str, Any]:
+    # Keep only what the policy needs (data minimisation); the fingerprint covers the rest.
+    return {a: attributes[a] for a in plan.stored_attributes if a in attributes}
+
+
+@lru_cache(maxsize=4096)
+def _attributes_json(items: tuple[tuple[str, type, Any], ...]) -> str:
+    # Keyed with the value's type: 1, 1.0 and True are equal as keys but not as JSON.
+    return encode_attributes({k: v for k, _, v in items})
+
+
+def _shadow_one(plan: Plan, req: ScoreInput, secret: bytes) -> tuple[float | None, bool | None]:
+    if plan.shadow is None or plan.shadow_version is None:
+        return None, None
+    try:
+        d = evaluate(
+            plan.shadow, plan.shadow_version, req.score, dict(req.attributes), req.case_id, secret
+        )
+    except PolicyError:
+        return None, None  # the shadow could not decide; recorded as such
+    return d.probability, d.action
+
+
+def _row(
+    plan: Plan,
+    req: ScoreInput,
+    fp: str,
+    decision: tuple[str, str, float, float, bool],
+    shadow: tuple[float | None, bool | None],
+    issued_at: tuple[datetime, str],
+) -> tuple[dict[str, Any], dict[str, Any]]:
+    """(row to insert, response) for one decision, both from the same values.
+
+    The payload is built directly in ``record_payload`` form, so the leaf hash needs no
+    second pass over the row (verify recomputes it from the stored row the general way).
+    """
+    group, rule, probability, draw, action = decision
+    attributes = _stored_attributes(plan, req.attributes)
+    attributes_json = _attributes_json(tuple((k, type(v), v) for k, v in attributes.items()))
+    payload = {
+        "recommendation_id": str(uuid.uuid4()),
+        "request_id": req.request_id,
+        "case_id": req.case_id,
+        "policy": plan.name,
+        "version": plan.version,
+        "score": float(req.score),
+        "attributes": attributes,
+        "group": group,
+        "rule": rule,
+        "probability": probability,
+        "draw": draw,
+        "action": action,
+        "action_label": plan.document.action_label if action else plan.document.no_action_label,
+        "issued_at": issued_at[1],
+        "shadow_version": plan.shadow_version,
+        "shadow_probability": shadow[0],
+        "shadow_action": shadow[1],
+    }
+    response = {f: payload[f] for f in RESPONSE_FIELDS}
+    row = {
+        **payload,
+        "issued_at": issued_at[0],
+        "request_fingerprint": fp,
+        "record_hash": payload_leaf_hash(payload, attributes_json),
+        ATTRIBUTES_JSON: attributes_json,
+    }
+    return row, response
+
+
+def _now() -> tuple[datetime, str]:
+    now = utcnow()
+    return now, format_timestamp(now)
+
+
+def recommend(
+    session: Session, req: ScoreInput, ctx: ScoringContext
+) -> tuple[dict[str, Any], bool]:
+    """(response, created). A replay of a stored request returns it with created=False.
+
+    New requests, the common case, cost two statements: the plan lookup and an insert that
+    skips a request_id already stored (``ON CONFLICT DO NOTHING``, which also settles two
+    concurrent requests with one request_id without an error). Only when nothing was
+    inserted, or the request cannot be decided, is the stored record looked up: a replay
+    gets its stored answer even after the policy moved on, a reuse with another body a 409.
+    The single write is the last statement, so a failure leaves nothing to undo.
+    """
+    try:
+        plan = resolve_plan(session, req.policy, ctx)
+        d = evaluate(
+            plan.document, plan.version, req.score, dict(req.attributes), req.case_id, ctx.secret
+        )
+    except (ServiceError, PolicyError):
+        existing = find_existing(session, req)
+        if existing is not None:
+            return existing, False
+        raise
+    decision = (d.group, d.rule, float(d.probability), float(d.draw), bool(d.action))
+    row, response = _row(
+        plan, req, fingerprint(req), decision, _shadow_one(plan, req, ctx.secret), _now()
+    )
+    if insert_new_record(session, row):
+        return response, True
+    existing = find_existing(session, req)
+    if existing is None:  # cannot happen: the conflicting row is visible once we waited on it
+        raise Conflict("request_id is being recorded concurrently; retry", code="concurrent_change")
+    return existing, False
+
+
+# -- batches ------------------------------------------------------------------------------
+
+
+def _item_error(i: int, exc: ServiceError | PolicyError) -> dict[str, Any]:
+    field = f"items.{i}" + (f".{exc.field}" if exc.field else "")
+    return {"code": exc.code, "message": exc.message, "field": field}
+
+
+def recommend_batch(
+    session: Session, items: Sequence[ScoreInput], ctx: ScoringContext
+) -> tuple[list[dict[str, Any]], int]:
+    """(responses in input order, number newly written). All or nothing: any bad item -> 422."""
+    if len(items) > ctx.max_batch_items:
+        raise PayloadTooLarge(
+            f"a batch holds at most {ctx.max_batch_items} items (got {len(items)}); split it",
+            code="batch_too_large",
+            field="items",
+        )
+    errors: list[dict[str, Any]] = []
+    seen: dict[str, int] = {}
+    for i, req in enumerate(items):
+        if req.request_id in seen:
+            errors.append(
+                {
+                    "code": "duplicate_request_id",
+                    "message": f"request_id {req.request_id!r} is also used by "
+                    f"items.{seen[req.request_id]}",
+                    "field": f"items.{i}.request_id",
+                }
+            )
+        else:
+            seen[req.request_id] = i
+    fingerprints = [fingerprint(r) for r in items]
+    responses: list[dict[str, Any] | None] = [None] * len(items)
+    ids = list(seen)
+    for start in range(0, len(ids), 1000):
+        chunk = ids[start : start + 1000]
+        for row in session.execute(select(*_STORED).where(Recommendation.request_id.in_(chunk))):
+            i = seen[row.request_id]
+            try:
+                responses[i] = _replay(row, items[i], fingerprints[i])
+            except Conflict as exc:
+                errors.append(_item_error(i, exc))
+
+    new_by_policy: dict[str, list[int]] = {}
+    for i, req in enumerate(items):
+        if responses[i] is None:
+            new_by_policy.setdefault(req.policy, []).append(i)
+
+    plans: dict[str, Plan] = {}
+    groups: dict[int, str] = {}
+    for name, members in new_by_policy.items():
+        try:
+            plans[name] = plan = resolve_plan(session, name, ctx)
+        except ServiceError as exc:
+            errors.extend(_item_error(i, exc) for i in members)
+            continue
+        rule_ok: dict[str, bool] = {}
+        for i in members:
+            req = items[i]
+            try:
+                check_score(plan.document, req.score)
+                g = plan.document.group_key(req.attributes)  # type: ignore[arg-type]
+                if g not in rule_ok:
+                    rule_ok[g] = resolve_rule_key(plan.document, g) is not None
+                if not rule_ok[g]:
+                    rule_for(plan.document, g)  # raises the engine's UnknownGroup
+                groups[i] = g
+            except PolicyError as exc:
+                errors.append(_item_error(i, exc))
+    if errors:
+        errors.sort(key=lambda e: _item_index(e["field"]))
+        first = errors[0]
+        raise Unprocessable(
+            f"{len(errors)} item(s) refused, nothing was written; first: {first['field']}: "
+            f"{first['message']}",
+            code="invalid_batch",
+            field=first["field"],
+            details=errors,
+        )
+
+    issued_at = _now()
+    rows_out: list[dict[str, Any]] = []
+    for name, idx in new_by_policy.items():
+        new_rows, outs = _evaluate_policy_rows(
+            plans[name], idx, items, groups, fingerprints, issued_at, ctx
+        )
+        rows_out.extend(new_rows)
+        for i, out in zip(idx, outs, strict=True):
+            responses[i] = out
+    if rows_out:
+        insert_records(session, rows_out)
+    return [r for r in responses if r is not None], len(rows_out)
+
+
+def _item_index(field: str | None) -> int:
+    try:
+        return int((field or "").split(".")[1])
+    except (IndexError, ValueError):
+        return 0
+
+
+def _evaluate_policy_rows(
+    plan: Plan,
+    idx: list[int],
+    items: Sequence[ScoreInput],
+    groups: dict[int, str],
+    fingerprints: list[str],
+    issued_at: tuple[datetime, str],
+    ctx: ScoringContext,
+) -> tuple[list[dict[str, Any]], list[dict[str, Any]]]:
+    reqs = [items[i] for i in idx]
+    scores = [float(r.score) for r in reqs]
+    case_ids = [r.case_id for r in reqs]
+    main = evaluate_batch(
+        plan.document, plan.version, scores, [groups[i] for i in idx], case_ids, ctx.secret
+    )
+    shadow_p: list[float | None] = [None] * len(idx)
+    shadow_a: list[bool | None] = [None] * len(idx)
+    if plan.shadow is not None and plan.shadow_version is not None:
+        ok: list[int] = []
+        sgroups: list[str] = []
+        for j, r in enumerate(reqs):
+            try:
+                g = plan.shadow.group_key(r.attributes)  # type: ignore[arg-type]
+            except PolicyError:
+                continue
+            if (
+                resolve_rule_key(plan.shadow, g) is not None
+                and plan.shadow.score_range[0] <= r.score <= plan.shadow.score_range[1]
+            ):
+                ok.append(j)
+                sgroups.append(g)
+        if ok:
+            sb = evaluate_batch(
+                plan.shadow,
+                plan.shadow_version,
+                [scores[j] for j in ok],
+                sgroups,
+                [case_ids[j] for j in ok],
+                ctx.secret,
+            )
+            for k, j in enumerate(ok):
+                shadow_p[j] = float(sb.probability[k])
+                shadow_a[j] = bool(sb.action[k])
+    probs = main.probability.tolist()
+    draws = main.draw.tolist()
+    acts = main.action.tolist()
+    rows: list[dict[str, Any]] = []
+    outs: list[dict[str, Any]] = []
+    for j, r in enumerate(reqs):
+        decision = (main.group[j], main.rule[j], probs[j], draws[j], bool(acts[j]))
+        row, out = _row(
+            plan, r, fingerprints[idx[j]], decision, (shadow_p[j], shadow_a[j]), issued_at
+        )
+        rows.append(row)
+        outs.append(out)
+    return rows, outs
