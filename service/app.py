@@ -7,9 +7,10 @@ from contextlib import asynccontextmanager
 
 from fastapi import FastAPI
 
-from service.api import health
+from service.api import health, log
 from service.api.errors import install_error_handlers
 from service.api.limits import BodySizeLimit
+from service.audit.sealer import PeriodicSealer
 from service.settings import Settings
 from service.store.db import create_db_engine, create_session_factory
 
@@ -25,9 +26,12 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         app.state.engine = engine
         app.state.session_factory = create_session_factory(engine)
         # Background tasks (e.g. the periodic log sealer) start here and stop after `yield`.
+        sealer = PeriodicSealer(app.state.session_factory, settings.seal_interval_seconds)
+        sealer.start()
         try:
             yield
         finally:
+            await sealer.stop()
             engine.dispose()
 
     app = FastAPI(
@@ -42,5 +46,6 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.state.settings = settings
     install_error_handlers(app)
     app.include_router(health.router)
+    app.include_router(log.router)
     app.add_middleware(BodySizeLimit, max_bytes=settings.max_body_bytes)
     return app

@@ -1,87 +1,25 @@
-"""Databases and records for the decision log tests.
-
-``log_db`` runs a test on SQLite and on PostgreSQL: the PostgreSQL database has a random name,
-is created for the test and dropped after. Without a server the PostgreSQL case is skipped,
-except under ``CI=true``, where it fails.
-"""
+"""Records for the decision log tests, on the migrated databases of ``tests/conftest.py``."""
 
 from __future__ import annotations
 
-import os
 import uuid
-from collections.abc import Iterator
 from datetime import UTC, datetime, timedelta
-from pathlib import Path
 from typing import Any
 
-import pytest
-from sqlalchemy import Engine, create_engine, text
-from sqlalchemy.engine import make_url
+from sqlalchemy import Engine, text
 from sqlalchemy.orm import Session, sessionmaker
 
-from service.settings import Settings
-from service.store.db import create_db_engine, create_session_factory
-from service.store.models import Base, PolicyVersion
+from service.store.db import create_session_factory
+from service.store.models import PolicyVersion
 from service.store.records import record_leaf_hash
-
-POSTGRES_URL = os.environ.get(
-    "EVENHAND_TEST_POSTGRES_URL", "postgresql+psycopg://postgres@127.0.0.1:5432/test"
-)
-
-
-def _postgres_admin_engine() -> Engine:
-    return create_engine(POSTGRES_URL, isolation_level="AUTOCOMMIT", pool_pre_ping=True)
-
-
-def postgres_unavailable(reason: str) -> None:
-    if os.environ.get("CI", "").lower() == "true":
-        pytest.fail(f"PostgreSQL is required under CI=true: {reason}")
-    pytest.skip(f"PostgreSQL not reachable: {reason}")
-
-
-def create_postgres_database() -> str:
-    """A fresh empty database on the test server; its URL."""
-    name = f"evenhand_log_{uuid.uuid4().hex[:12]}"
-    admin = _postgres_admin_engine()
-    try:
-        with admin.connect() as conn:
-            conn.execute(text(f'CREATE DATABASE "{name}"'))
-    except Exception as exc:  # any connection failure means: no server
-        postgres_unavailable(str(exc).splitlines()[0])
-    finally:
-        admin.dispose()
-    return make_url(POSTGRES_URL).set(database=name).render_as_string(hide_password=False)
-
-
-def drop_postgres_database(url: str) -> None:
-    name = make_url(url).database
-    admin = _postgres_admin_engine()
-    try:
-        with admin.connect() as conn:
-            conn.execute(text(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)'))
-    finally:
-        admin.dispose()
-
-
-def database_url(kind: str, tmp_path: Path) -> Iterator[str]:
-    if kind == "sqlite":
-        yield f"sqlite:///{tmp_path / 'log.db'}"
-        return
-    url = create_postgres_database()
-    try:
-        yield url
-    finally:
-        drop_postgres_database(url)
 
 
 class LogDb:
-    """An engine over a fresh schema, with helpers to add policy versions and records."""
+    """An emptied migrated database with one policy version, and helpers to add records."""
 
-    def __init__(self, url: str) -> None:
-        self.url = url
-        self.engine = create_db_engine(Settings(database_url=url, draw_secret="test-secret"))
-        Base.metadata.create_all(self.engine)
-        self.sessions: sessionmaker[Session] = create_session_factory(self.engine)
+    def __init__(self, engine: Engine) -> None:
+        self.engine = engine
+        self.sessions: sessionmaker[Session] = create_session_factory(engine)
         self._counter = 0
         with self.sessions() as session:
             session.add(
@@ -146,6 +84,3 @@ class LogDb:
         """Raw SQL outside the application's code paths, as someone tampering would."""
         with self.engine.begin() as conn:
             return conn.execute(text(statement), params)
-
-    def close(self) -> None:
-        self.engine.dispose()

@@ -18,7 +18,7 @@ snapshot.
 from __future__ import annotations
 
 import hashlib
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from datetime import datetime
 from typing import Any, Literal
@@ -228,8 +228,21 @@ def _check_record(row: Any) -> str | None:
     return None
 
 
+Progress = Callable[[int], None]
+
+
+def _tick(result: VerifyResult, progress: Progress | None) -> None:
+    result.records_checked += 1
+    if progress is not None and result.records_checked % PAGE_SIZE == 0:
+        progress(result.records_checked)
+
+
 def _check_seal(
-    session: Session, seal: _SealView, previous_hash: str | None, result: VerifyResult
+    session: Session,
+    seal: _SealView,
+    previous_hash: str | None,
+    result: VerifyResult,
+    progress: Progress | None,
 ) -> Problem | None:
     builder = TreeBuilder()
     first = last = None
@@ -240,7 +253,7 @@ def _check_seal(
         builder.add_leaf_hash(bytes.fromhex(row.record_hash))
         first = int(row.id) if first is None else first
         last = int(row.id)
-        result.records_checked += 1
+        _tick(result, progress)
     if seal.previous_seal_hash != previous_hash:
         return Problem(
             "seal",
@@ -276,13 +289,18 @@ def _check_seal(
     return None
 
 
-def verify_log(session: Session, expected_seal_hash: str | None = None) -> VerifyResult:
+def verify_log(
+    session: Session,
+    expected_seal_hash: str | None = None,
+    progress: Progress | None = None,
+) -> VerifyResult:
     """Recompute every record hash, every seal root and the chain; stop at the first mismatch.
 
     The chain shows every change *behind* its last seal. Cutting the log back to an earlier
     seal (deleting the newest seals and their records) leaves a shorter chain that is
     consistent in itself; pass ``expected_seal_hash``, a seal hash kept outside the database
-    (see ``head_seal_hash``), to detect that too.
+    (see ``head_seal_hash``), to detect that too. ``progress`` is called with the number of
+    records checked so far, every few thousand records.
     """
     result = VerifyResult()
     seen: set[str] = set()
@@ -290,7 +308,7 @@ def verify_log(session: Session, expected_seal_hash: str | None = None) -> Verif
     session.commit()
     previous_hash: str | None = None
     for seal in seals:
-        problem = _check_seal(session, seal, previous_hash, result)
+        problem = _check_seal(session, seal, previous_hash, result, progress)
         if problem is not None:
             result.problem = problem
             return result
@@ -322,5 +340,5 @@ def verify_log(session: Session, expected_seal_hash: str | None = None) -> Verif
             result.problem = Problem("record", int(row.id), reason)
             return result
         result.unsealed_records += 1
-        result.records_checked += 1
+        _tick(result, progress)
     return result
