@@ -8,6 +8,7 @@ them.
 
 from __future__ import annotations
 
+import contextlib
 import os
 import signal
 import socket
@@ -116,10 +117,8 @@ class ServerProcess:
     def _signal_group(self, sig: signal.Signals) -> None:
         if self._proc is None or self._proc.poll() is not None:
             return
-        try:
+        with contextlib.suppress(ProcessLookupError):
             os.killpg(self._proc.pid, sig)  # the group this child leads: the server only
-        except ProcessLookupError:
-            pass
 
     def kill(self) -> None:
         """SIGKILL: no shutdown handlers run, as in a crash."""
