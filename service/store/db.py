@@ -10,6 +10,7 @@ makes concurrent writers queue on the busy timeout instead of failing.
 
 from __future__ import annotations
 
+import threading
 from typing import Any
 
 from sqlalchemy import Engine, create_engine, event
@@ -40,6 +41,9 @@ def create_db_engine(settings: Settings) -> Engine:
     return create_engine(url, pool_size=10, max_overflow=20, pool_pre_ping=True)
 
 
+_HOLDS_WRITE_LOCK = "evenhand_holds_write_lock"
+
+
 def _configure_sqlite(engine: Engine, settings: Settings) -> None:
     synchronous = settings.sqlite_synchronous
     busy_ms = settings.sqlite_busy_timeout_ms
@@ -55,9 +59,46 @@ def _configure_sqlite(engine: Engine, settings: Settings) -> None:
         cursor.execute(f"PRAGMA synchronous={synchronous}")
         cursor.close()
 
+    # Writers of this process queue on a lock rather than on SQLite's busy handler, which
+    # polls with sleeps of up to 100 ms: under concurrent requests it starves some of them for
+    # seconds while the database sits idle. The lock is taken before BEGIN IMMEDIATE and let go
+    # right after COMMIT or ROLLBACK, which are issued here on the driver connection so the
+    # release cannot come before the database has ended the transaction. Other processes
+    # (more workers) still meet the busy timeout.
+    write_lock = threading.Lock()
+    lock_timeout = busy_ms / 1000 if busy_ms else -1
+
+    def _end(connection: Any, statement: str) -> None:
+        if not connection.info.pop(_HOLDS_WRITE_LOCK, False):
+            return
+        try:
+            driver = connection.connection.dbapi_connection
+            if driver.in_transaction:  # SQLite may have ended it already after an error
+                driver.execute(statement)
+        finally:
+            write_lock.release()
+
     @event.listens_for(engine, "begin")
     def _on_begin(connection: Any) -> None:
-        connection.exec_driver_sql("BEGIN IMMEDIATE")
+        if not write_lock.acquire(timeout=lock_timeout):
+            raise TimeoutError(
+                f"database is busy: no write lock within {busy_ms} ms "
+                "(EVENHAND_SQLITE_BUSY_TIMEOUT_MS)"
+            )
+        try:
+            connection.exec_driver_sql("BEGIN IMMEDIATE")
+        except BaseException:
+            write_lock.release()
+            raise
+        connection.info[_HOLDS_WRITE_LOCK] = True
+
+    @event.listens_for(engine, "commit")
+    def _on_commit(connection: Any) -> None:
+        _end(connection, "COMMIT")  # the driver's own commit() then finds nothing to do
+
+    @event.listens_for(engine, "rollback")
+    def _on_rollback(connection: Any) -> None:
+        _end(connection, "ROLLBACK")
 
 
 def create_session_factory(engine: Engine) -> sessionmaker[Session]:
