@@ -46,8 +46,10 @@ class ServerProcess:
         port: int | None = None,
         workers: int = 1,
         command: Sequence[str] | None = None,
+        ready_path: str = "/readyz",
     ) -> None:
         self.port = port or free_port()
+        self.ready_path = ready_path
         self.log_path = log_path
         self.workers = workers
         self._env = {**os.environ, **env}
@@ -76,7 +78,7 @@ class ServerProcess:
     def pid(self) -> int | None:
         return None if self._proc is None else self._proc.pid
 
-    def start(self, ready_path: str = "/readyz", timeout: float = 30.0) -> None:
+    def start(self, timeout: float = 30.0) -> None:
         if self._proc is not None and self._proc.poll() is None:
             raise RuntimeError("server already running")
         log = self.log_path.open("ab")
@@ -99,7 +101,7 @@ class ServerProcess:
                         f"server exited with {self._proc.returncode}:\n{self.log_tail()}"
                     )
                 try:
-                    if client.get(ready_path).status_code == 200:
+                    if client.get(self.ready_path).status_code == 200:
                         return
                 except httpx.TransportError:
                     pass
