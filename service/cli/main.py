@@ -12,9 +12,9 @@ from service.cli.common import CliError
 
 def _command_modules() -> list[ModuleType]:
     # Imported here so ``evenhand --help`` stays fast and one broken module names itself.
-    from service.cli import log
+    from service.cli import keys, log, migrate, policy, serve
 
-    return [log]
+    return [serve, migrate, keys, policy, log]
 
 
 def build_parser() -> argparse.ArgumentParser:

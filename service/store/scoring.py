@@ -20,7 +20,7 @@ from typing import Any, Protocol
 from sqlalchemy import Table, insert, select
 from sqlalchemy.orm import Session, aliased
 
-from service.errors import Conflict, ServiceError, Unprocessable
+from service.errors import Conflict, PayloadTooLarge, ServiceError, Unprocessable
 from service.policy.document import PolicyDocument, canonical_json, resolve_rule_key
 from service.policy.errors import PolicyError
 from service.policy.rules import check_score, evaluate, evaluate_batch, rule_for
@@ -259,7 +259,7 @@ def recommend_batch(
 ) -> tuple[list[dict[str, Any]], int]:
     """(responses in input order, number newly written). All or nothing: any bad item -> 422."""
     if len(items) > ctx.max_batch_items:
-        raise ServiceError(
+        raise PayloadTooLarge(
             f"a batch holds at most {ctx.max_batch_items} items (got {len(items)}); split it",
             code="batch_too_large",
             field="items",
