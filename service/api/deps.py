@@ -55,6 +55,11 @@ def require_role(*roles: str) -> Callable[..., ApiKey]:
 
     def check(request: Request, session: DbSession) -> ApiKey:
         key = keys.authenticate(session, _bearer_token(request))
+        # End the read transaction here: on SQLite every transaction holds the write lock
+        # (BEGIN IMMEDIATE), and FastAPI hands the request back to the event loop between this
+        # dependency and the route, so keeping it open would hold the lock across that hop and
+        # serialize all requests behind it. The route's writes begin their own transaction.
+        session.commit()
         if key is None:
             raise Unauthorized("unknown or revoked API key")
         if key.role not in allowed:
