@@ -12,7 +12,8 @@ from service.api.errors import install_error_handlers
 from service.api.limits import BodySizeLimit
 from service.audit.sealer import PeriodicSealer
 from service.settings import Settings
-from service.store.db import create_db_engine, create_session_factory
+from service.store.committer import GroupCommitter
+from service.store.db import create_db_engine, create_session_factory, is_sqlite
 from service.store.scoring import DocumentCache, ScoringContext
 
 
@@ -26,6 +27,11 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         engine = create_db_engine(settings)
         app.state.engine = engine
         app.state.session_factory = create_session_factory(engine)
+        # SQLite: single recommendations share transactions (one fsync per group).
+        committer = GroupCommitter(engine) if is_sqlite(settings.database_url) else None
+        app.state.committer = committer
+        if committer is not None:
+            committer.start()
         # Background tasks (e.g. the periodic log sealer) start here and stop after `yield`.
         sealer = PeriodicSealer(app.state.session_factory, settings.seal_interval_seconds)
         sealer.start()
@@ -33,6 +39,8 @@ def create_app(settings: Settings | None = None) -> FastAPI:
             yield
         finally:
             await sealer.stop()
+            if committer is not None:
+                committer.stop()
             engine.dispose()
 
     app = FastAPI(

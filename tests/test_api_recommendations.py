@@ -212,3 +212,29 @@ def test_rollback_switches_the_deciding_version(
     )
     out = _post(client, tokens["scoring"], make_request()).json()
     assert out["version"] == 1
+
+
+def test_concurrent_repeats_of_one_request_write_one_record(
+    client: TestClient,
+    tokens: dict[str, str],
+    publish: Callable[..., int],
+    session_factory: sessionmaker[Session],
+) -> None:
+    from concurrent.futures import ThreadPoolExecutor
+
+    publish()
+    body = make_request()
+    others = [make_request() for _ in range(12)]
+
+    def post(b: dict[str, Any]) -> tuple[int, Any]:
+        r = _post(client, tokens["scoring"], b)
+        return r.status_code, r.json()
+
+    with ThreadPoolExecutor(max_workers=8) as pool:
+        same = list(pool.map(post, [body] * 8))
+        distinct = list(pool.map(post, others))
+    statuses = sorted(s for s, _ in same)
+    assert statuses == [200] * 7 + [201]
+    assert len({json.dumps(out, sort_keys=True) for _, out in same}) == 1
+    assert [s for s, _ in distinct] == [201] * 12
+    assert count_rows(session_factory, "recommendations") == 13

@@ -5,11 +5,22 @@ configured ``synchronous`` level on every new connection. Transactions on SQLite
 ``BEGIN IMMEDIATE``: a scoring request reads the active version and then writes, and a
 deferred transaction that read before another writer committed could not upgrade to a write
 lock (SQLITE_BUSY_SNAPSHOT, not retried by the busy timeout). Taking the write lock up front
-makes concurrent writers queue on the busy timeout instead of failing.
+makes concurrent writers queue instead of failing.
+
+Within one process the queue is a plain mutex held from BEGIN to the end of COMMIT or
+ROLLBACK: SQLite allows one writer at a time anyway, and threads waiting on a mutex are woken
+at once, where SQLite's busy handler polls with growing sleeps (requests then stall for
+seconds under load). Across processes the busy timeout still applies. A transaction that
+only reads can say so with :func:`begin_read_only` (a deferred BEGIN: a WAL snapshot, no
+lock). A thread must not open a second write transaction while it holds one (the mutex is
+not re-entrant; after the busy timeout the second gets a 503). PostgreSQL takes no such
+lock: its transactions run concurrently.
 """
 
 from __future__ import annotations
 
+import json
+import sqlite3
 import threading
 from typing import Any
 
@@ -17,11 +28,28 @@ from sqlalchemy import Engine, create_engine, event
 from sqlalchemy.engine import make_url
 from sqlalchemy.orm import Session, sessionmaker
 
+from service.errors import ServiceUnavailable
 from service.settings import Settings
+
+READ_ONLY = "evenhand_read_only"
+"""Execution option: this transaction only reads (SQLite: deferred BEGIN, no write lock)."""
+
+
+def begin_read_only(session: Session) -> None:
+    """Start the session's transaction as a read-only one; call before its first query."""
+    session.connection(execution_options={READ_ONLY: True})
 
 
 def is_sqlite(url: str) -> bool:
     return make_url(url).get_backend_name() == "sqlite"
+
+
+_JSON = json.JSONEncoder(separators=(",", ":"), ensure_ascii=False, allow_nan=False)
+
+
+def _json_serializer(value: Any) -> str:
+    # One shared compact encoder for JSON columns (json.dumps would build one per value).
+    return _JSON.encode(value)
 
 
 def create_db_engine(settings: Settings) -> Engine:
@@ -32,16 +60,17 @@ def create_db_engine(settings: Settings) -> Engine:
             connect_args={
                 "check_same_thread": False,
                 "timeout": settings.sqlite_busy_timeout_ms / 1000,
+                "factory": _serialized_connection_class(),
             },
             pool_size=20,
             max_overflow=20,
+            json_serializer=_json_serializer,
         )
         _configure_sqlite(engine, settings)
         return engine
-    return create_engine(url, pool_size=10, max_overflow=20, pool_pre_ping=True)
-
-
-_HOLDS_WRITE_LOCK = "evenhand_holds_write_lock"
+    return create_engine(
+        url, pool_size=10, max_overflow=20, pool_pre_ping=True, json_serializer=_json_serializer
+    )
 
 
 def _configure_sqlite(engine: Engine, settings: Settings) -> None:
@@ -57,48 +86,64 @@ def _configure_sqlite(engine: Engine, settings: Settings) -> None:
         cursor.execute("PRAGMA foreign_keys=ON")
         cursor.execute(f"PRAGMA busy_timeout={int(busy_ms)}")
         cursor.execute(f"PRAGMA synchronous={synchronous}")
+        # 64 MiB page cache: the log's unique indexes take random keys (UUIDs).
+        cursor.execute("PRAGMA cache_size=-65536")
         cursor.close()
-
-    # Writers of this process queue on a lock rather than on SQLite's busy handler, which
-    # polls with sleeps of up to 100 ms: under concurrent requests it starves some of them for
-    # seconds while the database sits idle. The lock is taken before BEGIN IMMEDIATE and let go
-    # right after COMMIT or ROLLBACK, which are issued here on the driver connection so the
-    # release cannot come before the database has ended the transaction. Other processes
-    # (more workers) still meet the busy timeout.
-    write_lock = threading.Lock()
-    lock_timeout = busy_ms / 1000 if busy_ms else -1
-
-    def _end(connection: Any, statement: str) -> None:
-        if not connection.info.pop(_HOLDS_WRITE_LOCK, False):
-            return
-        try:
-            driver = connection.connection.dbapi_connection
-            if driver.in_transaction:  # SQLite may have ended it already after an error
-                driver.execute(statement)
-        finally:
-            write_lock.release()
 
     @event.listens_for(engine, "begin")
     def _on_begin(connection: Any) -> None:
-        if not write_lock.acquire(timeout=lock_timeout):
-            raise TimeoutError(
-                f"database is busy: no write lock within {busy_ms} ms "
-                "(EVENHAND_SQLITE_BUSY_TIMEOUT_MS)"
-            )
+        if connection.get_execution_options().get(READ_ONLY):
+            connection.exec_driver_sql("BEGIN")  # deferred: a snapshot read, no lock
+            return
+        dbapi_connection = connection.connection.dbapi_connection
+        dbapi_connection.acquire_write_lock(busy_ms / 1000)
         try:
             connection.exec_driver_sql("BEGIN IMMEDIATE")
         except BaseException:
-            write_lock.release()
+            dbapi_connection.release_write_lock()
             raise
-        connection.info[_HOLDS_WRITE_LOCK] = True
 
-    @event.listens_for(engine, "commit")
-    def _on_commit(connection: Any) -> None:
-        _end(connection, "COMMIT")  # the driver's own commit() then finds nothing to do
 
-    @event.listens_for(engine, "rollback")
-    def _on_rollback(connection: Any) -> None:
-        _end(connection, "ROLLBACK")
+def _serialized_connection_class() -> type[sqlite3.Connection]:
+    """A sqlite3 connection class whose instances share one in-process write mutex."""
+    lock = threading.Lock()
+
+    class SerializedConnection(sqlite3.Connection):
+        _holds_lock = False
+
+        def acquire_write_lock(self, timeout: float) -> None:
+            if not lock.acquire(timeout=timeout if timeout > 0 else -1):
+                raise ServiceUnavailable(
+                    f"the database stayed busy for {timeout:g} s "
+                    "(EVENHAND_SQLITE_BUSY_TIMEOUT_MS); retry",
+                    code="database_busy",
+                )
+            self._holds_lock = True
+
+        def release_write_lock(self) -> None:
+            if self._holds_lock:
+                self._holds_lock = False
+                lock.release()
+
+        def commit(self) -> None:
+            try:
+                super().commit()
+            finally:
+                self.release_write_lock()
+
+        def rollback(self) -> None:
+            try:
+                super().rollback()
+            finally:
+                self.release_write_lock()
+
+        def close(self) -> None:
+            try:
+                super().close()
+            finally:
+                self.release_write_lock()
+
+    return SerializedConnection
 
 
 def create_session_factory(engine: Engine) -> sessionmaker[Session]:

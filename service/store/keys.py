@@ -7,13 +7,14 @@ import hmac
 import secrets
 from collections.abc import Sequence
 
-from sqlalchemy import select
+from sqlalchemy import bindparam, select
 from sqlalchemy.orm import Session
 
 from service.errors import Conflict, NotFound, Unprocessable
 from service.store.models import ApiKey, Role, utcnow
 
 TOKEN_PREFIX = "eh_"
+_BY_HASH = select(ApiKey).where(ApiKey.token_hash == bindparam("digest"))
 
 
 def hash_token(token: str) -> str:
@@ -40,7 +41,7 @@ def create_key(session: Session, name: str, role: str) -> tuple[ApiKey, str]:
 def authenticate(session: Session, token: str) -> ApiKey | None:
     """The live key for ``token``, or None (unknown or revoked)."""
     digest = hash_token(token)
-    key = session.scalar(select(ApiKey).where(ApiKey.token_hash == digest))
+    key = session.scalar(_BY_HASH, {"digest": digest})
     # The lookup is by hash, so it reveals nothing about the token; the comparison is
     # constant-time anyway so no code path compares secrets byte by byte.
     if key is None or not hmac.compare_digest(key.token_hash, digest):
