@@ -9,10 +9,10 @@ sealer's lock; only sealers exclude each other (an advisory lock on PostgreSQL, 
 of ``BEGIN IMMEDIATE`` on SQLite).
 
 :func:`verify_log` recomputes every record hash from the record's fields, every seal's root
-and the chain, and stops at the first record or seal that does not match. It reads in pages
-and ends its transaction between pages, so it neither holds millions of rows in memory nor
-blocks writers for long; sealed records never legitimately change, so pages need no common
-snapshot.
+and the chain, and stops at the first record or seal that does not match. It reads in pages,
+each in its own read-only transaction (on SQLite a deferred one that takes no write lock), so
+it neither holds millions of rows in memory nor blocks writers; sealed records never
+legitimately change, so pages need no common snapshot.
 """
 
 from __future__ import annotations
@@ -28,6 +28,7 @@ from sqlalchemy.orm import Session
 
 from service.audit.merkle import TreeBuilder
 from service.policy.document import canonical_json
+from service.store.db import begin_read_only
 from service.store.models import Recommendation, Seal, utcnow
 from service.store.records import format_timestamp, record_leaf_hash
 
@@ -204,13 +205,14 @@ def _record_pages(session: Session, seal_id: int | None) -> Iterator[Any]:
     after = -1
     where = _REC.c.seal_id.is_(None) if seal_id is None else _REC.c.seal_id == seal_id
     while True:
+        begin_read_only(session)
         rows = session.execute(
             select(*_RECORD_COLUMNS)
             .where(where, _REC.c.id > after)
             .order_by(_REC.c.id)
             .limit(PAGE_SIZE)
         ).all()
-        # End the read transaction between pages: on SQLite it holds the write lock.
+        # End the read transaction between pages: no long-lived snapshot on either database.
         session.commit()
         if not rows:
             return
@@ -304,6 +306,7 @@ def verify_log(
     """
     result = VerifyResult()
     seen: set[str] = set()
+    begin_read_only(session)
     seals = [_SealView.of(s) for s in session.execute(select(Seal).order_by(Seal.id)).scalars()]
     session.commit()
     previous_hash: str | None = None
@@ -325,6 +328,7 @@ def verify_log(
         )
         return result
     # Foreign keys stop this on a normal database; raw edits with them off do not.
+    begin_read_only(session)
     missing = session.execute(
         select(func.min(_REC.c.id)).where(
             _REC.c.seal_id.is_not(None), _REC.c.seal_id.not_in(select(Seal.id))
