@@ -2,8 +2,9 @@
 
 For each database (SQLite file, and PostgreSQL on 127.0.0.1 when reachable) the script
 1. creates a fresh database, migrates it, creates keys and activates the Fernhollow demo policy;
-2. serves the bare endpoint (benchmarks/bare_app.py) and then Evenhand with the SAME uvicorn
-   settings (host 127.0.0.1, workers, no access log) and drives both with the SAME closed-loop
+2. serves the bare endpoint (benchmarks/bare_app.py) with uvicorn, then Evenhand with
+   ``evenhand serve``, with the SAME uvicorn settings (host 127.0.0.1, workers, no access log,
+   log level) and drives both with the SAME closed-loop
    load generator (benchmarks/loadgen.py), the same request bodies and concurrency;
 3. sends batches of 5,000 to POST /v1/recommendations/batch, timed end to end (encoding,
    request, decision, durable write, answer, decoding).
@@ -51,13 +52,27 @@ PG_SERVER = os.environ.get(
 )
 
 
-def uvicorn_command(app: str, port: int, workers: int, app_dir: str | None = None) -> list[str]:
-    """The one server command line both apps run with."""
-    cmd = [sys.executable, "-m", "uvicorn", "--factory", app]
-    if app_dir is not None:
-        cmd += ["--app-dir", app_dir]
-    settings = ["--host", LOOPBACK, "--port", str(port), "--workers", str(workers)]
-    return [*cmd, *settings, "--no-access-log", "--log-level", "warning"]
+def bare_command(port: int, workers: int) -> list[str]:
+    """uvicorn with exactly what ``evenhand serve`` passes it (service/cli/serve.py): a factory,
+    host, port, workers, no access log, log level info."""
+    return [
+        sys.executable,
+        "-m",
+        "uvicorn",
+        "--factory",
+        "bare_app:create_app",
+        "--app-dir",
+        str(Path(__file__).resolve().parent),
+        "--host",
+        LOOPBACK,
+        "--port",
+        str(port),
+        "--workers",
+        str(workers),
+        "--no-access-log",
+        "--log-level",
+        "info",
+    ]
 
 
 def bodies(n: int, tag: str, policy: str) -> list[dict[str, Any]]:
@@ -153,12 +168,14 @@ def run_backend(backend: str, args: argparse.Namespace, workdir: Path) -> dict[s
         env = {
             "EVENHAND_DATABASE_URL": db.url,
             "EVENHAND_DRAW_SECRET": secrets.token_hex(32),
+            "EVENHAND_SQLITE_SYNCHRONOUS": args.sqlite_synchronous,
         }
         document = demo_policy()
         name = document["name"]
+        sync = f", synchronous={args.sqlite_synchronous}" if backend == "sqlite" else ""
         print(
-            f"{backend}: {args.requests} single requests x {args.concurrency} connections, "
-            f"{args.workers} worker(s)",
+            f"{backend}{sync}: {args.requests} single requests x {args.concurrency} "
+            f"connections, {args.workers} worker(s)",
             file=sys.stderr,
         )
 
@@ -168,12 +185,7 @@ def run_backend(backend: str, args: argparse.Namespace, workdir: Path) -> dict[s
             env,
             workdir / f"bare-{backend}.log",
             port=port,
-            command=uvicorn_command(
-                "bare_app:create_app",
-                port,
-                args.workers,
-                app_dir=str(Path(__file__).resolve().parent),
-            ),
+            command=bare_command(port, args.workers),
             ready_path="/openapi.json",
         )
         with bare:
@@ -185,13 +197,7 @@ def run_backend(backend: str, args: argparse.Namespace, workdir: Path) -> dict[s
                 bodies(args.requests, "bare", name),
                 args.concurrency,
             )
-        port = free_port()
-        service = ServerProcess(
-            env,
-            workdir / f"evenhand-{backend}.log",
-            port=port,
-            command=uvicorn_command("service.app:create_app", port, args.workers),
-        )
+        service = ServerProcess(env, workdir / f"evenhand-{backend}.log", workers=args.workers)
         with service:
             with EvenhandClient(service.base_url) as api:
                 api.publish(tokens["author"], tokens["reviewer"], document, "benchmark")
@@ -238,6 +244,7 @@ def run_backend(backend: str, args: argparse.Namespace, workdir: Path) -> dict[s
             )
         return {
             "backend": backend,
+            "sqlite_synchronous": args.sqlite_synchronous if backend == "sqlite" else None,
             "single": rows,
             "ratio": round(ratio, 2),
             "batch": {
@@ -259,6 +266,13 @@ def main() -> int:
     parser.add_argument("--workers", type=int, default=1)
     parser.add_argument("--batches", type=int, default=10)
     parser.add_argument("--batch-size", type=int, default=5000)
+    parser.add_argument(
+        "--sqlite-synchronous",
+        default="FULL",
+        choices=["FULL", "NORMAL"],
+        help="FULL (default): every commit survives power loss; NORMAL (WAL): survives a "
+        "crash or kill -9 of the server, not of the machine",
+    )
     parser.add_argument("--json", type=Path, help="also write the figures to this file")
     args = parser.parse_args()
     machine = f"{platform.machine()}, {os.cpu_count()} cores, Python {platform.python_version()}"
