@@ -235,8 +235,39 @@ def switch_version(ctx: DemoContext) -> None:
     _send(ctx, rows, "group-blind trial")
 
 
+def _offer_rates(ctx: DemoContext, phase: str) -> dict[str, tuple[int, int]]:
+    """(offered, sent) per community among the cases of ``phase``."""
+    d = ctx.discharges
+    assert d is not None
+    out: dict[str, tuple[int, int]] = {}
+    for s in ctx.sent:
+        if s.phase == phase:
+            offered, total = out.get(d.community[s.index], (0, 0))
+            out[d.community[s.index]] = (offered + int(s.action), total + 1)
+    return out
+
+
+def _rollback_reason(ctx: DemoContext) -> str:
+    """The reason states what the trial changed most, from the cases it decided."""
+    before = _offer_rates(ctx, "reviewed policy")
+    during = _offer_rates(ctx, "group-blind trial")
+    shifts = [
+        (abs(during[c][0] / during[c][1] - before[c][0] / before[c][1]), c)
+        for c in during
+        if c in before and during[c][1] and before[c][1]
+    ]
+    if not shifts:
+        return "trial stopped: back to the reviewed per-group policy"
+    _, c = max(shifts)
+    a, b = before[c][0] / before[c][1], during[c][0] / during[c][1]
+    return (
+        f"trial stopped: with one cut for all, the share of {c} patients offered follow-up "
+        f"moved from {a:.0%} to {b:.0%}; back to the reviewed per-group policy"
+    )
+
+
 def roll_back(ctx: DemoContext) -> None:
-    reason = "trial stopped: one cut for all flags too few saltmarsh patients for follow-up"
+    reason = _rollback_reason(ctx)
     with ctx.client() as api:
         version = api.rollback(ctx.tokens["author"], ctx.policy_name, reason)
     ctx.say(f"[8] rolled back to v{version}: {reason}")
