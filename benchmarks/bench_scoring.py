@@ -89,6 +89,27 @@ def bodies(n: int, tag: str, policy: str) -> list[dict[str, Any]]:
     ]
 
 
+def server_cpu_seconds(pid: int | None) -> float | None:
+    """CPU time (user + system) of the server process and its live children (Linux /proc).
+
+    Throughput on a shared machine depends on what else runs; CPU time per request does not
+    much, so it is recorded beside the rates. The database server's own CPU is not included.
+    """
+    if pid is None or not Path("/proc/self/stat").exists():
+        return None
+    tick = os.sysconf("SC_CLK_TCK")
+    total = 0.0
+    for stat in Path("/proc").glob("[0-9]*/stat"):
+        try:
+            fields = stat.read_text().rsplit(")", 1)[1].split()
+        except (OSError, IndexError):
+            continue
+        this, parent = int(stat.parent.name), int(fields[1])
+        if this == pid or parent == pid:
+            total += (int(fields[11]) + int(fields[12])) / tick
+    return total
+
+
 @dataclass
 class Database:
     url: str
@@ -139,7 +160,21 @@ def prepare(url: str) -> dict[str, str]:
     return tokens
 
 
-def describe(label: str, r: LoadResult) -> dict[str, Any]:
+def measured(
+    server: ServerProcess,
+    port: int,
+    token: str | None,
+    items: list[dict[str, Any]],
+    concurrency: int,
+) -> tuple[LoadResult, float | None]:
+    before = server_cpu_seconds(server.pid)
+    result = run_load(port, "/v1/recommendations", token, items, concurrency)
+    after = server_cpu_seconds(server.pid)
+    cpu = None if before is None or after is None else (after - before) / result.requests
+    return result, cpu
+
+
+def describe(label: str, r: LoadResult, cpu: float | None) -> dict[str, Any]:
     ok = sum(v for k, v in r.statuses.items() if 200 <= k < 300)
     row = {
         "label": label,
@@ -148,10 +183,12 @@ def describe(label: str, r: LoadResult) -> dict[str, Any]:
         "throughput_rps": round(r.throughput, 1),
         "p50_ms": round(r.percentile(0.5) * 1000, 2),
         "p99_ms": round(r.percentile(0.99) * 1000, 2),
+        "server_cpu_ms_per_request": None if cpu is None else round(cpu * 1000, 3),
     }
+    cpu_text = "" if cpu is None else f"   server CPU {cpu * 1000:.2f} ms/req"
     print(
         f"  {label:<28} {row['throughput_rps']:>9.1f} req/s   p50 {row['p50_ms']:>7.2f} ms   "
-        f"p99 {row['p99_ms']:>7.2f} ms   ({ok}/{r.requests} 2xx)",
+        f"p99 {row['p99_ms']:>7.2f} ms{cpu_text}   ({ok}/{r.requests} 2xx)",
         file=sys.stderr,
     )
     if ok != r.requests:
@@ -190,27 +227,23 @@ def run_backend(backend: str, args: argparse.Namespace, workdir: Path) -> dict[s
         )
         with bare:
             run_load(bare.port, "/v1/recommendations", None, bodies(200, "w", name))  # warm-up
-            bare_result = run_load(
-                bare.port,
-                "/v1/recommendations",
-                None,
-                bodies(args.requests, "bare", name),
-                args.concurrency,
+            bare_result, bare_cpu = measured(
+                bare, bare.port, None, bodies(args.requests, "bare", name), args.concurrency
             )
         service = ServerProcess(env, workdir / f"evenhand-{backend}.log", workers=args.workers)
         with service:
             with EvenhandClient(service.base_url) as api:
                 api.publish(tokens["author"], tokens["reviewer"], document, "benchmark")
             run_load(service.port, "/v1/recommendations", tokens["scoring"], bodies(200, "w", name))
-            service_result = run_load(
+            service_result, service_cpu = measured(
+                service,
                 service.port,
-                "/v1/recommendations",
                 tokens["scoring"],
                 bodies(args.requests, "svc", name),
                 args.concurrency,
             )
-            rows = [describe("bare FastAPI endpoint", bare_result)]
-            rows.append(describe("POST /v1/recommendations", service_result))
+            rows = [describe("bare FastAPI endpoint", bare_result, bare_cpu)]
+            rows.append(describe("POST /v1/recommendations", service_result, service_cpu))
             ratio = service_result.throughput / bare_result.throughput
             print(f"  ratio service / bare: {ratio:.2f} (target >= 0.6)", file=sys.stderr)
 
@@ -231,15 +264,23 @@ def run_backend(backend: str, args: argparse.Namespace, workdir: Path) -> dict[s
                         raise SystemExit("batch answer is missing items")
 
                 send(batch_bodies[0])  # warm-up
+                cpu_before = server_cpu_seconds(service.pid)
                 start = time.perf_counter()
                 for items in batch_bodies[1:]:
                     send(items)
                 seconds = time.perf_counter() - start
+                cpu_after = server_cpu_seconds(service.pid)
             decisions = args.batches * args.batch_size
             per_second = decisions / seconds
+            batch_cpu = (
+                None
+                if cpu_before is None or cpu_after is None
+                else (cpu_after - cpu_before) / decisions * 1e6
+            )
             print(
                 f"  batches of {args.batch_size}: {per_second:,.0f} decisions/s "
-                f"({args.batches} batches, {seconds:.2f} s; target on SQLite >= 50,000)",
+                f"({args.batches} batches, {seconds:.2f} s; server CPU {batch_cpu or 0:.1f} us "
+                "per decision; target on SQLite >= 50,000)",
                 file=sys.stderr,
             )
         return {
@@ -252,6 +293,7 @@ def run_backend(backend: str, args: argparse.Namespace, workdir: Path) -> dict[s
                 "batches": args.batches,
                 "seconds": round(seconds, 3),
                 "decisions_per_second": round(per_second),
+                "server_cpu_us_per_decision": None if batch_cpu is None else round(batch_cpu, 1),
             },
         }
     finally:
@@ -276,14 +318,20 @@ def main() -> int:
     parser.add_argument("--json", type=Path, help="also write the figures to this file")
     args = parser.parse_args()
     machine = f"{platform.machine()}, {os.cpu_count()} cores, Python {platform.python_version()}"
-    print(f"machine: {machine}", file=sys.stderr)
+    print(f"machine: {machine}; load average {os.getloadavg()[0]:.2f}", file=sys.stderr)
     results = []
     with tempfile.TemporaryDirectory(prefix="evenhand-bench-") as tmp:
         for backend in args.backends.split(","):
             result = run_backend(backend.strip(), args, Path(tmp))
             if result is not None:
                 results.append(result)
-    report = {"machine": machine, "date": time.strftime("%Y-%m-%d"), "results": results}
+    report = {
+        "machine": machine,
+        "date": time.strftime("%Y-%m-%d %H:%M UTC", time.gmtime()),
+        # Other work on the machine skews every figure: the load is recorded beside them.
+        "load_average_1m_at_end": round(os.getloadavg()[0], 2),
+        "results": results,
+    }
     if args.json:
         args.json.write_text(json.dumps(report, indent=2) + "\n", encoding="utf-8")
     print(json.dumps(report, indent=2))
