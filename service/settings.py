@@ -3,8 +3,9 @@
 from __future__ import annotations
 
 from typing import Literal
+from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
-from pydantic import Field, SecretStr
+from pydantic import Field, SecretStr, field_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
 
@@ -33,6 +34,15 @@ class Settings(BaseSettings):
         default="FULL", description="SQLite PRAGMA synchronous; FULL makes every commit durable"
     )
     sqlite_busy_timeout_ms: int = Field(default=30_000, ge=0)
+
+    @field_validator("timezone")
+    @classmethod
+    def _known_zone(cls, value: str) -> str:
+        try:
+            ZoneInfo(value)
+        except (ZoneInfoNotFoundError, ValueError):
+            raise ValueError(f"unknown time zone {value!r} (use an IANA name, e.g. UTC)") from None
+        return value
 
     def draw_key(self) -> bytes:
         """The draw secret as bytes; refuses clearly when it is not set."""

@@ -89,20 +89,26 @@ def _session_engine(database_url: str) -> Iterator[Engine]:
     engine.dispose()
 
 
+_TABLES: dict[str, list[str]] = {}
+
+
 def _empty_all_tables(engine: Engine) -> None:
     from sqlalchemy import MetaData
 
-    meta = MetaData()
-    meta.reflect(engine)
-    tables = [t for t in reversed(meta.sorted_tables) if t.name != "alembic_version"]
+    key = engine.url.render_as_string(hide_password=False)
+    if key not in _TABLES:  # the schema does not change during a run: reflect it once
+        meta = MetaData()
+        meta.reflect(engine)
+        _TABLES[key] = [t.name for t in reversed(meta.sorted_tables) if t.name != "alembic_version"]
+    tables = _TABLES[key]
     with engine.begin() as conn:
         if engine.dialect.name == "postgresql":
             if tables:
-                names = ", ".join(f'"{t.name}"' for t in tables)
+                names = ", ".join(f'"{t}"' for t in tables)
                 conn.execute(text(f"TRUNCATE {names} RESTART IDENTITY CASCADE"))
         else:
             for table in tables:
-                conn.execute(table.delete())
+                conn.execute(text(f'DELETE FROM "{table}"'))
             has_seq = conn.execute(
                 text("SELECT name FROM sqlite_master WHERE name = 'sqlite_sequence'")
             ).first()

@@ -238,3 +238,21 @@ def test_concurrent_repeats_of_one_request_write_one_record(
     assert len({json.dumps(out, sort_keys=True) for _, out in same}) == 1
     assert [s for s, _ in distinct] == [201] * 12
     assert count_rows(session_factory, "recommendations") == 13
+
+
+def test_batch_reusing_a_stored_request_id_with_another_body(
+    client: TestClient,
+    tokens: dict[str, str],
+    publish: Callable[..., int],
+    session_factory: sessionmaker[Session],
+) -> None:
+    publish()
+    stored = make_request()
+    assert _post(client, tokens["scoring"], stored).status_code == 201
+    items = [make_request(), {**stored, "score": 0.99}]
+    r = client.post(f"{R}/batch", json={"items": items}, headers=bearer(tokens["scoring"]))
+    assert r.status_code == 422
+    assert [(d["code"], d["field"]) for d in r.json()["error"]["details"]] == [
+        ("idempotency_conflict", "items.1.request_id")
+    ]
+    assert count_rows(session_factory, "recommendations") == 1

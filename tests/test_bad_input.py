@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from collections.abc import Callable, Iterator
+from pathlib import Path
 from typing import Any
 
 import pytest
@@ -65,6 +66,11 @@ def test_nan_in_attributes(
         ({"score": 1.5}, 422, "score_out_of_range", "score"),
         ({"score": -0.01}, 422, "score_out_of_range", "score"),
         ({"score": "high"}, 422, "validation_error", "score"),
+        ({"score": "0.5"}, 422, "validation_error", "score"),
+        ({"score": True}, 422, "validation_error", "score"),
+        ({"score": None}, 422, "validation_error", "score"),
+        ({"attributes": {"region": ["north"]}}, 422, "validation_error", None),
+        ({"attributes": "north"}, 422, "validation_error", "attributes"),
         ({"policy": "no-such-policy"}, 422, "unknown_policy", "policy"),
         ({"attributes": {}}, 422, "missing_attribute", "attributes.region"),
         ({"attributes": {"region": None}}, 422, "validation_error", None),
@@ -183,3 +189,16 @@ def test_secret_never_in_responses(
         client.get("/openapi.json"),
     ]:
         assert TEST_SECRET not in r.text
+
+
+def test_readiness_reports_pending_migrations(tmp_path: Path) -> None:
+    fresh = Settings(database_url=f"sqlite:///{tmp_path}/fresh.db", draw_secret="x")  # type: ignore[arg-type]
+    with TestClient(create_app(fresh)) as client:
+        assert client.get("/healthz").json() == {"status": "ok"}
+        _check(client.get("/readyz"), 503, "migrations_pending")
+
+
+def test_settings_refuse_unknown_time_zone() -> None:
+    with pytest.raises(ValueError, match="unknown time zone"):
+        Settings(timezone="Mars/Olympus")
+    assert Settings(timezone="Europe/Berlin").timezone == "Europe/Berlin"

@@ -1,9 +1,10 @@
 """Request dependencies: the database session and the bearer-token role check.
 
-Routers use ``DbSession`` for the session and ``require_role("audit")`` (or several roles)
-for access. The session never commits on its own: a route that writes calls
-``session.commit()`` itself before it returns, so the write is durable before the response is
-sent (FastAPI runs the exit code of yield dependencies only after the response by default).
+Routers use ``DbSession`` for the session (``ReadSession`` when the route only reads) and
+``require_role("audit")`` (or several roles) for access. The session never commits on its
+own: a route that writes calls ``session.commit()`` itself before it returns, so the write is
+durable before the response is sent (FastAPI runs the exit code of yield dependencies only
+after the response by default).
 """
 
 from __future__ import annotations
@@ -36,7 +37,20 @@ def get_session(request: Request) -> Iterator[Session]:
         session.close()
 
 
+def get_read_session(request: Request) -> Iterator[Session]:
+    """A session whose transaction only reads: on SQLite a WAL snapshot without the write
+    lock, so long reads (reports, listings) never hold up scoring."""
+    factory: sessionmaker[Session] = request.app.state.session_factory
+    session = factory()
+    try:
+        begin_read_only(session)
+        yield session
+    finally:
+        session.close()
+
+
 DbSession = Annotated[Session, Depends(get_session, scope="function")]
+ReadSession = Annotated[Session, Depends(get_read_session, scope="function")]
 AppSettings = Annotated[Settings, Depends(get_settings)]
 
 

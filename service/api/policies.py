@@ -6,7 +6,7 @@ from typing import Annotated
 
 from fastapi import APIRouter, Path, Query, Response
 
-from service.api.deps import AdminKey, DbSession
+from service.api.deps import AdminKey, DbSession, ReadSession
 from service.api.errors import error_responses
 from service.api.policy_schemas import (
     ActivateBody,
@@ -45,7 +45,7 @@ def submit_version(
 
 
 @router.get("", summary="All policies with their active and shadow versions")
-def list_policies(session: DbSession, _key: AdminKey) -> list[PolicySummary]:
+def list_policies(session: ReadSession, _key: AdminKey) -> list[PolicySummary]:
     out = []
     for name in repo.policy_names(session):
         active = repo.active_version(session, name)
@@ -62,7 +62,7 @@ def list_policies(session: DbSession, _key: AdminKey) -> list[PolicySummary]:
 
 
 @router.get("/{name}/versions", summary="Every version of a policy")
-def list_versions(name: Name, session: DbSession, _key: AdminKey) -> list[VersionSummary]:
+def list_versions(name: Name, session: ReadSession, _key: AdminKey) -> list[VersionSummary]:
     rows = repo.list_versions(session, name)
     if not rows:
         raise NotFound(f"no policy named {name!r}", code="unknown_policy")
@@ -70,7 +70,9 @@ def list_versions(name: Name, session: DbSession, _key: AdminKey) -> list[Versio
 
 
 @router.get("/{name}/versions/{version}", summary="One version with its document")
-def get_version(name: Name, version: Version, session: DbSession, _key: AdminKey) -> VersionDetail:
+def get_version(
+    name: Name, version: Version, session: ReadSession, _key: AdminKey
+) -> VersionDetail:
     return VersionDetail.of(lifecycle.require_version(session, name, version))
 
 
@@ -104,14 +106,14 @@ def rollback(name: Name, body: RollbackBody, session: DbSession, key: AdminKey) 
 
 
 @router.get("/{name}/history", summary="Every lifecycle event, oldest first")
-def history(name: Name, session: DbSession, _key: AdminKey) -> list[EventOut]:
+def history(name: Name, session: ReadSession, _key: AdminKey) -> list[EventOut]:
     return [EventOut.of(e) for e in lifecycle.history(session, name)]
 
 
 @router.get("/{name}/diff", summary="What changed between two versions, rule by rule, in words")
 def diff(
     name: Name,
-    session: DbSession,
+    session: ReadSession,
     _key: AdminKey,
     from_version: Annotated[int, Query(alias="from", ge=1)],
     to_version: Annotated[int, Query(alias="to", ge=1)],
@@ -131,7 +133,7 @@ def diff(
 
 
 @router.get("/{name}/shadow", summary="The shadow version, if one is designated")
-def get_shadow(name: Name, session: DbSession, _key: AdminKey) -> ShadowOut:
+def get_shadow(name: Name, session: ReadSession, _key: AdminKey) -> ShadowOut:
     shadow = repo.get_shadow(session, name)
     if shadow is None:
         raise NotFound(f"policy {name!r} has no shadow version", code="no_shadow")

@@ -10,6 +10,8 @@ Text = Annotated[str, StringConstraints(min_length=1, max_length=128)]
 AttributeName = Annotated[str, StringConstraints(min_length=1, max_length=64)]
 AttributeText = Annotated[str, StringConstraints(max_length=256)]
 Finite = Annotated[float, Field(allow_inf_nan=False)]
+# A JSON number only: no "0.5" strings, no true/false.
+Score = Annotated[float, Field(allow_inf_nan=False, strict=True)]
 
 
 class RecommendationRequest(BaseModel):
@@ -18,7 +20,7 @@ class RecommendationRequest(BaseModel):
     request_id: Text = Field(description="the caller's idempotency key for this request")
     case_id: Text = Field(description="the case; the keyed draw depends on it")
     policy: Text = Field(description="policy name; its active version decides")
-    score: Finite = Field(description="the model's score, within the policy's score_range")
+    score: Score = Field(description="the model's score, within the policy's score_range")
     attributes: dict[AttributeName, AttributeText | bool | int | Finite] = Field(
         default_factory=dict,
         description="the attributes the policy groups by; only those are stored",

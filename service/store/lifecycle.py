@@ -164,7 +164,9 @@ def _switch(
     action: LifecycleAction,
     reason: str | None,
 ) -> PolicyVersion:
-    current = next((r for r in _lock_policy(session, name) if r.status == "active"), None)
+    current = next(
+        (r for r in _lock_policy(session, name) if r.status == VersionStatus.ACTIVE.value), None
+    )
     if current is not None:
         current.status = VersionStatus.RETIRED.value
         _flush(session)  # retire first: the one-active index would refuse two at once

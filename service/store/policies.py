@@ -47,18 +47,6 @@ def active_version(session: Session, name: str) -> PolicyVersion | None:
     )
 
 
-def active_and_shadow(session: Session, name: str) -> tuple[int, int | None] | None:
-    """(active version, shadow version or None) in one indexed query; None if no active."""
-    row = session.execute(
-        select(PolicyVersion.version, PolicyShadow.version)
-        .outerjoin(PolicyShadow, PolicyShadow.name == PolicyVersion.name)
-        .where(PolicyVersion.name == name, PolicyVersion.status == VersionStatus.ACTIVE.value)
-    ).first()
-    if row is None:
-        return None
-    return int(row[0]), (None if row[1] is None else int(row[1]))
-
-
 def policy_exists(session: Session, name: str) -> bool:
     return (
         session.scalar(select(PolicyVersion.id).where(PolicyVersion.name == name).limit(1))
