@@ -33,6 +33,7 @@ ACCESS: dict[tuple[str, str], str] = {
     ("GET", "/v1/policies/{name}/shadow"): "admin",
     ("PUT", "/v1/policies/{name}/shadow"): "admin",
     ("DELETE", "/v1/policies/{name}/shadow"): "admin",
+    ("GET", "/v1/log/verify"): "audit",
 }
 CALLERS = ["scoring", "audit", "admin", "none", "bad", "revoked"]
 
