@@ -23,7 +23,7 @@ from dataclasses import dataclass
 from datetime import datetime
 from typing import Any, Literal
 
-from sqlalchemy import func, select, text, update
+from sqlalchemy import Table, func, select, text, update
 from sqlalchemy.orm import Session
 
 from service.audit.merkle import TreeBuilder
@@ -37,7 +37,7 @@ SEALER_LOCK_KEY = 0x45564E48_5345414C  # "EVNH" "SEAL"
 MAX_RECORDS_PER_SEAL = 100_000
 PAGE_SIZE = 5_000
 
-_REC = Recommendation.__table__
+_REC: Table = Recommendation.__table__  # type: ignore[assignment]
 _RECORD_COLUMNS = [c for c in _REC.c if c.name not in ("request_fingerprint",)]
 
 
@@ -154,14 +154,20 @@ def seal_pending(session: Session, max_records: int = MAX_RECORDS_PER_SEAL) -> S
         session.flush()
         # Mark exactly the records in the tree, by id: a late commit with an id inside the
         # range stays unsealed for the next seal.
+        connection = session.connection()
         for start in range(0, len(ids), 900):
             chunk = ids[start : start + 900]
-            session.execute(
-                update(Recommendation)
-                .where(Recommendation.id.in_(chunk), Recommendation.seal_id.is_(None))
+            marked = connection.execute(
+                update(_REC)
+                .where(_REC.c.id.in_(chunk), _REC.c.seal_id.is_(None))
                 .values(seal_id=seal.id)
-                .execution_options(synchronize_session=False)
-            )
+            ).rowcount
+            if marked != len(chunk):
+                # Only a second sealer ignoring the lock could cause this: seal nothing.
+                raise RuntimeError(
+                    f"sealing: {len(chunk) - marked} records were sealed meanwhile by another "
+                    "process; nothing was sealed"
+                )
         session.commit()
         return seal
     except BaseException:
