@@ -8,6 +8,7 @@ from contextlib import asynccontextmanager
 from fastapi import FastAPI
 
 from service.api import health, log, policies, recommendations
+from service.api.deps import KeyCache
 from service.api.errors import install_error_handlers
 from service.api.limits import BodySizeLimit
 from service.audit.sealer import PeriodicSealer
@@ -54,6 +55,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     )
     app.state.settings = settings
     app.state.scoring = ScoringContext(secret, DocumentCache(), settings.max_batch_items)
+    app.state.key_cache = KeyCache(settings.auth_cache_seconds)
     install_error_handlers(app)
     app.include_router(health.router)
     app.include_router(policies.router)

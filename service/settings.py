@@ -34,6 +34,12 @@ class Settings(BaseSettings):
         default="FULL", description="SQLite PRAGMA synchronous; FULL makes every commit durable"
     )
     sqlite_busy_timeout_ms: int = Field(default=30_000, ge=0)
+    auth_cache_seconds: float = Field(
+        default=1.0,
+        ge=0,
+        description="how long a process trusts a key it has just checked (0: every request "
+        "asks the database); a revoked key is refused at the latest this long after",
+    )
 
     @field_validator("timezone")
     @classmethod

@@ -204,7 +204,9 @@ def test_rollback_switches_the_deciding_version(
 ) -> None:
     publish()
     publish(make_policy(action_label="offer a nurse visit"))
-    assert _post(client, tokens["scoring"], make_request()).json()["version"] == 2
+    under_v2 = make_request()
+    first = _post(client, tokens["scoring"], under_v2).json()
+    assert first["version"] == 2
     client.post(
         "/v1/policies/readmission/rollback",
         json={"reason": "label wrong"},
@@ -212,6 +214,9 @@ def test_rollback_switches_the_deciding_version(
     )
     out = _post(client, tokens["scoring"], make_request()).json()
     assert out["version"] == 1
+    # A replay is answered from the record, whatever is active now.
+    again = _post(client, tokens["scoring"], under_v2)
+    assert again.status_code == 200 and again.json() == first
 
 
 def test_concurrent_repeats_of_one_request_write_one_record(

@@ -9,6 +9,7 @@ after the response by default).
 
 from __future__ import annotations
 
+import time
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from typing import Annotated
@@ -73,17 +74,56 @@ class Caller:
     role: str
 
 
+class KeyCache:
+    """Live keys seen in the last ``ttl`` seconds, by token hash (0 turns it off).
+
+    Spares the hot path a database round trip per request; the price is that a revoked key
+    may still be accepted for up to ``ttl`` seconds in a process that saw it just before.
+    Unknown and revoked tokens are never cached: they always ask the database.
+    """
+
+    def __init__(self, ttl: float, max_entries: int = 10_000) -> None:
+        self.ttl = ttl
+        self._max = max_entries
+        self._entries: dict[str, tuple[Caller, float]] = {}
+
+    def get(self, digest: str) -> Caller | None:
+        entry = self._entries.get(digest)
+        if entry is None or entry[1] < time.monotonic():
+            return None
+        return entry[0]
+
+    def put(self, digest: str, caller: Caller) -> None:
+        if self.ttl <= 0:
+            return
+        if len(self._entries) >= self._max:
+            self._entries.clear()
+        self._entries[digest] = (caller, time.monotonic() + self.ttl)
+
+
+def _lookup(request: Request, session: Session, token: str) -> Caller | None:
+    cache: KeyCache | None = getattr(request.app.state, "key_cache", None)
+    digest = keys.hash_token(token)
+    if cache is not None:
+        cached = cache.get(digest)
+        if cached is not None:
+            return cached
+    # A short read of its own: the route's writes start a fresh (write) transaction.
+    begin_read_only(session)
+    found = keys.authenticate(session, token)
+    caller = None if found is None else Caller(found.id, found.name, found.role)
+    session.rollback()
+    if caller is not None and cache is not None:
+        cache.put(digest, caller)
+    return caller
+
+
 def require_role(*roles: str) -> Callable[..., Caller]:
     """A dependency that admits keys with one of ``roles`` and returns the caller."""
     allowed = frozenset(roles)
 
     def check(request: Request, session: DbSession) -> Caller:
-        token = _bearer_token(request)
-        # A short read of its own: the route's writes start a fresh (write) transaction.
-        begin_read_only(session)
-        found = keys.authenticate(session, token)
-        key = None if found is None else Caller(found.id, found.name, found.role)
-        session.rollback()
+        key = _lookup(request, session, _bearer_token(request))
         if key is None:
             raise Unauthorized("unknown or revoked API key")
         if key.role not in allowed:

@@ -12,7 +12,6 @@ import json
 from typing import Any
 
 from fastapi import APIRouter, Request, Response
-from sqlalchemy.exc import IntegrityError
 
 from service.api.deps import DbSession, ScoringKey
 from service.api.errors import error_responses
@@ -58,21 +57,13 @@ def recommend(
 ) -> Response:
     ctx = _context(request)
     committer: GroupCommitter | None = request.app.state.committer
-    try:
-        if committer is not None:
-            # Returns once the group holding this write has committed.
-            result, created = committer.run(lambda s: scoring.recommend(s, body, ctx))
-        else:
-            result, created = scoring.recommend(session, body, ctx)
-            session.commit()
-    except IntegrityError:
-        # Another request with the same request_id committed first (PostgreSQL): answer
-        # from its record, or 409 when the bodies differ.
-        session.rollback()
-        existing = scoring.find_existing(session, body)
-        if existing is None:
-            raise
-        result, created = existing, False
+    if committer is not None:
+        # Returns once the group holding this write has committed. The job's one write is
+        # its last statement, so it needs no savepoint of its own.
+        result, created = committer.run(lambda s: scoring.recommend(s, body, ctx), savepoint=False)
+    else:
+        result, created = scoring.recommend(session, body, ctx)
+        session.commit()
     return _json(result, 201 if created else 200)
 
 

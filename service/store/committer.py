@@ -29,10 +29,11 @@ T = TypeVar("T")
 
 
 class _Job(Generic[T]):
-    __slots__ = ("done", "error", "fn", "result")
+    __slots__ = ("done", "error", "fn", "result", "savepoint")
 
-    def __init__(self, fn: Callable[[Session], T]) -> None:
+    def __init__(self, fn: Callable[[Session], T], savepoint: bool) -> None:
         self.fn = fn
+        self.savepoint = savepoint
         self.done = threading.Event()
         self.result: T | None = None
         self.error: BaseException | None = None
@@ -63,11 +64,16 @@ class GroupCommitter:
         self._thread.join(timeout=30)
         self._thread = None
 
-    def run(self, fn: Callable[[Session], T]) -> T:
-        """Run ``fn(session)`` in the next group; return after that group has committed."""
+    def run(self, fn: Callable[[Session], T], savepoint: bool = True) -> T:
+        """Run ``fn(session)`` in the next group; return after that group has committed.
+
+        ``savepoint=False`` saves two statements for a job whose only write is its last
+        statement: when it fails there is nothing of it to undo (a failed SQLite statement
+        undoes itself and leaves the transaction open).
+        """
         if not self._running:
             raise CommitterStopped("the server is shutting down")
-        job: _Job[T] = _Job(fn)
+        job: _Job[T] = _Job(fn, savepoint)
         self._queue.put(job)
         job.done.wait()
         if job.error is not None:
@@ -110,6 +116,12 @@ class GroupCommitter:
         with self._factory() as session:
             try:
                 for job in jobs:
+                    if not job.savepoint:
+                        try:
+                            job.result = job.fn(session)
+                        except Exception as exc:
+                            job.error = exc
+                        continue
                     savepoint = session.begin_nested()
                     try:
                         job.result = job.fn(session)

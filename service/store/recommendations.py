@@ -13,6 +13,7 @@ from __future__ import annotations
 import json
 from collections.abc import Sequence
 from datetime import UTC, datetime
+from operator import itemgetter
 from typing import Any
 
 from sqlalchemy import Dialect, Table
@@ -26,11 +27,16 @@ INSERT_COLUMNS: tuple[str, ...] = tuple(
     c.name for c in TABLE.columns if c.name not in ("id", "seal_id")
 )
 _JSON = json.JSONEncoder(separators=(",", ":"), ensure_ascii=False, allow_nan=False)
-_SQL_CACHE: dict[str, str] = {}
+ATTRIBUTES_JSON = "_attributes_json"
+"""Optional row key: the attributes already encoded (the JSON column's text)."""
+_GET_ROW = itemgetter(*INSERT_COLUMNS)
+_ATTRIBUTES_AT = INSERT_COLUMNS.index("attributes")
+_ISSUED_AT = INSERT_COLUMNS.index("issued_at")
+_SQL_CACHE: dict[tuple[str, bool], str] = {}
 
 
-def _insert_sql(dialect: Dialect) -> str:
-    sql = _SQL_CACHE.get(dialect.name)
+def _insert_sql(dialect: Dialect, skip_existing: bool = False) -> str:
+    sql = _SQL_CACHE.get((dialect.name, skip_existing))
     if sql is None:
         quote = dialect.identifier_preparer.quote
         names = ", ".join(quote(c) for c in INSERT_COLUMNS)
@@ -39,16 +45,30 @@ def _insert_sql(dialect: Dialect) -> str:
         else:
             marks = ", ".join(f"%({c})s" for c in INSERT_COLUMNS)
         sql = f"INSERT INTO {quote(TABLE.name)} ({names}) VALUES ({marks})"
-        _SQL_CACHE[dialect.name] = sql
+        if skip_existing:
+            # SQLite >= 3.24 and PostgreSQL share this syntax.
+            sql += " ON CONFLICT (request_id) DO NOTHING"
+        _SQL_CACHE[(dialect.name, skip_existing)] = sql
     return sql
 
 
 def insert_records(session: Session, rows: Sequence[dict[str, Any]]) -> None:
-    if not rows:
-        return
+    """Insert many records (request_ids already checked: a duplicate is an error)."""
+    if rows:
+        conn = session.connection()
+        conn.exec_driver_sql(_insert_sql(conn.dialect), _driver_params(conn.dialect, rows))
+
+
+def insert_new_record(session: Session, row: dict[str, Any]) -> bool:
+    """Insert one record unless its request_id is stored; False when it was."""
     conn = session.connection()
-    dialect = conn.dialect
-    sql = _insert_sql(dialect)
+    result = conn.exec_driver_sql(
+        _insert_sql(conn.dialect, skip_existing=True), _driver_params(conn.dialect, [row])[0]
+    )
+    return bool(result.rowcount == 1)
+
+
+def _driver_params(dialect: Dialect, rows: Sequence[dict[str, Any]]) -> list[Any]:
     if dialect.name == "sqlite":
         stamps: dict[datetime, str] = {}  # a batch shares one issued_at: format it once
 
@@ -58,15 +78,16 @@ def insert_records(session: Session, rows: Sequence[dict[str, Any]]) -> None:
                 text = stamps[value] = value.astimezone(UTC).strftime("%Y-%m-%d %H:%M:%S.%f")
             return text
 
-        params: list[Any] = [
-            tuple(
-                row[c]
-                if c not in ("attributes", "issued_at")
-                else (_JSON.encode(row[c]) if c == "attributes" else stamp(row[c]))
-                for c in INSERT_COLUMNS
-            )
-            for row in rows
-        ]
-    else:
-        params = [{**row, "attributes": _JSON.encode(row["attributes"])} for row in rows]
-    conn.exec_driver_sql(sql, params)
+        params: list[Any] = []
+        for row in rows:
+            values = list(_GET_ROW(row))
+            values[_ATTRIBUTES_AT] = _attributes_text(row)
+            values[_ISSUED_AT] = stamp(row["issued_at"])
+            params.append(tuple(values))
+        return params
+    return [{**row, "attributes": _attributes_text(row)} for row in rows]
+
+
+def _attributes_text(row: dict[str, Any]) -> str:
+    text = row.get(ATTRIBUTES_JSON)
+    return text if text is not None else _JSON.encode(row["attributes"])

@@ -104,6 +104,49 @@ def record_leaf_hash(rec: Any) -> str:
     return hashlib.sha256(LEAF_PREFIX + record_bytes(rec)).hexdigest()
 
 
-def payload_leaf_hash(payload: dict[str, Any]) -> str:
+def _scalar(value: Any) -> str:
+    """One JSON scalar exactly as the encoder writes it (no NaN ever reaches here)."""
+    if value is None:
+        return "null"
+    if value is True:
+        return "true"
+    if value is False:
+        return "false"
+    if isinstance(value, float):
+        if value != value or value in (float("inf"), float("-inf")):
+            raise ValueError("NaN or infinity in a record")
+        return float.__repr__(value)
+    if isinstance(value, int):
+        return int.__repr__(value)
+    return _string(value)
+
+
+_string = json.encoder.encode_basestring  # the encoder's own routine (ensure_ascii=False)
+_SORTED_FIELDS = tuple(sorted(RECORD_FIELDS))
+_TEMPLATE = "{" + ",".join(f'"{k}":%s' for k in _SORTED_FIELDS) + "}"
+
+
+def payload_bytes(payload: dict[str, Any], attributes_json: str | None = None) -> bytes:
+    """``canonical_json(payload)`` for a payload in :func:`record_payload` form, written
+    field by field (the hot path: about twice as fast as the general encoder for these flat
+    records). ``attributes_json`` may pass the attributes already encoded. A test checks it
+    against ``canonical_json`` on generated records."""
+    parts = []
+    for key in _SORTED_FIELDS:
+        if key == "attributes":
+            parts.append(
+                attributes_json if attributes_json is not None else _ENCODER.encode(payload[key])
+            )
+        else:
+            parts.append(_scalar(payload[key]))
+    return (_TEMPLATE % tuple(parts)).encode("utf-8")
+
+
+def payload_leaf_hash(payload: dict[str, Any], attributes_json: str | None = None) -> str:
     """The leaf hash of a payload already in :func:`record_payload` form (the hot path)."""
-    return hashlib.sha256(LEAF_PREFIX + _ENCODER.encode(payload).encode("utf-8")).hexdigest()
+    return hashlib.sha256(LEAF_PREFIX + payload_bytes(payload, attributes_json)).hexdigest()
+
+
+def encode_attributes(attributes: dict[str, Any]) -> str:
+    """Canonical JSON text of a record's attributes (also what the JSON column stores)."""
+    return _ENCODER.encode(attributes)

@@ -5,6 +5,11 @@ is designated; the shadow result is recorded, never returned). The record and th
 are built from the same values, and a repeated ``request_id`` is answered from the stored
 record, so a replayed request gets byte-for-byte the same answer. Nothing here commits: the
 caller commits once, before it responds.
+
+The active version is looked up on every request, in the request's own transaction (one
+indexed query that also finds the shadow): correct across worker processes and rollbacks
+without any invalidation. Only the parsed documents are cached, by content hash, since a
+stored version never changes.
 """
 
 from __future__ import annotations
@@ -15,6 +20,7 @@ import uuid
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from datetime import datetime
+from functools import lru_cache
 from typing import Any, Protocol
 
 from sqlalchemy import bindparam, select
@@ -25,8 +31,8 @@ from service.policy.document import PolicyDocument, resolve_rule_key
 from service.policy.errors import PolicyError
 from service.policy.rules import check_score, evaluate, evaluate_batch, rule_for
 from service.store.models import PolicyShadow, PolicyVersion, Recommendation, VersionStatus, utcnow
-from service.store.recommendations import insert_records
-from service.store.records import format_timestamp, payload_leaf_hash
+from service.store.recommendations import ATTRIBUTES_JSON, insert_new_record, insert_records
+from service.store.records import encode_attributes, format_timestamp, payload_leaf_hash
 
 AttributeValue = str | int | float | bool
 
@@ -198,6 +204,12 @@ def _stored_attributes(plan: Plan, attributes: Mapping[str, AttributeValue]) -> 
     return {a: attributes[a] for a in plan.stored_attributes if a in attributes}
 
 
+@lru_cache(maxsize=4096)
+def _attributes_json(items: tuple[tuple[str, type, Any], ...]) -> str:
+    # Keyed with the value's type: 1, 1.0 and True are equal as keys but not as JSON.
+    return encode_attributes({k: v for k, _, v in items})
+
+
 def _shadow_one(plan: Plan, req: ScoreInput, secret: bytes) -> tuple[float | None, bool | None]:
     if plan.shadow is None or plan.shadow_version is None:
         return None, None
@@ -224,6 +236,8 @@ def _row(
     second pass over the row (verify recomputes it from the stored row the general way).
     """
     group, rule, probability, draw, action = decision
+    attributes = _stored_attributes(plan, req.attributes)
+    attributes_json = _attributes_json(tuple((k, type(v), v) for k, v in attributes.items()))
     payload = {
         "recommendation_id": str(uuid.uuid4()),
         "request_id": req.request_id,
@@ -231,7 +245,7 @@ def _row(
         "policy": plan.name,
         "version": plan.version,
         "score": float(req.score),
-        "attributes": _stored_attributes(plan, req.attributes),
+        "attributes": attributes,
         "group": group,
         "rule": rule,
         "probability": probability,
@@ -248,7 +262,8 @@ def _row(
         **payload,
         "issued_at": issued_at[0],
         "request_fingerprint": fp,
-        "record_hash": payload_leaf_hash(payload),
+        "record_hash": payload_leaf_hash(payload, attributes_json),
+        ATTRIBUTES_JSON: attributes_json,
     }
     return row, response
 
@@ -261,20 +276,35 @@ def _now() -> tuple[datetime, str]:
 def recommend(
     session: Session, req: ScoreInput, ctx: ScoringContext
 ) -> tuple[dict[str, Any], bool]:
-    """(response, created). A replay of a stored request returns it with created=False."""
-    existing = find_existing(session, req)
-    if existing is not None:
-        return existing, False
-    plan = resolve_plan(session, req.policy, ctx)
-    d = evaluate(
-        plan.document, plan.version, req.score, dict(req.attributes), req.case_id, ctx.secret
-    )
+    """(response, created). A replay of a stored request returns it with created=False.
+
+    New requests, the common case, cost two statements: the plan lookup and an insert that
+    skips a request_id already stored (``ON CONFLICT DO NOTHING``, which also settles two
+    concurrent requests with one request_id without an error). Only when nothing was
+    inserted, or the request cannot be decided, is the stored record looked up: a replay
+    gets its stored answer even after the policy moved on, a reuse with another body a 409.
+    The single write is the last statement, so a failure leaves nothing to undo.
+    """
+    try:
+        plan = resolve_plan(session, req.policy, ctx)
+        d = evaluate(
+            plan.document, plan.version, req.score, dict(req.attributes), req.case_id, ctx.secret
+        )
+    except (ServiceError, PolicyError):
+        existing = find_existing(session, req)
+        if existing is not None:
+            return existing, False
+        raise
     decision = (d.group, d.rule, float(d.probability), float(d.draw), bool(d.action))
     row, response = _row(
         plan, req, fingerprint(req), decision, _shadow_one(plan, req, ctx.secret), _now()
     )
-    insert_records(session, [row])
-    return response, True
+    if insert_new_record(session, row):
+        return response, True
+    existing = find_existing(session, req)
+    if existing is None:  # cannot happen: the conflicting row is visible once we waited on it
+        raise Conflict("request_id is being recorded concurrently; retry", code="concurrent_change")
+    return existing, False
 
 
 # -- batches ------------------------------------------------------------------------------
