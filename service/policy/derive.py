@@ -112,6 +112,8 @@ class Unit:
     governed: int
     curve: RocCurve
     hull: Hull
+    scores: FloatArray  # data.scores[rows], gathered once for the checks of every criterion
+    outcomes: FloatArray  # data.outcomes[rows] as floats
 
 
 @dataclass(frozen=True)
@@ -135,7 +137,8 @@ def _make_unit(
     governed: int,
     low: float,
 ) -> Unit:
-    curve = roc_curve(data.scores[rows], data.outcomes[rows])
+    scores, outcomes = data.scores[rows], data.outcomes[rows]
+    curve = roc_curve(scores, outcomes)
     if curve.positives == 0 or curve.negatives == 0:
         which = "positive" if curve.positives == 0 else "negative"
         raise DeriveError(
@@ -143,7 +146,10 @@ def _make_unit(
             "to fit on",
             field=key,
         )
-    return Unit(key, tuple(members), rows, governed, curve, hull_of(curve, low))
+    hull = hull_of(curve, low)
+    return Unit(
+        key, tuple(members), rows, governed, curve, hull, scores, outcomes.astype(np.float64)
+    )
 
 
 def prepare(data: CalibrationData, settings: DeriveSettings) -> Prepared:
@@ -253,6 +259,10 @@ def solve_lp(
     - "gap" (every pairwise |q_u - q_v| <= eps): lo <= q_u <= hi for all u, hi - lo <= eps;
     - "ratio" (four-fifths on the favourable rate r_u, r_u >= 0.8 r_v - eps for all u, v):
       r_u <= M for all u and 0.8 M - r_u <= eps, M an auxiliary variable.
+
+    Each unit's cost is weighted by the rows it governs. For a parent unit that is an
+    estimate (its rates come from the whole parent population, its weight from the small
+    groups using it); :func:`solve` always recomputes the expected cost exactly from the rules.
     """
     sizes = [len(u.hull.fpr) for u in units]
     offsets = np.concatenate([[0], np.cumsum(sizes)]).astype(int)
@@ -451,7 +461,7 @@ def solve(prepared: Prepared, criterion: Criterion, tolerance: float = 0.0) -> S
     unit_probabilities: dict[str, FloatArray] = {}
     for unit, point in zip(units, points, strict=True):
         rule = rule_for_point(unit.hull, point, low)
-        unit_probabilities[unit.key] = _check_rule(unit, rule, point, data)
+        unit_probabilities[unit.key] = _check_rule(unit, rule, point)
         rules[unit.key] = rule
 
     groups: list[GroupResult] = []
@@ -486,10 +496,10 @@ def solve(prepared: Prepared, criterion: Criterion, tolerance: float = 0.0) -> S
     )
 
 
-def _check_rule(unit: Unit, rule: Rule, point: LpPoint, data: CalibrationData) -> FloatArray:
+def _check_rule(unit: Unit, rule: Rule, point: LpPoint) -> FloatArray:
     """The rule's probabilities on the unit's rows, once its rates are seen to match."""
-    probabilities = rule_probabilities(rule, data.scores[unit.rows])
-    counts = expected_counts(probabilities, data.outcomes[unit.rows])
+    probabilities = rule_probabilities(rule, unit.scores)
+    counts = expected_counts(probabilities, unit.outcomes)
     gap = max(abs(float(counts.fpr[0]) - point.fpr), abs(float(counts.tpr[0]) - point.tpr))
     if gap > CHECK_TOLERANCE:
         raise RuntimeError(

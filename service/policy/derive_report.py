@@ -11,7 +11,7 @@ from service.policy.derive import (
     Prepared,
     Solution,
 )
-from service.policy.document import PolicyDocument, resolve_rule_key
+from service.policy.document import PolicyDocument, content_hash, resolve_rule_key
 from service.policy.holdout import HoldoutGroup, RateWithInterval
 
 CAUTIONS = (
@@ -69,6 +69,7 @@ def build_report(
         rules = {"everyone": rules[POOLED_UNIT]}
     report: dict[str, Any] = {
         "policy": policy.name,
+        "policy_hash": content_hash(policy),  # ties the report to the exact document
         "criterion": solution.criterion.value,
         "tolerance": solution.tolerance,
         "favourable": policy.favourable,
@@ -93,7 +94,8 @@ def build_report(
             "criterion": solution.criterion.value,
             "points": [{"tolerance": t, "expected_cost": c} for t, c in frontier],
         },
-        "fallbacks": list(prepared.notes),
+        # One rule for everyone needs no fallback; the notes belong to the per-group criteria.
+        "fallbacks": [] if POOLED_UNIT in solution.rules else list(prepared.notes),
         "cautions": list(CAUTIONS),
     }
     if holdout is not None:

@@ -92,10 +92,28 @@ class ExpectedCounts:
         )
 
 
-def expected_counts(probabilities: FloatArray, outcomes: npt.NDArray[np.integer]) -> ExpectedCounts:
+def expected_counts(
+    probabilities: FloatArray, outcomes: npt.NDArray[np.integer] | FloatArray
+) -> ExpectedCounts:
     """Expected counts of one population (arrays of length 1)."""
-    codes = np.zeros(len(probabilities), dtype=np.intp)
-    return expected_counts_by_group(probabilities, outcomes, codes, 1)
+    p = np.asarray(probabilities, dtype=np.float64)
+    y = np.asarray(outcomes).astype(np.float64)
+    if len(p) != len(y):
+        raise ValueError("probabilities and outcomes must have the same length")
+    _check_probabilities(p)
+    positives = float(y.sum())
+    tp = float(p @ y)
+    fp = float(p.sum()) - tp
+
+    def one(x: float) -> FloatArray:
+        return np.array([x], dtype=np.float64)
+
+    return ExpectedCounts(one(tp), one(fp), one(positives - tp), one(len(p) - positives - fp))
+
+
+def _check_probabilities(p: FloatArray) -> None:
+    if len(p) and not (np.all(np.isfinite(p)) and p.min() >= 0.0 and p.max() <= 1.0):
+        raise ValueError("probabilities must lie in [0, 1]")
 
 
 def expected_counts_by_group(
@@ -110,8 +128,7 @@ def expected_counts_by_group(
     codes = np.asarray(group_codes, dtype=np.intp)
     if not (len(p) == len(y) == len(codes)):
         raise ValueError("probabilities, outcomes and group_codes must have the same length")
-    if len(p) and (np.any(p < 0.0) or np.any(p > 1.0) or not np.all(np.isfinite(p))):
-        raise ValueError("probabilities must lie in [0, 1]")
+    _check_probabilities(p)
     positives = _sum_by(codes, y.astype(np.float64), n_groups)
     negatives = _sum_by(codes, (~y).astype(np.float64), n_groups)
     tp = _sum_by(codes, np.where(y, p, 0.0), n_groups)

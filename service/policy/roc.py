@@ -40,7 +40,8 @@ class RocCurve:
 
 def roc_curve(scores: FloatArray, outcomes: npt.NDArray[np.integer]) -> RocCurve:
     """ROC over all distinct cuts, from never (0, 0) down to the lowest score (1, 1)."""
-    order = np.argsort(scores, kind="stable")[::-1]
+    # The order among equal scores does not matter: each run of ties closes one cut.
+    order = np.argsort(scores)[::-1]
     s = scores[order]
     y = outcomes[order].astype(bool)
     tp = np.cumsum(y, dtype=np.int64)

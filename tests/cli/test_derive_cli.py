@@ -11,7 +11,7 @@ from statsmodels.stats.proportion import proportion_confint
 
 from service.cli.main import main
 from service.demo.fernhollow import generate, write_csv
-from service.policy.document import PolicyDocument
+from service.policy.document import PolicyDocument, content_hash
 
 
 @pytest.fixture(scope="module")
@@ -54,6 +54,7 @@ def test_derive_writes_policy_report_and_page(
     policy = PolicyDocument.model_validate_json((tmp_path / "policy.json").read_text())
     assert policy.name == "fh-test" and policy.favourable == "action"
     report = json.loads((tmp_path / "report.json").read_text())
+    assert report["policy_hash"] == content_hash(policy)
     for key in ("criterion", "tolerance", "expected_cost", "groups", "comparison", "frontier"):
         assert key in report
     assert set(report["groups"]) == {"millbrook", "quarry-hill", "saltmarsh"}
