@@ -35,6 +35,7 @@ ACCESS: dict[tuple[str, str], str] = {
     ("GET", "/v1/policies/{name}/shadow"): "admin",
     ("PUT", "/v1/policies/{name}/shadow"): "admin",
     ("DELETE", "/v1/policies/{name}/shadow"): "admin",
+    ("GET", "/v1/log/verify"): "audit",
 }
 STORE_ROUTES = set(ACCESS)
 # The decision-log and audit routers (other modules): checked here too once they are part of

@@ -12,9 +12,9 @@ from service.cli.common import CliError
 
 def _command_modules() -> list[ModuleType]:
     # Imported here so ``evenhand --help`` stays fast and one broken module names itself.
-    from service.cli import demo_data, derive, keys, migrate, policy, schema, serve
+    from service.cli import demo, demo_data, derive, keys, log, migrate, policy, schema, serve
 
-    return [serve, migrate, keys, policy, demo_data, derive, schema]
+    return [serve, migrate, keys, policy, log, demo, demo_data, derive, schema]
 
 
 def build_parser() -> argparse.ArgumentParser:
