@@ -272,7 +272,7 @@ def trend_chart(snapshot: Mapping[str, Any]) -> str | None:
 
 def _fmt(value: Any, digits: int = 3) -> str:
     if value is None or isinstance(value, Undefined):
-        return "–"
+        return "\u2013"
     if isinstance(value, str):
         return value
     if isinstance(value, int) and not isinstance(value, bool):
@@ -287,7 +287,7 @@ def _fmt_rate(r: Mapping[str, Any]) -> str:
             "small-cell": "withheld",
             "not-identifiable": "not identifiable",
             "no-cases": "no cases",
-        }.get(reason, "–")
+        }.get(reason, "\u2013")
     return f"{r['value']:.3f} [{r['low']:.3f}, {r['high']:.3f}]"
 
 
@@ -320,7 +320,6 @@ def to_html(snapshot: Mapping[str, Any]) -> str:
         s=snapshot,
         charts=charts,
         trend=trend_chart(snapshot),
-        table_rates=("action_rate", "favourable_rate", "coverage", "prevalence")
-        + ("tpr", "fpr", "fnr", "ppv", "npv", "override_rate"),
-        gap_metrics=("action_rate", "coverage", "tpr", "fpr", "ppv", "npv"),
+        table_rates=RATE_METRICS,
+        gap_metrics=GAP_METRICS,
     )
