@@ -22,7 +22,8 @@ import matplotlib.pyplot as plt
 from jinja2 import Environment, PackageLoader, Undefined, select_autoescape
 from matplotlib.figure import Figure
 
-from service.audit.snapshot import METRIC_LABELS
+from service.audit.snapshot import METRIC_LABELS, TREND_METRICS
+from service.policy.realized import GAP_METRICS, RATE_METRICS
 
 CSV_COLUMNS = (
     "month",
@@ -242,9 +243,7 @@ def roc_chart(version: Mapping[str, Any]) -> str | None:
 def trend_chart(snapshot: Mapping[str, Any]) -> str | None:
     """The gap of each group to the reference over the last 12 months, one panel per rate."""
     trend = snapshot.get("trend", [])
-    metrics = [
-        m for m in ("action_rate", "tpr", "fpr", "ppv") if any(p["metric"] == m for p in trend)
-    ]
+    metrics = [m for m in TREND_METRICS if any(p["metric"] == m for p in trend)]
     if not metrics:
         return None
     months = sorted({p["month"] for p in trend})
