@@ -1,0 +1,82 @@
+"""Rejects oversized request bodies before the application reads them.
+
+Checked twice: by ``Content-Length`` before a byte is read, and by counting the bytes as
+they stream in (chunked bodies, or a lying header). The body is buffered up to the limit
+and then handed to the application unchanged.
+"""
+
+from __future__ import annotations
+
+import json
+
+from starlette.types import ASGIApp, Message, Receive, Scope, Send
+
+
+class BodySizeLimit:
+    def __init__(self, app: ASGIApp, max_bytes: int) -> None:
+        self.app = app
+        self.max_bytes = max_bytes
+
+    async def _reject(self, send: Send) -> None:
+        body = json.dumps(
+            {
+                "error": {
+                    "code": "body_too_large",
+                    "message": f"the request body is larger than {self.max_bytes} bytes "
+                    "(EVENHAND_MAX_BODY_BYTES); split the batch",
+                    "field": None,
+                    "details": [],
+                }
+            }
+        ).encode()
+        await send(
+            {
+                "type": "http.response.start",
+                "status": 413,
+                "headers": [
+                    (b"content-type", b"application/json"),
+                    (b"content-length", str(len(body)).encode()),
+                    (b"connection", b"close"),
+                ],
+            }
+        )
+        await send({"type": "http.response.body", "body": body})
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        if scope["type"] != "http" or scope["method"] in ("GET", "HEAD", "OPTIONS"):
+            await self.app(scope, receive, send)
+            return
+        for name, value in scope["headers"]:
+            if name == b"content-length":
+                try:
+                    declared = int(value)
+                except ValueError:
+                    declared = -1
+                if declared > self.max_bytes:
+                    await self._reject(send)
+                    return
+        chunks: list[bytes] = []
+        size = 0
+        while True:
+            message = await receive()
+            if message["type"] == "http.disconnect":
+                return
+            chunk = message.get("body", b"")
+            size += len(chunk)
+            if size > self.max_bytes:
+                await self._reject(send)
+                return
+            chunks.append(chunk)
+            if not message.get("more_body", False):
+                break
+        body = b"".join(chunks)
+        sent = False
+
+        async def replay() -> Message:
+            nonlocal sent
+            if not sent:
+                sent = True
+                return {"type": "http.request", "body": body, "more_body": False}
+            return await receive()
+
+        await self.app(scope, replay, send)

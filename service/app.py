@@ -1,0 +1,46 @@
+"""The application factory: settings in, a FastAPI app out; the lifespan owns the engine."""
+
+from __future__ import annotations
+
+from collections.abc import AsyncIterator
+from contextlib import asynccontextmanager
+
+from fastapi import FastAPI
+
+from service.api import health
+from service.api.errors import install_error_handlers
+from service.api.limits import BodySizeLimit
+from service.settings import Settings
+from service.store.db import create_db_engine, create_session_factory
+
+
+def create_app(settings: Settings | None = None) -> FastAPI:
+    settings = settings or Settings()
+    # Refuse to start without the draw secret: every recommendation needs it.
+    settings.draw_key()
+
+    @asynccontextmanager
+    async def lifespan(app: FastAPI) -> AsyncIterator[None]:
+        engine = create_db_engine(settings)
+        app.state.engine = engine
+        app.state.session_factory = create_session_factory(engine)
+        # Background tasks (e.g. the periodic log sealer) start here and stop after `yield`.
+        try:
+            yield
+        finally:
+            engine.dispose()
+
+    app = FastAPI(
+        title="Evenhand",
+        version="0.1.0",
+        description=(
+            "Governed decision policies, a keyed scoring API and a tamper-evident decision "
+            "log. Recommendations are advisory: a person decides and can override."
+        ),
+        lifespan=lifespan,
+    )
+    app.state.settings = settings
+    install_error_handlers(app)
+    app.include_router(health.router)
+    app.add_middleware(BodySizeLimit, max_bytes=settings.max_body_bytes)
+    return app

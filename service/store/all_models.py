@@ -1,0 +1,6 @@
+"""Imports every module that defines tables, so ``Base.metadata`` is complete.
+
+Alembic and the schema-drift test import this; add new model modules here.
+"""
+
+from service.store import models  # noqa: F401

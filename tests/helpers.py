@@ -1,0 +1,65 @@
+"""Small helpers for test data, shared by every test module."""
+
+from __future__ import annotations
+
+import copy
+import uuid
+from typing import Any
+
+from sqlalchemy.orm import Session, sessionmaker
+
+from service.store import keys
+
+TEST_SECRET = "test-draw-secret-not-for-production"
+
+_BASE_POLICY: dict[str, Any] = {
+    "name": "readmission",
+    "description": "test policy",
+    "score_meaning": "P(readmission within 30 days)",
+    "score_range": [0.0, 1.0],
+    "action_label": "offer follow-up",
+    "no_action_label": "standard discharge",
+    "favourable": "action",
+    "costs": {"false_positive": 1.0, "false_negative": 4.0},
+    "groups": {
+        "attributes": ["region"],
+        "known": ["north", "south"],
+        "fallback": {"unknown_groups": "refuse"},
+    },
+    "rules": {
+        "north": {"steps": [{"from": 0.3, "probability": 1.0}]},
+        "south": {"steps": [{"from": 0.2, "probability": 0.5}, {"from": 0.4, "probability": 1.0}]},
+    },
+}
+
+
+def make_policy(**overrides: Any) -> dict[str, Any]:
+    """A valid policy document (JSON data); top-level keys can be replaced."""
+    doc = copy.deepcopy(_BASE_POLICY)
+    doc.update(copy.deepcopy(overrides))
+    return doc
+
+
+def create_key(factory: sessionmaker[Session], role: str, name: str | None = None) -> str:
+    """Create an API key directly in the database and return its token."""
+    with factory() as session:
+        _, token = keys.create_key(session, name or f"{role}-{uuid.uuid4().hex[:8]}", role)
+        session.commit()
+    return token
+
+
+def bearer(token: str) -> dict[str, str]:
+    return {"Authorization": f"Bearer {token}"}
+
+
+def make_request(**overrides: Any) -> dict[str, Any]:
+    """A valid scoring request body for :func:`make_policy`'s policy."""
+    body: dict[str, Any] = {
+        "request_id": f"req-{uuid.uuid4().hex}",
+        "case_id": f"case-{uuid.uuid4().hex[:10]}",
+        "policy": "readmission",
+        "score": 0.5,
+        "attributes": {"region": "north"},
+    }
+    body.update(overrides)
+    return body
