@@ -7,7 +7,7 @@ from contextlib import asynccontextmanager
 
 from fastapi import FastAPI
 
-from service.api import health
+from service.api import health, outcomes, reports
 from service.api.errors import install_error_handlers
 from service.api.limits import BodySizeLimit
 from service.settings import Settings
@@ -42,5 +42,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.state.settings = settings
     install_error_handlers(app)
     app.include_router(health.router)
+    app.include_router(outcomes.router)
+    app.include_router(reports.router)
     app.add_middleware(BodySizeLimit, max_bytes=settings.max_body_bytes)
     return app

@@ -12,7 +12,9 @@ from service.cli.common import CliError
 
 def _command_modules() -> list[ModuleType]:
     # Imported here so ``evenhand --help`` stays fast and one broken module names itself.
-    return []
+    from service.cli import audit, report
+
+    return [audit, report]
 
 
 def build_parser() -> argparse.ArgumentParser:
