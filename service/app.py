@@ -7,17 +7,18 @@ from contextlib import asynccontextmanager
 
 from fastapi import FastAPI
 
-from service.api import health, outcomes, reports
+from service.api import health, outcomes, policies, recommendations, reports
 from service.api.errors import install_error_handlers
 from service.api.limits import BodySizeLimit
 from service.settings import Settings
 from service.store.db import create_db_engine, create_session_factory
+from service.store.scoring import DocumentCache, ScoringContext
 
 
 def create_app(settings: Settings | None = None) -> FastAPI:
     settings = settings or Settings()
     # Refuse to start without the draw secret: every recommendation needs it.
-    settings.draw_key()
+    secret = settings.draw_key()
 
     @asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
@@ -40,8 +41,11 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         lifespan=lifespan,
     )
     app.state.settings = settings
+    app.state.scoring = ScoringContext(secret, DocumentCache(), settings.max_batch_items)
     install_error_handlers(app)
     app.include_router(health.router)
+    app.include_router(policies.router)
+    app.include_router(recommendations.router)
     app.include_router(outcomes.router)
     app.include_router(reports.router)
     app.add_middleware(BodySizeLimit, max_bytes=settings.max_body_bytes)

@@ -1,0 +1,87 @@
+"""Scoring (scoring role): one recommendation or a batch, each on the record before the reply.
+
+The route commits explicitly before it returns: the decision and its log record are one
+transaction, durable before a byte of the response is sent.
+"""
+
+from __future__ import annotations
+
+import json
+from typing import Any
+
+from fastapi import APIRouter, Request, Response
+from sqlalchemy.exc import IntegrityError
+
+from service.api.deps import DbSession, ScoringKey
+from service.api.errors import error_responses
+from service.api.recommendation_schemas import (
+    BatchRequest,
+    BatchResponse,
+    RecommendationRequest,
+    RecommendationResponse,
+)
+from service.store import scoring
+from service.store.scoring import ScoringContext
+
+router = APIRouter(
+    prefix="/v1/recommendations",
+    tags=["recommendations"],
+    responses=error_responses(400, 401, 403, 409, 413, 422),
+)
+
+
+def _json(content: Any, status: int) -> Response:
+    body = json.dumps(content, ensure_ascii=False, allow_nan=False, separators=(",", ":"))
+    return Response(body.encode("utf-8"), status_code=status, media_type="application/json")
+
+
+def _context(request: Request) -> ScoringContext:
+    ctx: ScoringContext = request.app.state.scoring
+    return ctx
+
+
+@router.post(
+    "",
+    status_code=201,
+    summary="One recommendation (200 with the stored answer when request_id repeats)",
+    response_model=None,
+    responses={
+        201: {"model": RecommendationResponse, "description": "Recorded and returned"},
+        200: {"model": RecommendationResponse, "description": "Replay of a stored request"},
+    },
+)
+def recommend(
+    body: RecommendationRequest, request: Request, session: DbSession, _key: ScoringKey
+) -> Response:
+    ctx = _context(request)
+    try:
+        result, created = scoring.recommend(session, body, ctx)
+        session.commit()
+    except IntegrityError:
+        # Another request with the same request_id committed first (PostgreSQL): answer
+        # from its record, or 409 when the bodies differ.
+        session.rollback()
+        existing = scoring.find_existing(session, body)
+        if existing is None:
+            raise
+        result, created = existing, False
+    return _json(result, 201 if created else 200)
+
+
+@router.post(
+    "/batch",
+    status_code=201,
+    summary="Up to max_batch_items recommendations, validated as a whole, one transaction",
+    response_model=None,
+    responses={
+        201: {"model": BatchResponse, "description": "Recorded (some items may be replays)"},
+        200: {"model": BatchResponse, "description": "Every item was a replay"},
+    },
+)
+def recommend_batch(
+    body: BatchRequest, request: Request, session: DbSession, _key: ScoringKey
+) -> Response:
+    ctx = _context(request)
+    items, created = scoring.recommend_batch(session, body.items, ctx)
+    session.commit()
+    return _json({"items": items, "created": created}, 201 if created else 200)

@@ -1,0 +1,421 @@
+"""Scoring: turn requests into recommendations and their decision log records.
+
+A request is evaluated against the policy's active version (and its shadow version, if one
+is designated; the shadow result is recorded, never returned). The record and the response
+are built from the same values, and a repeated ``request_id`` is answered from the stored
+record, so a replayed request gets byte-for-byte the same answer. Nothing here commits: the
+caller commits once, before it responds.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import threading
+import uuid
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from datetime import datetime
+from typing import Any, Protocol
+
+from sqlalchemy import Table, insert, select
+from sqlalchemy.orm import Session, aliased
+
+from service.errors import Conflict, ServiceError, Unprocessable
+from service.policy.document import PolicyDocument, canonical_json, resolve_rule_key
+from service.policy.errors import PolicyError
+from service.policy.rules import check_score, evaluate, evaluate_batch, rule_for
+from service.store.models import PolicyShadow, PolicyVersion, Recommendation, VersionStatus, utcnow
+from service.store.records import format_timestamp, record_leaf_hash
+
+AttributeValue = str | int | float | bool
+
+
+class ScoreInput(Protocol):
+    @property
+    def request_id(self) -> str: ...
+    @property
+    def case_id(self) -> str: ...
+    @property
+    def policy(self) -> str: ...
+    @property
+    def score(self) -> float: ...
+    @property
+    def attributes(self) -> Mapping[str, AttributeValue]: ...
+
+
+RESPONSE_FIELDS = (
+    "recommendation_id",
+    "request_id",
+    "case_id",
+    "policy",
+    "version",
+    "group",
+    "rule",
+    "probability",
+    "draw",
+    "action",
+    "action_label",
+    "issued_at",
+)
+
+_STORED = [getattr(Recommendation, f) for f in RESPONSE_FIELDS if f != "issued_at"] + [
+    Recommendation.issued_at,
+    Recommendation.request_fingerprint,
+]
+
+
+class DocumentCache:
+    """Parsed policy documents by (name, version, content hash).
+
+    Stored versions never change, so an entry never goes stale; the content hash in the key
+    makes even a database that was emptied and refilled safe.
+    """
+
+    def __init__(self) -> None:
+        self._docs: dict[tuple[str, int, str], PolicyDocument] = {}
+        self._lock = threading.Lock()
+
+    def get(self, session: Session, name: str, version: int, digest: str) -> PolicyDocument:
+        key = (name, version, digest)
+        doc = self._docs.get(key)
+        if doc is not None:
+            return doc
+        data = session.scalar(
+            select(PolicyVersion.document).where(
+                PolicyVersion.name == name, PolicyVersion.version == version
+            )
+        )
+        doc = PolicyDocument.model_validate(data)
+        with self._lock:
+            self._docs[key] = doc
+        return doc
+
+
+@dataclass(frozen=True, slots=True)
+class ScoringContext:
+    secret: bytes
+    documents: DocumentCache
+    max_batch_items: int = 10_000
+
+
+@dataclass(frozen=True, slots=True)
+class Plan:
+    """What a policy's requests are evaluated with right now."""
+
+    name: str
+    version: int
+    document: PolicyDocument
+    shadow_version: int | None
+    shadow: PolicyDocument | None
+    stored_attributes: tuple[str, ...]
+
+
+_Shadow = aliased(PolicyVersion)
+# Core insert on the table itself: executemany without the ORM's per-row bookkeeping.
+RECOMMENDATIONS: Table = Recommendation.__table__  # type: ignore[assignment]
+
+
+def resolve_plan(session: Session, name: str, ctx: ScoringContext) -> Plan:
+    """The active (and shadow) version of ``name``, read in the request's transaction."""
+    row = session.execute(
+        select(
+            PolicyVersion.version, PolicyVersion.content_hash, _Shadow.version, _Shadow.content_hash
+        )
+        .outerjoin(PolicyShadow, PolicyShadow.name == PolicyVersion.name)
+        .outerjoin(
+            _Shadow, (_Shadow.name == PolicyShadow.name) & (_Shadow.version == PolicyShadow.version)
+        )
+        .where(PolicyVersion.name == name, PolicyVersion.status == VersionStatus.ACTIVE.value)
+    ).first()
+    if row is None:
+        exists = session.scalar(select(PolicyVersion.id).where(PolicyVersion.name == name).limit(1))
+        if exists is None:
+            raise Unprocessable(f"no policy named {name!r}", code="unknown_policy", field="policy")
+        raise Conflict(
+            f"policy {name!r} has no active version: an admin must activate one",
+            code="no_active_version",
+            field="policy",
+        )
+    version, digest, shadow_version, shadow_digest = row
+    document = ctx.documents.get(session, name, version, digest)
+    shadow = None
+    if shadow_version is not None:
+        shadow = ctx.documents.get(session, name, shadow_version, shadow_digest)
+    attrs = list(document.groups.attributes)
+    if shadow is not None:
+        attrs += [a for a in shadow.groups.attributes if a not in attrs]
+    return Plan(name, int(version), document, shadow_version, shadow, tuple(attrs))
+
+
+def fingerprint(req: ScoreInput) -> str:
+    body = {
+        "request_id": req.request_id,
+        "case_id": req.case_id,
+        "policy": req.policy,
+        "score": float(req.score),
+        "attributes": dict(req.attributes),
+    }
+    return hashlib.sha256(canonical_json(body)).hexdigest()
+
+
+def response_of(values: Any) -> dict[str, Any]:
+    """The API response for a record (a row or a mapping of its values)."""
+    get = values.__getitem__ if isinstance(values, Mapping) else values._mapping.__getitem__
+    out = {f: get(f) for f in RESPONSE_FIELDS}
+    out["issued_at"] = format_timestamp(out["issued_at"])
+    out["action"] = bool(out["action"])
+    return out
+
+
+def _replay(row: Any, req: ScoreInput, fp: str) -> dict[str, Any]:
+    if row.request_fingerprint != fp:
+        raise Conflict(
+            f"request_id {req.request_id!r} was already used with a different body; use a new "
+            "request_id for a new request",
+            code="idempotency_conflict",
+            field="request_id",
+        )
+    return response_of(row)
+
+
+def find_existing(session: Session, req: ScoreInput) -> dict[str, Any] | None:
+    """The stored answer for this request_id (None if new); 409 if the body differs."""
+    row = session.execute(
+        select(*_STORED).where(Recommendation.request_id == req.request_id)
+    ).first()
+    return None if row is None else _replay(row, req, fingerprint(req))
+
+
+def _stored_attributes(plan: Plan, attributes: Mapping[str, AttributeValue]) -> dict[str, Any]:
+    # Keep only what the policy needs (data minimisation); the fingerprint covers the rest.
+    return {a: attributes[a] for a in plan.stored_attributes if a in attributes}
+
+
+def _shadow_one(plan: Plan, req: ScoreInput, secret: bytes) -> tuple[float | None, bool | None]:
+    if plan.shadow is None or plan.shadow_version is None:
+        return None, None
+    try:
+        d = evaluate(
+            plan.shadow, plan.shadow_version, req.score, dict(req.attributes), req.case_id, secret
+        )
+    except PolicyError:
+        return None, None  # the shadow could not decide; recorded as such
+    return d.probability, d.action
+
+
+def _finish(values: dict[str, Any]) -> dict[str, Any]:
+    values["record_hash"] = record_leaf_hash(values)
+    return values
+
+
+def recommend(
+    session: Session, req: ScoreInput, ctx: ScoringContext
+) -> tuple[dict[str, Any], bool]:
+    """(response, created). A replay of a stored request returns it with created=False."""
+    existing = find_existing(session, req)
+    if existing is not None:
+        return existing, False
+    plan = resolve_plan(session, req.policy, ctx)
+    d = evaluate(
+        plan.document, plan.version, req.score, dict(req.attributes), req.case_id, ctx.secret
+    )
+    shadow_p, shadow_a = _shadow_one(plan, req, ctx.secret)
+    values = _finish(
+        {
+            "recommendation_id": str(uuid.uuid4()),
+            "request_id": req.request_id,
+            "request_fingerprint": fingerprint(req),
+            "case_id": req.case_id,
+            "policy": plan.name,
+            "version": plan.version,
+            "score": float(req.score),
+            "attributes": _stored_attributes(plan, req.attributes),
+            "group": d.group,
+            "rule": d.rule,
+            "probability": float(d.probability),
+            "draw": float(d.draw),
+            "action": bool(d.action),
+            "action_label": d.action_label,
+            "issued_at": utcnow(),
+            "shadow_version": plan.shadow_version,
+            "shadow_probability": shadow_p,
+            "shadow_action": shadow_a,
+        }
+    )
+    session.connection().execute(insert(RECOMMENDATIONS), [values])
+    return response_of(values), True
+
+
+# -- batches ------------------------------------------------------------------------------
+
+
+def _item_error(i: int, exc: ServiceError | PolicyError) -> dict[str, Any]:
+    field = f"items.{i}" + (f".{exc.field}" if exc.field else "")
+    return {"code": exc.code, "message": exc.message, "field": field}
+
+
+def recommend_batch(
+    session: Session, items: Sequence[ScoreInput], ctx: ScoringContext
+) -> tuple[list[dict[str, Any]], int]:
+    """(responses in input order, number newly written). All or nothing: any bad item -> 422."""
+    if len(items) > ctx.max_batch_items:
+        raise ServiceError(
+            f"a batch holds at most {ctx.max_batch_items} items (got {len(items)}); split it",
+            code="batch_too_large",
+            field="items",
+        )
+    errors: list[dict[str, Any]] = []
+    seen: dict[str, int] = {}
+    for i, req in enumerate(items):
+        if req.request_id in seen:
+            errors.append(
+                {
+                    "code": "duplicate_request_id",
+                    "message": f"request_id {req.request_id!r} is also used by "
+                    f"items.{seen[req.request_id]}",
+                    "field": f"items.{i}.request_id",
+                }
+            )
+        else:
+            seen[req.request_id] = i
+    fingerprints = [fingerprint(r) for r in items]
+    responses: list[dict[str, Any] | None] = [None] * len(items)
+    ids = list(seen)
+    for start in range(0, len(ids), 1000):
+        chunk = ids[start : start + 1000]
+        for row in session.execute(select(*_STORED).where(Recommendation.request_id.in_(chunk))):
+            i = seen[row.request_id]
+            try:
+                responses[i] = _replay(row, items[i], fingerprints[i])
+            except Conflict as exc:
+                errors.append(_item_error(i, exc))
+
+    new_by_policy: dict[str, list[int]] = {}
+    for i, req in enumerate(items):
+        if responses[i] is None:
+            new_by_policy.setdefault(req.policy, []).append(i)
+
+    plans: dict[str, Plan] = {}
+    groups: dict[int, str] = {}
+    for name, rows in new_by_policy.items():
+        try:
+            plans[name] = plan = resolve_plan(session, name, ctx)
+        except ServiceError as exc:
+            errors.extend(_item_error(i, exc) for i in rows)
+            continue
+        rule_ok: dict[str, bool] = {}
+        for i in rows:
+            req = items[i]
+            try:
+                check_score(plan.document, req.score)
+                g = plan.document.group_key(req.attributes)  # type: ignore[arg-type]
+                if g not in rule_ok:
+                    rule_ok[g] = resolve_rule_key(plan.document, g) is not None
+                if not rule_ok[g]:
+                    rule_for(plan.document, g)  # raises the engine's UnknownGroup
+                groups[i] = g
+            except PolicyError as exc:
+                errors.append(_item_error(i, exc))
+    if errors:
+        errors.sort(key=lambda e: _item_index(e["field"]))
+        first = errors[0]
+        raise Unprocessable(
+            f"{len(errors)} item(s) refused, nothing was written; first: {first['field']}: "
+            f"{first['message']}",
+            code="invalid_batch",
+            field=first["field"],
+            details=errors,
+        )
+
+    now = utcnow()
+    rows_out: list[dict[str, Any]] = []
+    for name, idx in new_by_policy.items():
+        rows_out.extend(
+            _evaluate_policy_rows(plans[name], idx, items, groups, fingerprints, now, ctx)
+        )
+        for i, values in zip(idx, rows_out[len(rows_out) - len(idx) :], strict=True):
+            responses[i] = response_of(values)
+    if rows_out:
+        session.connection().execute(insert(RECOMMENDATIONS), rows_out)
+    return [r for r in responses if r is not None], len(rows_out)
+
+
+def _item_index(field: str | None) -> int:
+    try:
+        return int((field or "").split(".")[1])
+    except (IndexError, ValueError):
+        return 0
+
+
+def _evaluate_policy_rows(
+    plan: Plan,
+    idx: list[int],
+    items: Sequence[ScoreInput],
+    groups: dict[int, str],
+    fingerprints: list[str],
+    now: datetime,
+    ctx: ScoringContext,
+) -> list[dict[str, Any]]:
+    reqs = [items[i] for i in idx]
+    scores = [float(r.score) for r in reqs]
+    case_ids = [r.case_id for r in reqs]
+    main = evaluate_batch(
+        plan.document, plan.version, scores, [groups[i] for i in idx], case_ids, ctx.secret
+    )
+    shadow_p: list[float | None] = [None] * len(idx)
+    shadow_a: list[bool | None] = [None] * len(idx)
+    if plan.shadow is not None and plan.shadow_version is not None:
+        ok: list[int] = []
+        sgroups: list[str] = []
+        for j, r in enumerate(reqs):
+            try:
+                g = plan.shadow.group_key(r.attributes)  # type: ignore[arg-type]
+            except PolicyError:
+                continue
+            if (
+                resolve_rule_key(plan.shadow, g) is not None
+                and plan.shadow.score_range[0] <= r.score <= plan.shadow.score_range[1]
+            ):
+                ok.append(j)
+                sgroups.append(g)
+        if ok:
+            sb = evaluate_batch(
+                plan.shadow,
+                plan.shadow_version,
+                [scores[j] for j in ok],
+                sgroups,
+                [case_ids[j] for j in ok],
+                ctx.secret,
+            )
+            for k, j in enumerate(ok):
+                shadow_p[j] = float(sb.probability[k])
+                shadow_a[j] = bool(sb.action[k])
+    doc = plan.document
+    probs = main.probability.tolist()
+    draws = main.draw.tolist()
+    acts = main.action.tolist()
+    out: list[dict[str, Any]] = []
+    for j, r in enumerate(reqs):
+        act = bool(acts[j])
+        values = {
+            "recommendation_id": str(uuid.uuid4()),
+            "request_id": r.request_id,
+            "request_fingerprint": fingerprints[idx[j]],
+            "case_id": r.case_id,
+            "policy": plan.name,
+            "version": plan.version,
+            "score": scores[j],
+            "attributes": _stored_attributes(plan, r.attributes),
+            "group": main.group[j],
+            "rule": main.rule[j],
+            "probability": probs[j],
+            "draw": draws[j],
+            "action": act,
+            "action_label": doc.action_label if act else doc.no_action_label,
+            "issued_at": now,
+            "shadow_version": plan.shadow_version,
+            "shadow_probability": shadow_p[j],
+            "shadow_action": shadow_a[j],
+        }
+        out.append(_finish(values))
+    return out
