@@ -102,11 +102,13 @@ def _count_statement(policy: str, start: datetime, end: datetime) -> Any:
     def float_sum(value: Any, condition: Any) -> Any:
         return func.sum(case((condition, cast(value, Float)), else_=0.0))
 
+    # Rows whose shadow version could not decide count as rows without a shadow.
+    shadow_key = case((r.shadow_action.is_(None), None), else_=r.shadow_version)
     return (
         select(
             r.version,
             r.group,
-            r.shadow_version,
+            shadow_key.label("shadow_version"),
             func.count().label("n"),
             count_if(acted).label("actions"),
             func.count(y).label("observed"),
@@ -129,7 +131,7 @@ def _count_statement(policy: str, start: datetime, end: datetime) -> Any:
             ).outerjoin(FinalDecision.__table__, f.recommendation_pk == r.id)
         )
         .where(r.policy == policy, r.issued_at >= start, r.issued_at < end)
-        .group_by(r.version, r.group, r.shadow_version)
+        .group_by(r.version, r.group, shadow_key)
     )
 
 
