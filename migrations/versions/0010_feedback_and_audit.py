@@ -1,9 +1,9 @@
 """Feedback and audit: outcomes, outcome corrections, final decisions, audit snapshots, and
-the covering index the audit's GROUP BY scans.
+the indexes the audit's counting scans.
 
 Revision ID: 0010
 Revises: 0001
-Create Date: 2026-12-01 22:06:21.010761
+Create Date: 2026-12-01 22:18:16.436411
 """
 
 from collections.abc import Sequence
@@ -52,6 +52,14 @@ def upgrade() -> None:
         sa.Column("decided_at", sa.DateTime(timezone=True), nullable=False),
         sa.Column("decided_by", sa.String(length=128), nullable=True),
         sa.Column("recorded_at", sa.DateTime(timezone=True), nullable=False),
+        sa.Column("policy", sa.String(length=64), nullable=False),
+        sa.Column("version", sa.Integer(), nullable=False),
+        sa.Column("group", sa.String(length=256), nullable=False),
+        sa.Column("shadow_version", sa.Integer(), nullable=True),
+        sa.Column("issued_at", sa.DateTime(timezone=True), nullable=False),
+        sa.Column("action", sa.Boolean(), nullable=False),
+        sa.Column("probability", sa.Double(), nullable=False),
+        sa.Column("shadow_action", sa.Boolean(), nullable=True),
         sa.ForeignKeyConstraint(
             ["recommendation_pk"],
             ["recommendations.id"],
@@ -59,6 +67,13 @@ def upgrade() -> None:
         ),
         sa.PrimaryKeyConstraint("recommendation_pk", name=op.f("pk_final_decisions")),
     )
+    with op.batch_alter_table("final_decisions", schema=None) as batch_op:
+        batch_op.create_index(
+            "ix_final_decisions_audit",
+            ["policy", "version", "group", "shadow_version", "issued_at", "overridden"],
+            unique=False,
+        )
+
     op.create_table(
         "outcome_corrections",
         sa.Column("id", sa.Integer(), nullable=False),
@@ -101,6 +116,14 @@ def upgrade() -> None:
         sa.Column("source", sa.String(length=128), nullable=False),
         sa.Column("recorded_at", sa.DateTime(timezone=True), nullable=False),
         sa.Column("corrections", sa.Integer(), nullable=False),
+        sa.Column("policy", sa.String(length=64), nullable=False),
+        sa.Column("version", sa.Integer(), nullable=False),
+        sa.Column("group", sa.String(length=256), nullable=False),
+        sa.Column("shadow_version", sa.Integer(), nullable=True),
+        sa.Column("issued_at", sa.DateTime(timezone=True), nullable=False),
+        sa.Column("action", sa.Boolean(), nullable=False),
+        sa.Column("probability", sa.Double(), nullable=False),
+        sa.Column("shadow_action", sa.Boolean(), nullable=True),
         sa.CheckConstraint("outcome IN (0, 1)", name=op.f("ck_outcomes_outcome_binary")),
         sa.ForeignKeyConstraint(
             ["recommendation_pk"],
@@ -109,19 +132,35 @@ def upgrade() -> None:
         ),
         sa.PrimaryKeyConstraint("recommendation_pk", name=op.f("pk_outcomes")),
     )
-    with op.batch_alter_table("recommendations", schema=None) as batch_op:
+    with op.batch_alter_table("outcomes", schema=None) as batch_op:
         batch_op.create_index(
-            "ix_recommendations_audit_cover",
+            "ix_outcomes_audit",
             [
                 "policy",
-                "issued_at",
                 "version",
                 "group",
+                "shadow_version",
+                "issued_at",
+                "outcome",
                 "action",
                 "probability",
-                "shadow_version",
                 "shadow_action",
-                "id",
+            ],
+            unique=False,
+        )
+
+    with op.batch_alter_table("recommendations", schema=None) as batch_op:
+        batch_op.create_index(
+            "ix_recommendations_audit",
+            [
+                "policy",
+                "version",
+                "group",
+                "shadow_version",
+                "issued_at",
+                "action",
+                "probability",
+                "shadow_action",
             ],
             unique=False,
         )
@@ -129,13 +168,19 @@ def upgrade() -> None:
 
 def downgrade() -> None:
     with op.batch_alter_table("recommendations", schema=None) as batch_op:
-        batch_op.drop_index("ix_recommendations_audit_cover")
+        batch_op.drop_index("ix_recommendations_audit")
+
+    with op.batch_alter_table("outcomes", schema=None) as batch_op:
+        batch_op.drop_index("ix_outcomes_audit")
 
     op.drop_table("outcomes")
     with op.batch_alter_table("outcome_corrections", schema=None) as batch_op:
         batch_op.drop_index(batch_op.f("ix_outcome_corrections_recommendation_pk"))
 
     op.drop_table("outcome_corrections")
+    with op.batch_alter_table("final_decisions", schema=None) as batch_op:
+        batch_op.drop_index("ix_final_decisions_audit")
+
     op.drop_table("final_decisions")
     with op.batch_alter_table("audit_snapshots", schema=None) as batch_op:
         batch_op.drop_index("ix_audit_snapshots_policy_month")

@@ -16,7 +16,7 @@ from __future__ import annotations
 from collections.abc import Sequence
 from dataclasses import dataclass
 from datetime import datetime
-from typing import Literal
+from typing import Any, Literal
 
 from sqlalchemy import select
 from sqlalchemy.orm import Session
@@ -55,7 +55,25 @@ class OutcomeResult:
 class _Target:
     pk: int
     recommendation_id: str
-    action: bool
+    cohort: dict[str, Any]
+    """The recommendation's cohort fields, copied onto the outcome or final decision."""
+
+
+def _cohort_columns() -> list[Any]:
+    r = Recommendation.__table__.c
+    return [r[name] for name in COPIED]
+
+
+COPIED = (
+    "policy",
+    "version",
+    "group",
+    "shadow_version",
+    "issued_at",
+    "action",
+    "probability",
+    "shadow_action",
+)
 
 
 def _describe(item: OutcomeReport) -> str:
@@ -73,10 +91,12 @@ def _resolve(session: Session, items: Sequence[OutcomeReport]) -> list[_Target |
     for start in range(0, len(ids), LOOKUP_CHUNK):
         chunk = ids[start : start + LOOKUP_CHUNK]
         rows = session.execute(
-            select(r.id, r.recommendation_id, r.action).where(r.recommendation_id.in_(chunk))
+            select(r.id, r.recommendation_id, *_cohort_columns()).where(
+                r.recommendation_id.in_(chunk)
+            )
         )
-        for pk, rid, action in rows:
-            by_id[rid] = _Target(pk, rid, bool(action))
+        for row in rows:
+            by_id[row.recommendation_id] = _target(row)
     by_case: dict[tuple[str, str], _Target] = {}
     pairs: set[tuple[str, str]] = set()
     for i in items:
@@ -87,12 +107,12 @@ def _resolve(session: Session, items: Sequence[OutcomeReport]) -> list[_Target |
         for start in range(0, len(cases), LOOKUP_CHUNK):
             chunk = cases[start : start + LOOKUP_CHUNK]
             found = session.execute(
-                select(r.id, r.recommendation_id, r.action, r.case_id)
+                select(r.id, r.recommendation_id, r.case_id, *_cohort_columns())
                 .where(r.policy == policy, r.case_id.in_(chunk))
                 .order_by(r.issued_at, r.id)
             )
-            for pk, rid, action, case_id in found.tuples():
-                by_case[(policy, case_id)] = _Target(pk, rid, bool(action))  # latest wins
+            for row in found:
+                by_case[(policy, row.case_id)] = _target(row)  # the latest wins
     out: list[_Target | None] = []
     for item in items:
         if item.recommendation_id is not None:
@@ -101,6 +121,12 @@ def _resolve(session: Session, items: Sequence[OutcomeReport]) -> list[_Target |
             assert item.policy is not None and item.case_id is not None
             out.append(by_case.get((item.policy, item.case_id)))
     return out
+
+
+def _target(row: Any) -> _Target:
+    return _Target(
+        int(row.id), str(row.recommendation_id), {name: getattr(row, name) for name in COPIED}
+    )
 
 
 def _existing(session: Session, pks: Sequence[int]) -> dict[int, Outcome]:
@@ -135,6 +161,7 @@ def record_outcomes(
         row = current.get(target.pk)
         if row is None:
             row = Outcome(
+                **target.cohort,
                 recommendation_pk=target.pk,
                 outcome=item.outcome,
                 observed_at=item.observed_at,
@@ -230,11 +257,14 @@ class FinalResult:
 def record_final(session: Session, recommendation_id: str, report: FinalReport) -> FinalResult:
     r = Recommendation.__table__.c
     found = session.execute(
-        select(r.id, r.action).where(r.recommendation_id == recommendation_id)
+        select(r.id, r.recommendation_id, *_cohort_columns()).where(
+            r.recommendation_id == recommendation_id
+        )
     ).first()
     if found is None:
         raise NotFound(f"no recommendation {recommendation_id!r}", code="unknown_recommendation")
-    pk, action = int(found[0]), bool(found[1])
+    target = _target(found)
+    pk, action = target.pk, bool(target.cohort["action"])
     final_action = action != report.overridden
     row = session.get(FinalDecision, pk)
     if row is not None:
@@ -257,6 +287,7 @@ def record_final(session: Session, recommendation_id: str, report: FinalReport) 
         )
     session.add(
         FinalDecision(
+            **target.cohort,
             recommendation_pk=pk,
             overridden=report.overridden,
             final_action=final_action,
