@@ -11,7 +11,8 @@ from service.api import health, outcomes, policies, recommendations, reports
 from service.api.errors import install_error_handlers
 from service.api.limits import BodySizeLimit
 from service.settings import Settings
-from service.store.db import create_db_engine, create_session_factory
+from service.store.committer import GroupCommitter
+from service.store.db import create_db_engine, create_session_factory, is_sqlite
 from service.store.scoring import DocumentCache, ScoringContext
 
 
@@ -25,10 +26,17 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         engine = create_db_engine(settings)
         app.state.engine = engine
         app.state.session_factory = create_session_factory(engine)
+        # SQLite: single recommendations share transactions (one fsync per group).
+        committer = GroupCommitter(engine) if is_sqlite(settings.database_url) else None
+        app.state.committer = committer
+        if committer is not None:
+            committer.start()
         # Background tasks (e.g. the periodic log sealer) start here and stop after `yield`.
         try:
             yield
         finally:
+            if committer is not None:
+                committer.stop()
             engine.dispose()
 
     app = FastAPI(

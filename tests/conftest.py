@@ -138,3 +138,43 @@ def make_key(session_factory: sessionmaker[Session]) -> Callable[..., str]:
         return create_key(session_factory, role, name)
 
     return make
+
+
+@pytest.fixture
+def tokens(make_key: Callable[..., str]) -> dict[str, str]:
+    """One key per role, plus a second admin (four-eyes approvals)."""
+    return {
+        "admin": make_key("admin", "admin-author"),
+        "admin2": make_key("admin", "admin-approver"),
+        "scoring": make_key("scoring", "scorer"),
+        "audit": make_key("audit", "auditor"),
+    }
+
+
+@pytest.fixture
+def publish(client: TestClient, tokens: dict[str, str]) -> Callable[..., int]:
+    """``publish(doc)`` submits, approves (second admin) and activates; returns the version."""
+    from tests.helpers import bearer
+
+    def run(document: dict[str, object] | None = None, activate: bool = True) -> int:
+        from tests.helpers import make_policy
+
+        doc = document if document is not None else make_policy()
+        name = doc["name"]
+        r = client.post(f"/v1/policies/{name}/versions", json=doc, headers=bearer(tokens["admin"]))
+        assert r.status_code == 201, r.text
+        version = int(r.json()["version"])
+        r = client.post(
+            f"/v1/policies/{name}/versions/{version}/approve", headers=bearer(tokens["admin2"])
+        )
+        assert r.status_code == 200, r.text
+        if activate:
+            r = client.post(
+                f"/v1/policies/{name}/activate",
+                json={"version": version},
+                headers=bearer(tokens["admin"]),
+            )
+            assert r.status_code == 200, r.text
+        return version
+
+    return run

@@ -63,3 +63,10 @@ def make_request(**overrides: Any) -> dict[str, Any]:
     }
     body.update(overrides)
     return body
+
+
+def count_rows(factory: sessionmaker[Session], table: str) -> int:
+    from sqlalchemy import text
+
+    with factory() as session:
+        return int(session.execute(text(f"SELECT COUNT(*) FROM {table}")).scalar_one())

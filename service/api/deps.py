@@ -9,6 +9,7 @@ sent (FastAPI runs the exit code of yield dependencies only after the response b
 from __future__ import annotations
 
 from collections.abc import Callable, Iterator
+from dataclasses import dataclass
 from typing import Annotated
 
 from fastapi import Depends, Request
@@ -17,7 +18,7 @@ from sqlalchemy.orm import Session, sessionmaker
 from service.errors import Forbidden, Unauthorized
 from service.settings import Settings
 from service.store import keys
-from service.store.models import ApiKey
+from service.store.db import begin_read_only
 
 
 def get_settings(request: Request) -> Settings:
@@ -49,12 +50,26 @@ def _bearer_token(request: Request) -> str:
     return token.strip()
 
 
-def require_role(*roles: str) -> Callable[..., ApiKey]:
-    """A dependency that admits keys with one of ``roles`` and returns the key."""
+@dataclass(frozen=True, slots=True)
+class Caller:
+    """The authenticated API key: ``name`` is the actor recorded in histories."""
+
+    id: int
+    name: str
+    role: str
+
+
+def require_role(*roles: str) -> Callable[..., Caller]:
+    """A dependency that admits keys with one of ``roles`` and returns the caller."""
     allowed = frozenset(roles)
 
-    def check(request: Request, session: DbSession) -> ApiKey:
-        key = keys.authenticate(session, _bearer_token(request))
+    def check(request: Request, session: DbSession) -> Caller:
+        token = _bearer_token(request)
+        # A short read of its own: the route's writes start a fresh (write) transaction.
+        begin_read_only(session)
+        found = keys.authenticate(session, token)
+        key = None if found is None else Caller(found.id, found.name, found.role)
+        session.rollback()
         if key is None:
             raise Unauthorized("unknown or revoked API key")
         if key.role not in allowed:
@@ -65,6 +80,6 @@ def require_role(*roles: str) -> Callable[..., ApiKey]:
     return check
 
 
-ScoringKey = Annotated[ApiKey, Depends(require_role("scoring"))]
-AuditKey = Annotated[ApiKey, Depends(require_role("audit"))]
-AdminKey = Annotated[ApiKey, Depends(require_role("admin"))]
+ScoringKey = Annotated[Caller, Depends(require_role("scoring"))]
+AuditKey = Annotated[Caller, Depends(require_role("audit"))]
+AdminKey = Annotated[Caller, Depends(require_role("admin"))]

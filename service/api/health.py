@@ -7,6 +7,7 @@ from sqlalchemy import Engine, text
 
 from service.api.errors import error_responses
 from service.errors import ServiceUnavailable
+from service.store.db import READ_ONLY
 from service.store.migrate import at_head
 
 router = APIRouter(tags=["health"])
@@ -25,7 +26,7 @@ def healthz() -> dict[str, str]:
 def readyz(request: Request) -> dict[str, str]:
     engine: Engine = request.app.state.engine
     try:
-        with engine.connect() as conn:
+        with engine.connect().execution_options(**{READ_ONLY: True}) as conn:
             conn.execute(text("SELECT 1"))
     except Exception as exc:
         raise ServiceUnavailable(

@@ -1,7 +1,9 @@
 """Scoring (scoring role): one recommendation or a batch, each on the record before the reply.
 
 The route commits explicitly before it returns: the decision and its log record are one
-transaction, durable before a byte of the response is sent.
+transaction, durable before a byte of the response is sent. On SQLite single
+recommendations go through the group committer (``service.store.committer``), which returns
+only after the shared transaction has committed.
 """
 
 from __future__ import annotations
@@ -21,6 +23,7 @@ from service.api.recommendation_schemas import (
     RecommendationResponse,
 )
 from service.store import scoring
+from service.store.committer import GroupCommitter
 from service.store.scoring import ScoringContext
 
 router = APIRouter(
@@ -54,9 +57,14 @@ def recommend(
     body: RecommendationRequest, request: Request, session: DbSession, _key: ScoringKey
 ) -> Response:
     ctx = _context(request)
+    committer: GroupCommitter | None = request.app.state.committer
     try:
-        result, created = scoring.recommend(session, body, ctx)
-        session.commit()
+        if committer is not None:
+            # Returns once the group holding this write has committed.
+            result, created = committer.run(lambda s: scoring.recommend(s, body, ctx))
+        else:
+            result, created = scoring.recommend(session, body, ctx)
+            session.commit()
     except IntegrityError:
         # Another request with the same request_id committed first (PostgreSQL): answer
         # from its record, or 409 when the bodies differ.

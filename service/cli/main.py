@@ -12,9 +12,9 @@ from service.cli.common import CliError
 
 def _command_modules() -> list[ModuleType]:
     # Imported here so ``evenhand --help`` stays fast and one broken module names itself.
-    from service.cli import audit, report
+    from service.cli import audit, keys, migrate, policy, report, serve
 
-    return [audit, report]
+    return [serve, migrate, keys, policy, audit, report]
 
 
 def build_parser() -> argparse.ArgumentParser:

@@ -5,11 +5,20 @@ configured ``synchronous`` level on every new connection. Transactions on SQLite
 ``BEGIN IMMEDIATE``: a scoring request reads the active version and then writes, and a
 deferred transaction that read before another writer committed could not upgrade to a write
 lock (SQLITE_BUSY_SNAPSHOT, not retried by the busy timeout). Taking the write lock up front
-makes concurrent writers queue on the busy timeout instead of failing.
+makes concurrent writers queue instead of failing.
+
+Within one process the queue is a plain mutex held from BEGIN to the end of COMMIT or
+ROLLBACK: SQLite allows one writer at a time anyway, and threads waiting on a mutex are woken
+at once, where SQLite's busy handler polls with growing sleeps (requests then stall for
+seconds under load). Across processes the busy timeout still applies. PostgreSQL takes no
+such lock: its transactions run concurrently.
 """
 
 from __future__ import annotations
 
+import json
+import sqlite3
+import threading
 from typing import Any
 
 from sqlalchemy import Engine, create_engine, event
@@ -18,9 +27,25 @@ from sqlalchemy.orm import Session, sessionmaker
 
 from service.settings import Settings
 
+READ_ONLY = "evenhand_read_only"
+"""Execution option: this transaction only reads (SQLite: deferred BEGIN, no write lock)."""
+
+
+def begin_read_only(session: Session) -> None:
+    """Start the session's transaction as a read-only one; call before its first query."""
+    session.connection(execution_options={READ_ONLY: True})
+
 
 def is_sqlite(url: str) -> bool:
     return make_url(url).get_backend_name() == "sqlite"
+
+
+_JSON = json.JSONEncoder(separators=(",", ":"), ensure_ascii=False, allow_nan=False)
+
+
+def _json_serializer(value: Any) -> str:
+    # One shared compact encoder for JSON columns (json.dumps would build one per value).
+    return _JSON.encode(value)
 
 
 def create_db_engine(settings: Settings) -> Engine:
@@ -31,13 +56,17 @@ def create_db_engine(settings: Settings) -> Engine:
             connect_args={
                 "check_same_thread": False,
                 "timeout": settings.sqlite_busy_timeout_ms / 1000,
+                "factory": _serialized_connection_class(),
             },
             pool_size=20,
             max_overflow=20,
+            json_serializer=_json_serializer,
         )
         _configure_sqlite(engine, settings)
         return engine
-    return create_engine(url, pool_size=10, max_overflow=20, pool_pre_ping=True)
+    return create_engine(
+        url, pool_size=10, max_overflow=20, pool_pre_ping=True, json_serializer=_json_serializer
+    )
 
 
 def _configure_sqlite(engine: Engine, settings: Settings) -> None:
@@ -53,11 +82,59 @@ def _configure_sqlite(engine: Engine, settings: Settings) -> None:
         cursor.execute("PRAGMA foreign_keys=ON")
         cursor.execute(f"PRAGMA busy_timeout={int(busy_ms)}")
         cursor.execute(f"PRAGMA synchronous={synchronous}")
+        # 64 MiB page cache: the log's unique indexes take random keys (UUIDs).
+        cursor.execute("PRAGMA cache_size=-65536")
         cursor.close()
 
     @event.listens_for(engine, "begin")
     def _on_begin(connection: Any) -> None:
-        connection.exec_driver_sql("BEGIN IMMEDIATE")
+        if connection.get_execution_options().get(READ_ONLY):
+            connection.exec_driver_sql("BEGIN")  # deferred: a snapshot read, no lock
+            return
+        dbapi_connection = connection.connection.dbapi_connection
+        dbapi_connection.acquire_write_lock()
+        try:
+            connection.exec_driver_sql("BEGIN IMMEDIATE")
+        except BaseException:
+            dbapi_connection.release_write_lock()
+            raise
+
+
+def _serialized_connection_class() -> type[sqlite3.Connection]:
+    """A sqlite3 connection class whose instances share one in-process write mutex."""
+    lock = threading.Lock()
+
+    class SerializedConnection(sqlite3.Connection):
+        _holds_lock = False
+
+        def acquire_write_lock(self) -> None:
+            lock.acquire()
+            self._holds_lock = True
+
+        def release_write_lock(self) -> None:
+            if self._holds_lock:
+                self._holds_lock = False
+                lock.release()
+
+        def commit(self) -> None:
+            try:
+                super().commit()
+            finally:
+                self.release_write_lock()
+
+        def rollback(self) -> None:
+            try:
+                super().rollback()
+            finally:
+                self.release_write_lock()
+
+        def close(self) -> None:
+            try:
+                super().close()
+            finally:
+                self.release_write_lock()
+
+    return SerializedConnection
 
 
 def create_session_factory(engine: Engine) -> sessionmaker[Session]:

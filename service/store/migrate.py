@@ -30,7 +30,9 @@ def head_revisions(database_url: str) -> set[str]:
 
 
 def current_revisions(engine: Engine) -> set[str]:
-    with engine.connect() as conn:
+    from service.store.db import READ_ONLY
+
+    with engine.connect().execution_options(**{READ_ONLY: True}) as conn:
         return set(MigrationContext.configure(conn).get_current_heads())
 
 

@@ -2,7 +2,7 @@
 
 ``record_hash`` = SHA-256(0x00 || canonical bytes), exactly the RFC 9162 section 2.1 Merkle leaf
 hash, so a seal's tree is built directly over the stored hashes and verify recomputes them from
-the stored fields. The canonical bytes are :func:`service.policy.document.canonical_json` of
+the stored fields. The canonical bytes are ``service.policy.document.canonical_json`` of
 every field that makes up the decision; the integer row id is left out on purpose (it is
 assigned by the database, and the Merkle tree already fixes each record's position).
 """
@@ -10,13 +10,18 @@ assigned by the database, and the Merkle tree already fixes each record's positi
 from __future__ import annotations
 
 import hashlib
+import json
 from collections.abc import Mapping
 from datetime import UTC, datetime
 from typing import Any
 
-from service.policy.document import canonical_json
-
 LEAF_PREFIX = b"\x00"
+
+# The same output as ``canonical_json`` (compact, key-sorted, UTF-8, no NaN); one shared
+# encoder avoids building a new one per record on the scoring hot path.
+_ENCODER = json.JSONEncoder(
+    sort_keys=True, separators=(",", ":"), ensure_ascii=False, allow_nan=False
+)
 
 RECORD_FIELDS: tuple[str, ...] = (
     "recommendation_id",
@@ -90,9 +95,15 @@ def record_payload(rec: Any) -> dict[str, Any]:
 
 
 def record_bytes(rec: Any) -> bytes:
-    return canonical_json(record_payload(rec))
+    """``canonical_json(record_payload(rec))``."""
+    return _ENCODER.encode(record_payload(rec)).encode("utf-8")
 
 
 def record_leaf_hash(rec: Any) -> str:
     """SHA-256(0x00 || canonical bytes) as lowercase hex: the record's Merkle leaf hash."""
     return hashlib.sha256(LEAF_PREFIX + record_bytes(rec)).hexdigest()
+
+
+def payload_leaf_hash(payload: dict[str, Any]) -> str:
+    """The leaf hash of a payload already in :func:`record_payload` form (the hot path)."""
+    return hashlib.sha256(LEAF_PREFIX + _ENCODER.encode(payload).encode("utf-8")).hexdigest()

@@ -17,15 +17,16 @@ from dataclasses import dataclass
 from datetime import datetime
 from typing import Any, Protocol
 
-from sqlalchemy import Table, insert, select
+from sqlalchemy import select
 from sqlalchemy.orm import Session, aliased
 
-from service.errors import Conflict, ServiceError, Unprocessable
-from service.policy.document import PolicyDocument, canonical_json, resolve_rule_key
+from service.errors import Conflict, PayloadTooLarge, ServiceError, Unprocessable
+from service.policy.document import PolicyDocument, resolve_rule_key
 from service.policy.errors import PolicyError
 from service.policy.rules import check_score, evaluate, evaluate_batch, rule_for
 from service.store.models import PolicyShadow, PolicyVersion, Recommendation, VersionStatus, utcnow
-from service.store.records import format_timestamp, record_leaf_hash
+from service.store.recommendations import insert_records
+from service.store.records import format_timestamp, payload_leaf_hash
 
 AttributeValue = str | int | float | bool
 
@@ -111,8 +112,6 @@ class Plan:
 
 
 _Shadow = aliased(PolicyVersion)
-# Core insert on the table itself: executemany without the ORM's per-row bookkeeping.
-RECOMMENDATIONS: Table = Recommendation.__table__  # type: ignore[assignment]
 
 
 def resolve_plan(session: Session, name: str, ctx: ScoringContext) -> Plan:
@@ -148,14 +147,19 @@ def resolve_plan(session: Session, name: str, ctx: ScoringContext) -> Plan:
 
 
 def fingerprint(req: ScoreInput) -> str:
-    body = {
-        "request_id": req.request_id,
-        "case_id": req.case_id,
-        "policy": req.policy,
-        "score": float(req.score),
-        "attributes": dict(req.attributes),
-    }
-    return hashlib.sha256(canonical_json(body)).hexdigest()
+    """A digest of the request body, to tell a replay from a reuse of its request_id.
+
+    Only ever compared with itself, so it need not be canonical JSON: ``repr`` of a tuple of
+    str, float and sorted (name, value) pairs is deterministic and keeps 1, 1.0 and True apart.
+    """
+    body = (
+        req.request_id,
+        req.case_id,
+        req.policy,
+        float(req.score),
+        sorted(req.attributes.items()),
+    )
+    return hashlib.sha256(repr(body).encode("utf-8")).hexdigest()
 
 
 def response_of(values: Any) -> dict[str, Any]:
@@ -203,9 +207,52 @@ def _shadow_one(plan: Plan, req: ScoreInput, secret: bytes) -> tuple[float | Non
     return d.probability, d.action
 
 
-def _finish(values: dict[str, Any]) -> dict[str, Any]:
-    values["record_hash"] = record_leaf_hash(values)
-    return values
+def _row(
+    plan: Plan,
+    req: ScoreInput,
+    fp: str,
+    decision: tuple[str, str, float, float, bool],
+    shadow: tuple[float | None, bool | None],
+    issued_at: tuple[datetime, str],
+) -> tuple[dict[str, Any], dict[str, Any]]:
+    """(row to insert, response) for one decision, both from the same values.
+
+    The payload is built directly in ``record_payload`` form, so the leaf hash needs no
+    second pass over the row (verify recomputes it from the stored row the general way).
+    """
+    group, rule, probability, draw, action = decision
+    payload = {
+        "recommendation_id": str(uuid.uuid4()),
+        "request_id": req.request_id,
+        "case_id": req.case_id,
+        "policy": plan.name,
+        "version": plan.version,
+        "score": float(req.score),
+        "attributes": _stored_attributes(plan, req.attributes),
+        "group": group,
+        "rule": rule,
+        "probability": probability,
+        "draw": draw,
+        "action": action,
+        "action_label": plan.document.action_label if action else plan.document.no_action_label,
+        "issued_at": issued_at[1],
+        "shadow_version": plan.shadow_version,
+        "shadow_probability": shadow[0],
+        "shadow_action": shadow[1],
+    }
+    response = {f: payload[f] for f in RESPONSE_FIELDS}
+    row = {
+        **payload,
+        "issued_at": issued_at[0],
+        "request_fingerprint": fp,
+        "record_hash": payload_leaf_hash(payload),
+    }
+    return row, response
+
+
+def _now() -> tuple[datetime, str]:
+    now = utcnow()
+    return now, format_timestamp(now)
 
 
 def recommend(
@@ -219,31 +266,12 @@ def recommend(
     d = evaluate(
         plan.document, plan.version, req.score, dict(req.attributes), req.case_id, ctx.secret
     )
-    shadow_p, shadow_a = _shadow_one(plan, req, ctx.secret)
-    values = _finish(
-        {
-            "recommendation_id": str(uuid.uuid4()),
-            "request_id": req.request_id,
-            "request_fingerprint": fingerprint(req),
-            "case_id": req.case_id,
-            "policy": plan.name,
-            "version": plan.version,
-            "score": float(req.score),
-            "attributes": _stored_attributes(plan, req.attributes),
-            "group": d.group,
-            "rule": d.rule,
-            "probability": float(d.probability),
-            "draw": float(d.draw),
-            "action": bool(d.action),
-            "action_label": d.action_label,
-            "issued_at": utcnow(),
-            "shadow_version": plan.shadow_version,
-            "shadow_probability": shadow_p,
-            "shadow_action": shadow_a,
-        }
+    decision = (d.group, d.rule, float(d.probability), float(d.draw), bool(d.action))
+    row, response = _row(
+        plan, req, fingerprint(req), decision, _shadow_one(plan, req, ctx.secret), _now()
     )
-    session.connection().execute(insert(RECOMMENDATIONS), [values])
-    return response_of(values), True
+    insert_records(session, [row])
+    return response, True
 
 
 # -- batches ------------------------------------------------------------------------------
@@ -259,7 +287,7 @@ def recommend_batch(
 ) -> tuple[list[dict[str, Any]], int]:
     """(responses in input order, number newly written). All or nothing: any bad item -> 422."""
     if len(items) > ctx.max_batch_items:
-        raise ServiceError(
+        raise PayloadTooLarge(
             f"a batch holds at most {ctx.max_batch_items} items (got {len(items)}); split it",
             code="batch_too_large",
             field="items",
@@ -297,14 +325,14 @@ def recommend_batch(
 
     plans: dict[str, Plan] = {}
     groups: dict[int, str] = {}
-    for name, rows in new_by_policy.items():
+    for name, members in new_by_policy.items():
         try:
             plans[name] = plan = resolve_plan(session, name, ctx)
         except ServiceError as exc:
-            errors.extend(_item_error(i, exc) for i in rows)
+            errors.extend(_item_error(i, exc) for i in members)
             continue
         rule_ok: dict[str, bool] = {}
-        for i in rows:
+        for i in members:
             req = items[i]
             try:
                 check_score(plan.document, req.score)
@@ -327,16 +355,17 @@ def recommend_batch(
             details=errors,
         )
 
-    now = utcnow()
+    issued_at = _now()
     rows_out: list[dict[str, Any]] = []
     for name, idx in new_by_policy.items():
-        rows_out.extend(
-            _evaluate_policy_rows(plans[name], idx, items, groups, fingerprints, now, ctx)
+        new_rows, outs = _evaluate_policy_rows(
+            plans[name], idx, items, groups, fingerprints, issued_at, ctx
         )
-        for i, values in zip(idx, rows_out[len(rows_out) - len(idx) :], strict=True):
-            responses[i] = response_of(values)
+        rows_out.extend(new_rows)
+        for i, out in zip(idx, outs, strict=True):
+            responses[i] = out
     if rows_out:
-        session.connection().execute(insert(RECOMMENDATIONS), rows_out)
+        insert_records(session, rows_out)
     return [r for r in responses if r is not None], len(rows_out)
 
 
@@ -353,9 +382,9 @@ def _evaluate_policy_rows(
     items: Sequence[ScoreInput],
     groups: dict[int, str],
     fingerprints: list[str],
-    now: datetime,
+    issued_at: tuple[datetime, str],
     ctx: ScoringContext,
-) -> list[dict[str, Any]]:
+) -> tuple[list[dict[str, Any]], list[dict[str, Any]]]:
     reqs = [items[i] for i in idx]
     scores = [float(r.score) for r in reqs]
     case_ids = [r.case_id for r in reqs]
@@ -390,32 +419,16 @@ def _evaluate_policy_rows(
             for k, j in enumerate(ok):
                 shadow_p[j] = float(sb.probability[k])
                 shadow_a[j] = bool(sb.action[k])
-    doc = plan.document
     probs = main.probability.tolist()
     draws = main.draw.tolist()
     acts = main.action.tolist()
-    out: list[dict[str, Any]] = []
+    rows: list[dict[str, Any]] = []
+    outs: list[dict[str, Any]] = []
     for j, r in enumerate(reqs):
-        act = bool(acts[j])
-        values = {
-            "recommendation_id": str(uuid.uuid4()),
-            "request_id": r.request_id,
-            "request_fingerprint": fingerprints[idx[j]],
-            "case_id": r.case_id,
-            "policy": plan.name,
-            "version": plan.version,
-            "score": scores[j],
-            "attributes": _stored_attributes(plan, r.attributes),
-            "group": main.group[j],
-            "rule": main.rule[j],
-            "probability": probs[j],
-            "draw": draws[j],
-            "action": act,
-            "action_label": doc.action_label if act else doc.no_action_label,
-            "issued_at": now,
-            "shadow_version": plan.shadow_version,
-            "shadow_probability": shadow_p[j],
-            "shadow_action": shadow_a[j],
-        }
-        out.append(_finish(values))
-    return out
+        decision = (main.group[j], main.rule[j], probs[j], draws[j], bool(acts[j]))
+        row, out = _row(
+            plan, r, fingerprints[idx[j]], decision, (shadow_p[j], shadow_a[j]), issued_at
+        )
+        rows.append(row)
+        outs.append(out)
+    return rows, outs
