@@ -7,9 +7,10 @@ from contextlib import asynccontextmanager
 
 from fastapi import FastAPI
 
-from service.api import health, outcomes, policies, recommendations, reports
+from service.api import health, log, outcomes, policies, recommendations, reports
 from service.api.errors import install_error_handlers
 from service.api.limits import BodySizeLimit
+from service.audit.sealer import PeriodicSealer
 from service.settings import Settings
 from service.store.committer import GroupCommitter
 from service.store.db import create_db_engine, create_session_factory, is_sqlite
@@ -32,9 +33,12 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         if committer is not None:
             committer.start()
         # Background tasks (e.g. the periodic log sealer) start here and stop after `yield`.
+        sealer = PeriodicSealer(app.state.session_factory, settings.seal_interval_seconds)
+        sealer.start()
         try:
             yield
         finally:
+            await sealer.stop()
             if committer is not None:
                 committer.stop()
             engine.dispose()
@@ -54,6 +58,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.include_router(health.router)
     app.include_router(policies.router)
     app.include_router(recommendations.router)
+    app.include_router(log.router)
     app.include_router(outcomes.router)
     app.include_router(reports.router)
     app.add_middleware(BodySizeLimit, max_bytes=settings.max_body_bytes)

@@ -1,0 +1,1 @@
+"""The decision log's seals and verification, audit runs and report rendering."""

@@ -12,9 +12,9 @@ from service.cli.common import CliError
 
 def _command_modules() -> list[ModuleType]:
     # Imported here so ``evenhand --help`` stays fast and one broken module names itself.
-    from service.cli import audit, keys, migrate, policy, report, serve
+    from service.cli import audit, demo, keys, log, migrate, policy, report, serve
 
-    return [serve, migrate, keys, policy, audit, report]
+    return [serve, migrate, keys, policy, log, demo, audit, report]
 
 
 def build_parser() -> argparse.ArgumentParser:

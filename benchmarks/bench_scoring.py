@@ -1,0 +1,280 @@
+"""Scoring throughput: POST /v1/recommendations against a bare FastAPI endpoint, same run.
+
+For each database (SQLite file, and PostgreSQL on 127.0.0.1 when reachable) the script
+1. creates a fresh database, migrates it, creates keys and activates the Fernhollow demo policy;
+2. serves the bare endpoint (benchmarks/bare_app.py) and then Evenhand with the SAME uvicorn
+   settings (host 127.0.0.1, workers, no access log) and drives both with the SAME closed-loop
+   load generator (benchmarks/loadgen.py), the same request bodies and concurrency;
+3. sends batches of 5,000 to POST /v1/recommendations/batch, timed end to end (encoding,
+   request, decision, durable write, answer, decoding).
+
+Every write is durable: SQLite with synchronous=FULL (the default), PostgreSQL with its default
+synchronous_commit=on. Only loopback traffic; every loop is bounded. Not a test: the targets
+(>= 0.6 x the bare endpoint; >= 50,000 decisions/s in batches on SQLite) are printed beside
+the figures. Run: ``.venv/bin/python benchmarks/bench_scoring.py [--backends sqlite,postgresql]``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import secrets
+import sys
+import tempfile
+import time
+import uuid
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import httpx
+from sqlalchemy import create_engine, text
+from sqlalchemy.engine import make_url
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+
+from loadgen import LoadResult, run_load
+
+from service.demo.api_client import EvenhandClient
+from service.demo.fernhollow import generate
+from service.demo.policy import demo_policy
+from service.demo.server import LOOPBACK, ServerProcess, free_port
+from service.settings import Settings
+from service.store import keys
+from service.store.db import create_db_engine, create_session_factory
+from service.store.migrate import upgrade
+
+PG_SERVER = os.environ.get(
+    "EVENHAND_TEST_POSTGRES_URL", "postgresql+psycopg://postgres@127.0.0.1:5432/test"
+)
+
+
+def uvicorn_command(app: str, port: int, workers: int, app_dir: str | None = None) -> list[str]:
+    """The one server command line both apps run with."""
+    cmd = [sys.executable, "-m", "uvicorn", "--factory", app]
+    if app_dir is not None:
+        cmd += ["--app-dir", app_dir]
+    settings = ["--host", LOOPBACK, "--port", str(port), "--workers", str(workers)]
+    return [*cmd, *settings, "--no-access-log", "--log-level", "warning"]
+
+
+def bodies(n: int, tag: str, policy: str) -> list[dict[str, Any]]:
+    cases = generate(n, seed=7, id_prefix=tag)
+    return [
+        {
+            "request_id": f"{tag}-{uuid.uuid4().hex}",
+            "case_id": cases.case_id[i],
+            "policy": policy,
+            "score": float(cases.score[i]),
+            "attributes": {"community": cases.community[i], "language": cases.language[i]},
+        }
+        for i in range(n)
+    ]
+
+
+@dataclass
+class Database:
+    url: str
+    drop: str | None = None  # PostgreSQL database to drop afterwards
+
+
+def make_database(backend: str, workdir: Path) -> Database | None:
+    if backend == "sqlite":
+        return Database(f"sqlite:///{workdir / 'bench.db'}")
+    name = f"evenhand_bench_{uuid.uuid4().hex[:10]}"
+    admin = create_engine(PG_SERVER, isolation_level="AUTOCOMMIT")
+    try:
+        with admin.connect() as conn:
+            conn.execute(text(f'CREATE DATABASE "{name}"'))
+    except Exception as exc:
+        print(f"PostgreSQL not reachable, skipped: {str(exc).splitlines()[0]}", file=sys.stderr)
+        return None
+    finally:
+        admin.dispose()
+    url = make_url(PG_SERVER).set(database=name).render_as_string(hide_password=False)
+    return Database(url, drop=name)
+
+
+def drop_database(db: Database) -> None:
+    if db.drop is None:
+        return
+    admin = create_engine(PG_SERVER, isolation_level="AUTOCOMMIT")
+    with admin.connect() as conn:
+        conn.execute(text(f'DROP DATABASE IF EXISTS "{db.drop}" WITH (FORCE)'))
+    admin.dispose()
+
+
+def prepare(url: str) -> dict[str, str]:
+    upgrade(url)
+    engine = create_db_engine(Settings(database_url=url))
+    factory = create_session_factory(engine)
+    tokens = {}
+    with factory() as session:
+        for name, role in [
+            ("author", "admin"),
+            ("reviewer", "admin"),
+            ("scoring", "scoring"),
+            ("audit", "audit"),
+        ]:
+            tokens[name] = keys.create_key(session, name, role)[1]
+        session.commit()
+    engine.dispose()
+    return tokens
+
+
+def describe(label: str, r: LoadResult) -> dict[str, Any]:
+    ok = sum(v for k, v in r.statuses.items() if 200 <= k < 300)
+    row = {
+        "label": label,
+        "requests": r.requests,
+        "ok": ok,
+        "throughput_rps": round(r.throughput, 1),
+        "p50_ms": round(r.percentile(0.5) * 1000, 2),
+        "p99_ms": round(r.percentile(0.99) * 1000, 2),
+    }
+    print(
+        f"  {label:<28} {row['throughput_rps']:>9.1f} req/s   p50 {row['p50_ms']:>7.2f} ms   "
+        f"p99 {row['p99_ms']:>7.2f} ms   ({ok}/{r.requests} 2xx)",
+        file=sys.stderr,
+    )
+    if ok != r.requests:
+        raise SystemExit(f"{label}: not every request succeeded: {r.statuses}")
+    return row
+
+
+def run_backend(backend: str, args: argparse.Namespace, workdir: Path) -> dict[str, Any] | None:
+    db = make_database(backend, workdir)
+    if db is None:
+        return None
+    try:
+        tokens = prepare(db.url)
+        env = {
+            "EVENHAND_DATABASE_URL": db.url,
+            "EVENHAND_DRAW_SECRET": secrets.token_hex(32),
+        }
+        document = demo_policy()
+        name = document["name"]
+        print(
+            f"{backend}: {args.requests} single requests x {args.concurrency} connections, "
+            f"{args.workers} worker(s)",
+            file=sys.stderr,
+        )
+
+        # The bare endpoint first, then the service: same command line, same load.
+        port = free_port()
+        bare = ServerProcess(
+            env,
+            workdir / f"bare-{backend}.log",
+            port=port,
+            command=uvicorn_command(
+                "bare_app:create_app",
+                port,
+                args.workers,
+                app_dir=str(Path(__file__).resolve().parent),
+            ),
+            ready_path="/openapi.json",
+        )
+        with bare:
+            run_load(bare.port, "/v1/recommendations", None, bodies(200, "w", name))  # warm-up
+            bare_result = run_load(
+                bare.port,
+                "/v1/recommendations",
+                None,
+                bodies(args.requests, "bare", name),
+                args.concurrency,
+            )
+        port = free_port()
+        service = ServerProcess(
+            env,
+            workdir / f"evenhand-{backend}.log",
+            port=port,
+            command=uvicorn_command("service.app:create_app", port, args.workers),
+        )
+        with service:
+            with EvenhandClient(service.base_url) as api:
+                api.publish(tokens["author"], tokens["reviewer"], document, "benchmark")
+            run_load(service.port, "/v1/recommendations", tokens["scoring"], bodies(200, "w", name))
+            service_result = run_load(
+                service.port,
+                "/v1/recommendations",
+                tokens["scoring"],
+                bodies(args.requests, "svc", name),
+                args.concurrency,
+            )
+            rows = [describe("bare FastAPI endpoint", bare_result)]
+            rows.append(describe("POST /v1/recommendations", service_result))
+            ratio = service_result.throughput / bare_result.throughput
+            print(f"  ratio service / bare: {ratio:.2f} (target >= 0.6)", file=sys.stderr)
+
+            batch_bodies = [bodies(args.batch_size, f"b{k}", name) for k in range(args.batches + 1)]
+            with httpx.Client(base_url=service.base_url, timeout=120) as client:
+                headers = {"Authorization": f"Bearer {tokens['scoring']}"}
+
+                def send(items: list[dict[str, Any]]) -> None:
+                    body = json.dumps({"items": items}).encode()
+                    r = client.post(
+                        "/v1/recommendations/batch",
+                        content=body,
+                        headers={**headers, "Content-Type": "application/json"},
+                    )
+                    if r.status_code != 201:
+                        raise SystemExit(f"batch failed: {r.status_code} {r.text[:300]}")
+                    if len(r.json()["items"]) != len(items):
+                        raise SystemExit("batch answer is missing items")
+
+                send(batch_bodies[0])  # warm-up
+                start = time.perf_counter()
+                for items in batch_bodies[1:]:
+                    send(items)
+                seconds = time.perf_counter() - start
+            decisions = args.batches * args.batch_size
+            per_second = decisions / seconds
+            print(
+                f"  batches of {args.batch_size}: {per_second:,.0f} decisions/s "
+                f"({args.batches} batches, {seconds:.2f} s; target on SQLite >= 50,000)",
+                file=sys.stderr,
+            )
+        return {
+            "backend": backend,
+            "single": rows,
+            "ratio": round(ratio, 2),
+            "batch": {
+                "batch_size": args.batch_size,
+                "batches": args.batches,
+                "seconds": round(seconds, 3),
+                "decisions_per_second": round(per_second),
+            },
+        }
+    finally:
+        drop_database(db)
+
+
+def main() -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--backends", default="sqlite,postgresql")
+    parser.add_argument("--requests", type=int, default=4000)
+    parser.add_argument("--concurrency", type=int, default=16)
+    parser.add_argument("--workers", type=int, default=1)
+    parser.add_argument("--batches", type=int, default=10)
+    parser.add_argument("--batch-size", type=int, default=5000)
+    parser.add_argument("--json", type=Path, help="also write the figures to this file")
+    args = parser.parse_args()
+    machine = f"{platform.machine()}, {os.cpu_count()} cores, Python {platform.python_version()}"
+    print(f"machine: {machine}", file=sys.stderr)
+    results = []
+    with tempfile.TemporaryDirectory(prefix="evenhand-bench-") as tmp:
+        for backend in args.backends.split(","):
+            result = run_backend(backend.strip(), args, Path(tmp))
+            if result is not None:
+                results.append(result)
+    report = {"machine": machine, "date": time.strftime("%Y-%m-%d"), "results": results}
+    if args.json:
+        args.json.write_text(json.dumps(report, indent=2) + "\n", encoding="utf-8")
+    print(json.dumps(report, indent=2))
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,43 @@
+"""The demo story end to end on a small stream: real server, real HTTP, a verified log."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+from sqlalchemy import create_engine, func, select
+
+from service.demo.story import DemoContext, DemoError, prepare_output, run_demo
+from service.store.models import Recommendation
+
+pytestmark = pytest.mark.slow
+
+
+def test_demo_runs_the_whole_story(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    ctx = run_demo(DemoContext(output_dir=tmp_path / "demo-output", cases=60))
+    assert ctx.server is None  # stopped
+    assert ctx.verify["ok"] is True and ctx.verify["records_checked"] == 60
+    assert ctx.verify["unsealed_records"] == 0
+    reviewed, blind = ctx.versions["reviewed"], ctx.versions["group-blind"]
+    phases = {(s.phase, s.version) for s in ctx.sent}
+    assert phases == {
+        ("reviewed policy", reviewed),
+        ("group-blind trial", blind),
+        ("after rollback", reviewed),
+    }
+    engine = create_engine(ctx.database_url)
+    with engine.connect() as conn:
+        stored = conn.scalar(select(func.count()).select_from(Recommendation))
+    engine.dispose()
+    assert stored == 60
+    out = capsys.readouterr().out
+    assert "rollback" in out and "verified ok" in out and "advisory" in out
+    head = (tmp_path / "demo-output" / "log-head.txt").read_text().strip()
+    assert head == ctx.verify["head_seal_hash"]
+
+
+def test_demo_refuses_to_replace_a_folder_it_did_not_make(tmp_path: Path) -> None:
+    (tmp_path / "precious.txt").write_text("keep me")
+    with pytest.raises(DemoError, match="not made by the demo"):
+        prepare_output(DemoContext(output_dir=tmp_path, cases=10))
+    assert (tmp_path / "precious.txt").exists()
