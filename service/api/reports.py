@@ -21,6 +21,7 @@ from service.audit.job import run_audit
 from service.audit.reports import get_snapshot, list_reports
 from service.errors import NotFound
 from service.policy.statuses import DEFAULT_MIN_COUNT
+from service.store.db import begin_read_only
 
 router = APIRouter(tags=["audit"], responses=error_responses(401, 403, 404, 422))
 
@@ -81,6 +82,7 @@ def post_audit(
 
 @router.get("/v1/reports/{policy}", summary="Months and snapshots of a policy")
 def get_reports(policy: str, session: DbSession, _key: AuditKey) -> dict[str, Any]:
+    begin_read_only(session)
     return list_reports(session, policy)
 
 
@@ -109,6 +111,7 @@ def get_report(
             code="report_not_found",
         )
     month, kind = m.group(1), m.group(2) or "json"
+    begin_read_only(session)
     content = get_snapshot(session, policy, month, snapshot)
     headers = {"X-Evenhand-Digest": content["digest"]}
     if kind == "csv":

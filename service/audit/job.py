@@ -29,6 +29,7 @@ from service.policy.document import PolicyDocument
 from service.policy.realized import CellCounts, ShadowCounts
 from service.policy.statuses import DEFAULT_MIN_COUNT
 from service.store.audit_models import AuditSnapshot, FinalDecision, Outcome
+from service.store.db import begin_read_only
 from service.store.models import PolicyVersion, Recommendation
 
 MONTH_PATTERN = re.compile(r"^(\d{4})-(0[1-9]|1[0-2])$")
@@ -392,6 +393,11 @@ def run_audit(
 ) -> AuditRun:
     """Audit ``policy`` for ``month`` and store the snapshot (the caller commits)."""
     start, end = month_bounds(month, time_zone)
+    # Count in a read-only transaction (on SQLite: no write lock, so scoring goes on), then
+    # write the snapshot in a short transaction of its own.
+    reading = not session.in_transaction()
+    if reading:
+        begin_read_only(session)
     known = session.scalar(select(func.count()).where(PolicyVersion.name == policy))
     if not known:
         raise NotFound(f"unknown policy {policy!r}", code="unknown_policy", field="policy")
@@ -422,6 +428,8 @@ def run_audit(
         ),
         content_hashes={v: docs[v][1] for v in docs},
     )
+    if reading:
+        session.rollback()
     total_n = sum(c.n for v in versions for c in v.cells.values())
     total_obs = sum(c.observed for v in versions for c in v.cells.values())
     row = AuditSnapshot(
