@@ -20,6 +20,7 @@ matplotlib.use("Agg")
 
 import matplotlib.pyplot as plt
 from jinja2 import Environment, PackageLoader, Undefined, select_autoescape
+from markupsafe import Markup
 from matplotlib.figure import Figure
 
 from service.audit.snapshot import METRIC_LABELS, TREND_METRICS
@@ -279,7 +280,13 @@ def _fmt(value: Any, digits: int = 3) -> str:
     return f"{value:.{digits}f}"
 
 
+def _fmt_count(value: Any) -> str:
+    """A published count: the number, "<11", or "withheld" (complementary suppression)."""
+    return "withheld" if value is None or isinstance(value, Undefined) else _fmt(value)
+
+
 def _fmt_rate(r: Mapping[str, Any]) -> str:
+    """A rate and, in small type below it, its 95% interval (or why there is no number)."""
     if r.get("value") is None:
         reason = r.get("withheld", "")
         return {
@@ -287,7 +294,9 @@ def _fmt_rate(r: Mapping[str, Any]) -> str:
             "not-identifiable": "not identifiable",
             "no-cases": "no cases",
         }.get(reason, "\u2013")
-    return f"{r['value']:.3f} [{r['low']:.3f}, {r['high']:.3f}]"
+    return Markup(
+        f'{r["value"]:.3f}<br><span class="ci">{r["low"]:.3f}\u2013{r["high"]:.3f}</span>'
+    )
 
 
 def _fmt_gap(r: Mapping[str, Any] | None) -> str:
@@ -295,7 +304,9 @@ def _fmt_gap(r: Mapping[str, Any] | None) -> str:
         return "reference"
     if r.get("value") is None:
         return _fmt_rate(r)
-    return f"{r['value']:+.3f} [{r['low']:+.3f}, {r['high']:+.3f}]"
+    return Markup(
+        f'{r["value"]:+.3f}<br><span class="ci">{r["low"]:+.3f} to {r["high"]:+.3f}</span>'
+    )
 
 
 _ENV = Environment(
@@ -306,6 +317,7 @@ _ENV = Environment(
 )
 _ENV.filters["fmt"] = _fmt
 _ENV.filters["rate"] = _fmt_rate
+_ENV.filters["count"] = _fmt_count
 _ENV.filters["gapfmt"] = _fmt_gap
 _ENV.globals["labels"] = METRIC_LABELS
 
@@ -319,6 +331,8 @@ def to_html(snapshot: Mapping[str, Any]) -> str:
         s=snapshot,
         charts=charts,
         trend=trend_chart(snapshot),
-        table_rates=RATE_METRICS,
+        # The favourable rate is the action rate or its complement; overrides have their own
+        # table: leaving them out keeps the table within a printed page.
+        table_rates=[m for m in RATE_METRICS if m not in ("favourable_rate", "override_rate")],
         gap_metrics=GAP_METRICS,
     )
