@@ -143,26 +143,33 @@ def test_final_decision(
     assert _count(session_factory, FinalDecision) == 1
 
 
+AUDIT_ROUTES = [
+    ("POST", "/v1/outcomes", "scoring"),
+    ("POST", "/v1/outcomes/batch", "scoring"),
+    ("POST", "/v1/recommendations/some-id/final", "scoring"),
+    ("POST", "/v1/audits", "audit"),
+    ("GET", f"/v1/reports/{POLICY}", "audit"),
+    ("GET", f"/v1/reports/{POLICY}/2026-10", "audit"),
+    ("GET", f"/v1/reports/{POLICY}/2026-10.csv", "audit"),
+    ("GET", f"/v1/reports/{POLICY}/2026-10.html", "audit"),
+]
+
+
 def test_roles(client: TestClient, make_key: Callable[..., str]) -> None:
     put_live(client, make_key)
-    body = {"recommendation_id": "x", "outcome": 1, "observed_at": WHEN, "source": "s"}
-    for role, allowed in [("audit", False), ("admin", False), ("scoring", True)]:
-        r = client.post("/v1/outcomes", json=body, headers=bearer(make_key(role)))
-        assert (r.status_code == 404) is allowed and (r.status_code == 403) is not allowed
-    assert client.post("/v1/outcomes", json=body).status_code == 401
-    assert (
-        client.get(f"/v1/reports/{POLICY}", headers=bearer(make_key("scoring"))).status_code == 403
-    )
-    audit = bearer(make_key("audit"))
-    assert client.get(f"/v1/reports/{POLICY}", headers=audit).status_code == 200
+    tokens = {role: bearer(make_key(role)) for role in ("scoring", "audit", "admin")}
+    for method, path, allowed in AUDIT_ROUTES:
+        for caller, headers in [*tokens.items(), ("none", {})]:
+            r = client.request(method, path, headers=headers, json={} if method == "POST" else None)
+            where = f"{method} {path} as {caller}: {r.status_code}"
+            if caller == allowed:
+                assert r.status_code not in (401, 403), where
+            elif caller == "none":
+                assert r.status_code == 401 and r.json()["error"]["code"] == "unauthorized", where
+            else:
+                assert r.status_code == 403 and r.json()["error"]["code"] == "forbidden", where
+    audit = tokens["audit"]
     assert client.get(f"/v1/reports/{POLICY}/2026-10", headers=audit).status_code == 404
     r = client.post("/v1/audits", json={"policy": POLICY, "month": "2026-10"}, headers=audit)
-    assert r.status_code == 201
-    assert (
-        client.post(
-            "/v1/audits",
-            json={"policy": POLICY, "month": "2026-10"},
-            headers=bearer(make_key("scoring")),
-        ).status_code
-        == 403
-    )
+    assert r.status_code == 201 and r.json()["row_counts"]["recommendations"] == 0
+    assert client.get(f"/v1/reports/{POLICY}/2026-10.pdf", headers=audit).status_code == 404
