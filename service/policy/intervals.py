@@ -19,8 +19,22 @@ def wilson_interval(successes: int, trials: int, z: float = Z95) -> tuple[float,
         raise ValueError(f"need 0 <= successes <= trials, got {successes} of {trials}")
     if trials == 0:
         return 0.0, 1.0
+    return wilson_interval_for_rate(successes / trials, trials, z)
+
+
+def wilson_interval_for_rate(rate: float, trials: int, z: float = Z95) -> tuple[float, float]:
+    """Wilson interval for an observed proportion ``rate`` out of ``trials``.
+
+    For expected rates of a randomized rule (sums of probabilities, not integer counts):
+    each case's action is then Bernoulli with the population's mean rate, so the same
+    formula applies.
+    """
+    if not 0.0 <= rate <= 1.0 or trials < 0:
+        raise ValueError(f"need 0 <= rate <= 1 and trials >= 0, got {rate} of {trials}")
+    if trials == 0:
+        return 0.0, 1.0
     n = float(trials)
-    p = successes / n
+    p = rate
     z2 = z * z
     denom = 1.0 + z2 / n
     centre = (p + z2 / (2.0 * n)) / denom

@@ -43,15 +43,20 @@ def keyed_draws(
     secret: bytes, name: str, version: int, case_ids: Sequence[str]
 ) -> npt.NDArray[np.float64]:
     """Draws for many cases: one HMAC each, on a reused keyed state, then one numpy pass."""
-    base = hmac.new(secret, digestmod=hashlib.sha256)
     prefix = json.dumps([name, version], separators=(",", ":"), ensure_ascii=False)[:-1] + ","
-    heads = bytearray(8 * len(case_ids))
-    for i, case_id in enumerate(case_ids):
-        mac = base.copy()
-        # json.dumps of the case id alone is exactly how it appears inside the array.
-        mac.update((prefix + json.dumps(case_id, ensure_ascii=False) + "]").encode("utf-8"))
-        heads[8 * i : 8 * i + 8] = mac.digest()[:8]
-    raw = np.frombuffer(bytes(heads), dtype=">u8").astype(np.float64)
+    # The message prefix is the same for every case: hash it once into the reused state.
+    base = hmac.new(secret, prefix.encode("utf-8"), hashlib.sha256)
+    # encode_basestring is exactly what json.dumps(case_id, ensure_ascii=False) returns, without
+    # the encoder set-up per call: the string as it appears inside the array.
+    encode = json.encoder.encode_basestring
+    copy = base.copy
+    heads: list[bytes] = []
+    append = heads.append
+    for case_id in case_ids:
+        mac = copy()
+        mac.update((encode(case_id) + "]").encode("utf-8"))
+        append(mac.digest()[:8])
+    raw = np.frombuffer(b"".join(heads), dtype=">u8").astype(np.float64)
     return np.minimum(raw / _TWO_64, MAX_DRAW)
 
 

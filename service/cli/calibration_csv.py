@@ -1,0 +1,102 @@
+"""Reading calibration data from CSV, with one-line errors that name the line and column."""
+
+from __future__ import annotations
+
+import csv
+import math
+from pathlib import Path
+
+import numpy as np
+import numpy.typing as npt
+
+from service.cli.common import CliError
+from service.policy.derive import CalibrationData
+from service.policy.document import GROUP_SEPARATOR
+
+
+def load_calibration(
+    path: Path, score: str, outcome: str, group_columns: list[str]
+) -> CalibrationData:
+    """Score in [0, 1], outcome 0/1 and the group columns of every row of ``path``."""
+    wanted = [score, outcome, *group_columns]
+    try:
+        f = path.open(newline="", encoding="utf-8-sig")
+    except OSError as exc:
+        raise CliError(f"{path}: cannot read: {exc.strerror}") from exc
+    with f:
+        reader = csv.reader(f)
+        try:
+            header = next(reader, None)
+            if header is None:
+                raise CliError(f"{path}: the file is empty")
+            header = [h.strip() for h in header]
+            for col in wanted:
+                if col not in header:
+                    raise CliError(
+                        f"{path}: column {col!r} not found (columns: {', '.join(header)})"
+                    )
+            index = [header.index(col) for col in wanted]
+            columns: list[list[str]] = [[] for _ in wanted]
+            lines: list[int] = []
+            for row in reader:
+                if not row or all(not cell.strip() for cell in row):
+                    continue  # blank line
+                if len(row) != len(header):
+                    raise CliError(
+                        f"{path}: line {reader.line_num}: {len(row)} fields, "
+                        f"the header has {len(header)}"
+                    )
+                for column, i in zip(columns, index, strict=True):
+                    column.append(row[i].strip())
+                lines.append(reader.line_num)
+        except csv.Error as exc:
+            raise CliError(f"{path}: line {reader.line_num}: {exc}") from exc
+        except UnicodeDecodeError as exc:
+            raise CliError(f"{path}: not UTF-8 text ({exc.reason})") from exc
+    if not lines:
+        raise CliError(f"{path}: no data rows below the header")
+
+    scores = _scores(path, score, columns[0], lines)
+    outcomes = _outcomes(path, outcome, columns[1], lines)
+    for j, col in enumerate(group_columns):
+        values = columns[2 + j]
+        for i, v in enumerate(values):
+            if not v or GROUP_SEPARATOR in v:
+                problem = "is empty" if not v else f"contains {GROUP_SEPARATOR!r}"
+                raise CliError(f"{path}: line {lines[i]}: column {col!r} {problem}")
+    keys = [GROUP_SEPARATOR.join(parts) for parts in zip(*columns[2:], strict=True)]
+    known = sorted(set(keys))
+    code_of = {k: c for c, k in enumerate(known)}
+    codes = np.fromiter((code_of[k] for k in keys), dtype=np.intp, count=len(keys))
+    return CalibrationData(scores, outcomes, codes, known, list(group_columns))
+
+
+def _scores(path: Path, col: str, values: list[str], lines: list[int]) -> npt.NDArray[np.float64]:
+    try:
+        scores = np.array(values, dtype=np.float64)
+    except ValueError:
+        for i, v in enumerate(values):
+            try:
+                float(v)
+            except ValueError:
+                raise CliError(
+                    f"{path}: line {lines[i]}: column {col!r}: {v!r} is not a number"
+                ) from None
+        raise
+    bad = ~(np.isfinite(scores) & (scores >= 0.0) & (scores <= 1.0))
+    if bad.any():
+        i = int(np.argmax(bad))
+        what = "is not a number" if math.isnan(scores[i]) else "is outside [0, 1]"
+        raise CliError(f"{path}: line {lines[i]}: column {col!r}: {values[i]!r} {what}")
+    return scores
+
+
+def _outcomes(path: Path, col: str, values: list[str], lines: list[int]) -> npt.NDArray[np.int8]:
+    arr = np.array(values)
+    ones = arr == "1"
+    bad = ~(ones | (arr == "0"))
+    if bad.any():
+        i = int(np.argmax(bad))
+        raise CliError(f"{path}: line {lines[i]}: column {col!r}: {values[i]!r} is not 0 or 1")
+    out: npt.NDArray[np.int8] = ones.astype(np.int8)
+    return out

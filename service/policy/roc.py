@@ -1,0 +1,112 @@
+"""Empirical ROC curves and their upper convex hulls, vectorised and exact.
+
+The ROC of a score over all distinct cuts (act iff score >= cut), plus never-act (0, 0) and
+always-act (1, 1), comes from one sort and cumulative sums. Its upper convex hull is computed
+on the integer counts, so every turn test is exact.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import numpy.typing as npt
+
+FloatArray = npt.NDArray[np.float64]
+IntArray = npt.NDArray[np.int64]
+
+
+@dataclass(frozen=True)
+class RocCurve:
+    """Empirical ROC: point k acts on scores >= ``cuts[k]`` (``inf`` = never act).
+
+    Counts are cumulative integers, so hull computations on them are exact.
+    """
+
+    cuts: FloatArray
+    tp: IntArray
+    fp: IntArray
+    positives: int
+    negatives: int
+
+    @property
+    def tpr(self) -> FloatArray:
+        return self.tp / self.positives
+
+    @property
+    def fpr(self) -> FloatArray:
+        return self.fp / self.negatives
+
+
+def roc_curve(scores: FloatArray, outcomes: npt.NDArray[np.integer]) -> RocCurve:
+    """ROC over all distinct cuts, from never (0, 0) down to the lowest score (1, 1)."""
+    order = np.argsort(scores, kind="stable")[::-1]
+    s = scores[order]
+    y = outcomes[order].astype(bool)
+    tp = np.cumsum(y, dtype=np.int64)
+    fp = np.cumsum(~y, dtype=np.int64)
+    # The last row of each run of equal scores closes one cut.
+    last = np.flatnonzero(np.append(s[1:] != s[:-1], True)) if len(s) else np.array([], int)
+    zero = np.zeros(1, dtype=np.int64)
+    return RocCurve(
+        cuts=np.concatenate([[np.inf], s[last]]),
+        tp=np.concatenate([zero, tp[last]]),
+        fp=np.concatenate([zero, fp[last]]),
+        positives=int(tp[-1]) if len(s) else 0,
+        negatives=int(fp[-1]) if len(s) else 0,
+    )
+
+
+def upper_hull(curve: RocCurve) -> npt.NDArray[np.intp]:
+    """Indices of the ROC points that are vertices of its upper convex hull, left to right.
+
+    Vectorised pruning: every point on or below the chord of its current neighbours is not a
+    vertex, so all of them go at once; repeat until every turn is strictly clockwise. Exact,
+    because the coordinates are integer counts.
+    """
+    x, y = curve.fp, curve.tp
+    idx = np.arange(len(x), dtype=np.intp)
+    for _ in range(64):
+        if len(idx) <= 2:
+            return idx
+        xi, yi = x[idx], y[idx]
+        cross = (xi[1:-1] - xi[:-2]) * (yi[2:] - yi[:-2]) - (yi[1:-1] - yi[:-2]) * (
+            xi[2:] - xi[:-2]
+        )
+        keep = cross < 0
+        if keep.all():
+            return idx
+        idx = np.concatenate([idx[:1], idx[1:-1][keep], idx[-1:]])
+    return _monotone_chain(x, y, idx)
+
+
+def _monotone_chain(x: IntArray, y: IntArray, idx: npt.NDArray[np.intp]) -> npt.NDArray[np.intp]:
+    """Andrew's monotone chain (upper half) for the rare inputs pruning does not settle."""
+    out: list[int] = []
+    for i in idx.tolist():
+        while len(out) >= 2:
+            o, a = out[-2], out[-1]
+            if (x[a] - x[o]) * (y[i] - y[o]) - (y[a] - y[o]) * (x[i] - x[o]) >= 0:
+                out.pop()
+            else:
+                break
+        out.append(i)
+    return np.asarray(out, dtype=np.intp)
+
+
+@dataclass(frozen=True)
+class Hull:
+    """Upper hull vertices of one unit's ROC, from (0, 0) to (1, 1), with their cuts."""
+
+    fpr: FloatArray
+    tpr: FloatArray
+    cuts: FloatArray
+
+
+def hull_of(curve: RocCurve, score_low: float) -> Hull:
+    idx = upper_hull(curve)
+    cuts = curve.cuts[idx].copy()
+    # The last vertex acts on everyone: write it as the bottom of the score range so that
+    # new scores below the calibration minimum are treated the same way.
+    cuts[-1] = score_low
+    return Hull(fpr=curve.fpr[idx], tpr=curve.tpr[idx], cuts=cuts)
