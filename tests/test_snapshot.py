@@ -163,3 +163,11 @@ def test_trend_takes_earlier_months() -> None:
     s = snapshot(history=[earlier])
     months = {p["month"] for p in s["trend"]}
     assert months == {"2026-09", "2026-10"}
+
+
+def test_auditor_tolerance_overrides_the_version() -> None:
+    assert check(snapshot(), "parity", "b", "tpr")["status"] == "watch"  # version: 0.05
+    s = snapshot(tolerance=0.3)
+    assert s["versions"][0]["tolerance"] == 0.3
+    assert s["versions"][0]["policy_tolerance"] == 0.05
+    assert check(s, "parity", "b", "tpr")["status"] == "holds"

@@ -36,6 +36,12 @@ class AuditRequest(BaseModel):
     reference_group: str | None = Field(
         default=None, description="group the gaps are taken against (default: the largest)"
     )
+    tolerance: float | None = Field(
+        default=None,
+        ge=0.0,
+        le=1.0,
+        description="tolerance of every check (default: each version's targets.tolerance)",
+    )
     min_count: int = Field(default=DEFAULT_MIN_COUNT, ge=1, le=100_000)
 
 
@@ -65,6 +71,7 @@ def post_audit(
         time_zone=settings.timezone,
         actor=key.name,
         reference_group=body.reference_group,
+        tolerance=body.tolerance,
         min_count=body.min_count,
     )
     session.commit()

@@ -142,6 +142,8 @@ class AuditInput:
     code_version: str
     versions: Sequence[VersionCounts]
     reference_group: str | None = None
+    tolerance: float | None = None
+    """The auditor's tolerance for every check; None: each version's ``targets.tolerance``."""
     min_count: int = DEFAULT_MIN_COUNT
     history: Sequence[Mapping[str, Any]] = ()
     """Earlier snapshots of the same policy (latest per month), for the 12-month trend."""
@@ -224,6 +226,8 @@ def _version_json(v: VersionCounts, inp: AuditInput) -> dict[str, Any]:
     doc = v.document
     targets = doc.targets
     tolerance = targets.tolerance if targets is not None else 0.0
+    if inp.tolerance is not None:
+        tolerance = inp.tolerance
     criterion = str(targets.criterion) if targets is not None else None
     fav, obs = doc.favourable, doc.outcome_observed_after
     cells = _Cells(v)
@@ -321,6 +325,7 @@ def _version_json(v: VersionCounts, inp: AuditInput) -> dict[str, Any]:
         "content_hash": None,
         "criterion": criterion,
         "tolerance": tolerance,
+        "policy_tolerance": targets.tolerance if targets is not None else None,
         "favourable": fav,
         "outcome_observed_after": obs,
         "action_label": doc.action_label,
@@ -545,6 +550,7 @@ def build_snapshot(inp: AuditInput, content_hashes: Mapping[int, str] | None = N
             "min_count": inp.min_count,
             "small_cell_limit": SMALL_CELL_LIMIT,
             "reference_group": inp.reference_group,
+            "tolerance": inp.tolerance,
         },
         "row_counts": {
             "recommendations": _total_shown(totals["n"], versions, "n"),

@@ -33,6 +33,11 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
     )
     run.add_argument("--reference", help="reference group for gaps (default: the largest)")
     run.add_argument(
+        "--tolerance",
+        type=float,
+        help="tolerance of every check (default: each version's targets.tolerance)",
+    )
+    run.add_argument(
         "--min-count",
         type=int,
         default=DEFAULT_MIN_COUNT,
@@ -69,6 +74,7 @@ def _run_once(args: argparse.Namespace, settings: Settings) -> None:
                 time_zone=settings.timezone,
                 actor="cli",
                 reference_group=args.reference,
+                tolerance=args.tolerance,
                 min_count=args.min_count,
                 progress=stderr_progress,
             )
@@ -87,6 +93,8 @@ def _run(args: argparse.Namespace) -> int:
     settings = Settings()
     if args.min_count < 1:
         raise CliError("--min-count must be at least 1")
+    if args.tolerance is not None and not 0 <= args.tolerance <= 1:
+        raise CliError("--tolerance must be between 0 and 1")
     if args.every is None:
         _run_once(args, settings)
         return 0
