@@ -322,6 +322,24 @@ _ENV.filters["gapfmt"] = _fmt_gap
 _ENV.globals["labels"] = METRIC_LABELS
 
 
+def _alert_notes(alerts: list[Mapping[str, Any]]) -> list[str]:
+    """too-few and not-identifiable alerts, one line per version and status (the JSON and
+    CSV keep every one): they say what could not be checked, not what went wrong."""
+    grouped: dict[tuple[int, str], list[str]] = {}
+    for a in alerts:
+        if a["status"] in ("too-few", "not-identifiable"):
+            what = f"{METRIC_LABELS.get(a['metric'], a['metric'])} {a['check']} of {a['group']}"
+            grouped.setdefault((a["version"], a["status"]), []).append(what)
+    reason = {
+        "too-few": "too few cases to decide",
+        "not-identifiable": "not identifiable (outcomes seen only after some decisions)",
+    }
+    return [
+        f"version {v}: {len(items)} check(s) {reason[status]}: " + "; ".join(items)
+        for (v, status), items in sorted(grouped.items())
+    ]
+
+
 def to_html(snapshot: Mapping[str, Any]) -> str:
     charts = {
         v["version"]: {"rates": rates_chart(v), "roc": roc_chart(v)} for v in snapshot["versions"]
@@ -331,6 +349,8 @@ def to_html(snapshot: Mapping[str, Any]) -> str:
         s=snapshot,
         charts=charts,
         trend=trend_chart(snapshot),
+        main_alerts=[a for a in snapshot["alerts"] if a["status"] in ("breach", "watch")],
+        alert_notes=_alert_notes(snapshot["alerts"]),
         # The favourable rate is the action rate or its complement; overrides have their own
         # table: leaving them out keeps the table within a printed page.
         table_rates=[m for m in RATE_METRICS if m not in ("favourable_rate", "override_rate")],
