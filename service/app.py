@@ -7,7 +7,7 @@ from contextlib import asynccontextmanager
 
 from fastapi import FastAPI
 
-from service.api import health, log, policies, recommendations
+from service.api import health, log, outcomes, policies, recommendations, reports
 from service.api.deps import KeyCache
 from service.api.errors import install_error_handlers
 from service.api.limits import BodySizeLimit
@@ -61,5 +61,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.include_router(policies.router)
     app.include_router(recommendations.router)
     app.include_router(log.router)
+    app.include_router(outcomes.router)
+    app.include_router(reports.router)
     app.add_middleware(BodySizeLimit, max_bytes=settings.max_body_bytes)
     return app

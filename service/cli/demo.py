@@ -7,6 +7,7 @@ from pathlib import Path
 from typing import Any
 
 from service.cli.common import CliError
+from service.demo.audit_stages import full_stages
 from service.demo.fernhollow import DEFAULT_SEED
 from service.demo.server import ServerFailed
 from service.demo.story import DemoContext, DemoError, run_demo
@@ -20,7 +21,8 @@ def register(sub: Any) -> None:
             "Migrate a fresh SQLite database in the output folder, create keys, submit, "
             "approve and activate the demo policy, start `evenhand serve`, replay synthetic "
             "discharges through HTTP, activate a second version, roll it back, seal and verify "
-            "the decision log, and print a summary. The data are invented."
+            "the decision log, report outcomes 30 days on, audit the month, save the report and "
+            "print a summary. The data are invented."
         ),
     )
     p.add_argument(
@@ -36,7 +38,7 @@ def run(args: argparse.Namespace) -> int:
         raise CliError("--cases must be at least 10")
     ctx = DemoContext(output_dir=args.output, cases=args.cases, seed=args.seed)
     try:
-        run_demo(ctx)
+        run_demo(ctx, full_stages())
     except (DemoError, ServerFailed) as exc:
         raise CliError(str(exc)) from None
     return 0

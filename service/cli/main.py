@@ -12,9 +12,21 @@ from service.cli.common import CliError
 
 def _command_modules() -> list[ModuleType]:
     # Imported here so ``evenhand --help`` stays fast and one broken module names itself.
-    from service.cli import demo, demo_data, derive, keys, log, migrate, policy, schema, serve
+    from service.cli import (
+        audit,
+        demo,
+        demo_data,
+        derive,
+        keys,
+        log,
+        migrate,
+        policy,
+        report,
+        schema,
+        serve,
+    )
 
-    return [serve, migrate, keys, policy, log, demo, demo_data, derive, schema]
+    return [serve, migrate, keys, policy, log, demo, demo_data, derive, schema, audit, report]
 
 
 def build_parser() -> argparse.ArgumentParser:

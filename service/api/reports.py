@@ -1,0 +1,129 @@
+"""Audit runs and report snapshots (audit role).
+
+``POST /v1/audits`` runs the audit of one policy and month and stores a new snapshot.
+``GET /v1/reports/{policy}`` lists months and snapshots; ``GET /v1/reports/{policy}/{YYYY-MM}``
+returns the latest snapshot as JSON, and with ``.csv`` or ``.html`` appended the same snapshot
+rendered (``?snapshot=ID`` picks an earlier one).
+"""
+
+from __future__ import annotations
+
+import re
+from typing import Annotated, Any
+
+from fastapi import APIRouter, Query, Response
+from pydantic import BaseModel, ConfigDict, Field
+
+from service.api.deps import AppSettings, AuditKey, DbSession
+from service.api.errors import error_responses
+from service.audit import render
+from service.audit.job import run_audit
+from service.audit.reports import get_snapshot, list_reports
+from service.errors import NotFound
+from service.policy.statuses import DEFAULT_MIN_COUNT
+from service.store.db import begin_read_only
+
+router = APIRouter(tags=["audit"], responses=error_responses(401, 403, 404, 422))
+
+_REPORT_FILE = re.compile(r"^(\d{4}-\d{2})(?:\.(json|csv|html))?$")
+
+
+class AuditRequest(BaseModel):
+    model_config = ConfigDict(extra="forbid")
+
+    policy: str = Field(min_length=1, max_length=64)
+    month: str = Field(pattern=r"^\d{4}-(0[1-9]|1[0-2])$", examples=["2026-10"])
+    reference_group: str | None = Field(
+        default=None, description="group the gaps are taken against (default: the largest)"
+    )
+    tolerance: float | None = Field(
+        default=None,
+        ge=0.0,
+        le=1.0,
+        description="tolerance of every check (default: each version's targets.tolerance)",
+    )
+    min_count: int = Field(default=DEFAULT_MIN_COUNT, ge=1, le=100_000)
+
+
+class AuditResponse(BaseModel):
+    snapshot_id: int
+    policy: str
+    month: str
+    digest: str
+    versions: list[int]
+    row_counts: dict[str, Any]
+    alerts: list[dict[str, Any]]
+
+
+@router.post(
+    "/v1/audits",
+    status_code=201,
+    response_model=AuditResponse,
+    summary="Audit one policy for one calendar month and store a new snapshot",
+)
+def post_audit(
+    body: AuditRequest, session: DbSession, key: AuditKey, settings: AppSettings
+) -> AuditResponse:
+    run = run_audit(
+        session,
+        body.policy,
+        body.month,
+        time_zone=settings.timezone,
+        actor=key.name,
+        reference_group=body.reference_group,
+        tolerance=body.tolerance,
+        min_count=body.min_count,
+    )
+    session.commit()
+    s = run.snapshot
+    return AuditResponse(
+        snapshot_id=run.snapshot_id,
+        policy=s["policy"],
+        month=s["month"],
+        digest=s["digest"],
+        versions=s["versions_covered"],
+        row_counts=s["row_counts"],
+        alerts=s["alerts"],
+    )
+
+
+@router.get("/v1/reports/{policy}", summary="Months and snapshots of a policy")
+def get_reports(policy: str, session: DbSession, _key: AuditKey) -> dict[str, Any]:
+    begin_read_only(session)
+    return list_reports(session, policy)
+
+
+@router.get(
+    "/v1/reports/{policy}/{month_file}",
+    summary="The latest snapshot of a month: YYYY-MM (JSON), YYYY-MM.csv or YYYY-MM.html",
+    response_model=None,
+    responses={
+        200: {
+            "content": {"application/json": {}, "text/csv": {}, "text/html": {}},
+            "description": "The snapshot, as JSON or rendered",
+        }
+    },
+)
+def get_report(
+    policy: str,
+    month_file: str,
+    session: DbSession,
+    _key: AuditKey,
+    snapshot: Annotated[int | None, Query(ge=1, description="a snapshot id")] = None,
+) -> Response:
+    m = _REPORT_FILE.match(month_file)
+    if m is None:
+        raise NotFound(
+            f"{month_file!r} is not a report: use YYYY-MM, YYYY-MM.csv or YYYY-MM.html",
+            code="report_not_found",
+        )
+    month, kind = m.group(1), m.group(2) or "json"
+    begin_read_only(session)
+    content = get_snapshot(session, policy, month, snapshot)
+    headers = {"X-Evenhand-Digest": content["digest"]}
+    if kind == "csv":
+        headers["Content-Disposition"] = f'attachment; filename="{policy}-{month}.csv"'
+        return Response(render.to_csv(content), media_type="text/csv", headers=headers)
+    if kind == "html":
+        return Response(render.to_html(content), media_type="text/html", headers=headers)
+    return Response(render.to_json(content), media_type="application/json", headers=headers)

@@ -1,0 +1,135 @@
+"""Demo stages after the decisions: outcomes arrive, nurses' final decisions, the month's audit.
+
+Appended to the stages of ``service.demo.story`` (before the summary). Everything goes through
+the running server over HTTP: outcomes as a records system would send them, then an audit run
+by the auditor's key, and the HTML and CSV report fetched and saved in the output folder.
+"""
+
+from __future__ import annotations
+
+from datetime import UTC, datetime, timedelta
+from typing import Any
+
+import httpx
+import numpy as np
+
+from service.demo.story import DemoContext, Stage, default_stages, print_summary
+
+FOLLOW_UP = timedelta(days=30)
+OUTCOME_BATCH = 500
+AUDIT_TOLERANCE = 0.05
+OVERRIDE_REASONS = ("patient-declined", "clinical-judgement", "already-in-programme")
+
+
+def outcomes_arrive(ctx: DemoContext) -> None:
+    """Readmission outcomes, 30 days after each discharge, from the records system; a few
+    cases never report back (moved away), and nurses record their final decisions."""
+    d = ctx.discharges
+    assert d is not None
+    rng = np.random.default_rng(ctx.seed + 1)
+    reported = rng.random(len(ctx.sent)) >= 0.12  # about 12% lost to follow-up
+    items: list[dict[str, Any]] = []
+    for sent, seen in zip(ctx.sent, reported, strict=True):
+        if not seen:
+            continue
+        items.append(
+            {
+                "recommendation_id": sent.recommendation_id,
+                "outcome": int(d.outcome[sent.index]),
+                "observed_at": (d.discharged_at[sent.index] + FOLLOW_UP).isoformat(),
+                "source": "fernhollow-records",
+            }
+        )
+    ctx.say(f"[10] 30 days later: {len(items)} readmission outcomes arrive from the records system")
+    with ctx.client() as api:
+        for start in range(0, len(items), OUTCOME_BATCH):
+            chunk = items[start : start + OUTCOME_BATCH]
+            api.post("/v1/outcomes/batch", ctx.tokens["scoring"], {"items": chunk})
+            ctx.say(f"     outcomes: {min(start + OUTCOME_BATCH, len(items))}/{len(items)}")
+        # Nurses confirm most recommendations; about 3% they override, with a reason code.
+        overrides = followed = 0
+        for sent in ctx.sent:
+            u = rng.random()
+            if u < 0.03:
+                body = {
+                    "decision": "overridden",
+                    "reason_code": OVERRIDE_REASONS[int(rng.integers(len(OVERRIDE_REASONS)))],
+                    "decided_at": d.discharged_at[sent.index].isoformat(),
+                    "decided_by": "discharge nurse",
+                }
+                overrides += 1
+            elif u < 0.25:
+                body = {
+                    "decision": "followed",
+                    "decided_at": d.discharged_at[sent.index].isoformat(),
+                    "decided_by": "discharge nurse",
+                }
+                followed += 1
+            else:
+                continue
+            api.post(
+                f"/v1/recommendations/{sent.recommendation_id}/final", ctx.tokens["scoring"], body
+            )
+    ctx.say(f"     final decisions recorded: {followed} followed, {overrides} overridden")
+    ctx.summary.append(
+        f"outcomes: {len(items)} of {len(ctx.sent)} reported; final decisions: {followed} "
+        f"followed, {overrides} overridden"
+    )
+
+
+def audit_month(ctx: DemoContext) -> None:
+    """The auditor runs the month's audit and saves the report as HTML and CSV."""
+    assert ctx.sent, "no recommendations were sent"
+    with ctx.client() as api:
+        listing = api.get(f"/v1/policies/{ctx.policy_name}/versions", ctx.tokens["author"])
+        issued = _issue_month()
+        ctx.say(f"[11] auditor-lindqvist runs the audit of {ctx.policy_name} for {issued}")
+        # The derived policy's tolerance is the one it was derived with on calibration data
+        # (often 0); the auditor judges realized gaps against a working tolerance of her own.
+        body = {"policy": ctx.policy_name, "month": issued, "tolerance": AUDIT_TOLERANCE}
+        result = api.post("/v1/audits", ctx.tokens["audit"], body)
+        paths = {}
+        for kind in ("html", "csv"):
+            text = _get_text(ctx, f"/v1/reports/{ctx.policy_name}/{issued}.{kind}")
+            path = ctx.output_dir / f"report-{ctx.policy_name}-{issued}.{kind}"
+            path.write_text(text, encoding="utf-8")
+            paths[kind] = path
+    counts = result["row_counts"]
+    ctx.say(
+        f"     snapshot {result['snapshot_id']}: {counts['recommendations']} recommendations, "
+        f"{counts['outcomes']} outcomes, versions {result['versions']} "
+        f"(of {len(listing)} stored), digest {result['digest'][:16]}"
+    )
+    lines = ["", f"Audit of {issued}: {len(result['alerts'])} alert(s)"]
+    for alert in result["alerts"]:
+        lines.append(f"  [{alert['status']}] v{alert['version']} {alert['message']}")
+    lines.append(f"report: {paths['html'].resolve()}")
+    lines.append(f"        {paths['csv'].resolve()} (one row per version x group x metric)")
+    ctx.summary.extend(lines)
+    ctx.say(f"     {len(result['alerts'])} alert(s); report saved to {paths['html']}")
+
+
+def _get_text(ctx: DemoContext, path: str) -> str:
+    """A rendered report (CSV or HTML, not JSON) from the server."""
+    headers = {"Authorization": f"Bearer {ctx.tokens['audit']}"}
+    response = httpx.get(ctx.base_url + path, headers=headers, timeout=60.0)
+    response.raise_for_status()
+    return response.text
+
+
+def _issue_month() -> str:
+    """The calendar month (UTC, the server's default zone) the recommendations were issued in:
+    the demo sends them all within a few minutes of now."""
+    now = datetime.now(UTC)
+    return f"{now.year:04d}-{now.month:02d}"
+
+
+def audit_stages() -> list[Stage]:
+    return [outcomes_arrive, audit_month]
+
+
+def full_stages() -> list[Stage]:
+    """The whole story: the decision stages, then outcomes and the audit, then the summary."""
+    stages = default_stages()
+    at = stages.index(print_summary)
+    return [*stages[:at], *audit_stages(), *stages[at:]]

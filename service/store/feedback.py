@@ -1,0 +1,307 @@
+"""Recording outcomes and final decisions against logged recommendations.
+
+Rules (the API and the demo go through these functions; callers commit):
+
+- The same outcome again changes nothing (``unchanged``). A different outcome for a
+  recommendation that has one is a conflict, unless it comes as a correction with a reason:
+  then the replaced value goes to ``outcome_corrections`` and the new one counts.
+- A final decision is recorded once; the same decision again is ``unchanged``, a different one
+  a conflict.
+- A batch is applied as a whole: every item is checked first, and if any fails nothing is
+  written and every failure is reported with its item index.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+from datetime import datetime
+from typing import Any, Literal
+
+from sqlalchemy import select
+from sqlalchemy.orm import Session
+
+from service.errors import Conflict, NotFound, ServiceError, Unprocessable
+from service.store.audit_models import FinalDecision, Outcome, OutcomeCorrection
+from service.store.models import Recommendation
+
+LOOKUP_CHUNK = 500
+
+Status = Literal["recorded", "unchanged", "corrected"]
+
+
+@dataclass(frozen=True, slots=True)
+class OutcomeReport:
+    """One outcome as the case-management or records system sends it."""
+
+    outcome: int
+    observed_at: datetime
+    source: str
+    recommendation_id: str | None = None
+    policy: str | None = None
+    case_id: str | None = None
+    correction_reason: str | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class OutcomeResult:
+    recommendation_id: str
+    status: Status
+    outcome: int
+    corrections: int
+
+
+@dataclass(frozen=True, slots=True)
+class _Target:
+    pk: int
+    recommendation_id: str
+    cohort: dict[str, Any]
+    """The recommendation's cohort fields, copied onto the outcome or final decision."""
+
+
+def _cohort_columns() -> list[Any]:
+    r = Recommendation.__table__.c
+    return [r[name] for name in COPIED]
+
+
+COPIED = (
+    "policy",
+    "version",
+    "group",
+    "shadow_version",
+    "issued_at",
+    "action",
+    "probability",
+    "shadow_action",
+)
+
+
+def _describe(item: OutcomeReport) -> str:
+    if item.recommendation_id is not None:
+        return f"recommendation {item.recommendation_id!r}"
+    return f"case {item.case_id!r} of policy {item.policy!r}"
+
+
+def _resolve(session: Session, items: Sequence[OutcomeReport]) -> list[_Target | None]:
+    """The recommendation of each item; None when there is none. A (policy, case_id) pair
+    names the latest recommendation issued for that case under that policy."""
+    by_id: dict[str, _Target] = {}
+    ids = sorted({i.recommendation_id for i in items if i.recommendation_id is not None})
+    r = Recommendation.__table__.c
+    for start in range(0, len(ids), LOOKUP_CHUNK):
+        chunk = ids[start : start + LOOKUP_CHUNK]
+        rows = session.execute(
+            select(r.id, r.recommendation_id, *_cohort_columns()).where(
+                r.recommendation_id.in_(chunk)
+            )
+        )
+        for row in rows:
+            by_id[row.recommendation_id] = _target(row)
+    by_case: dict[tuple[str, str], _Target] = {}
+    pairs: set[tuple[str, str]] = set()
+    for i in items:
+        if i.recommendation_id is None and i.policy is not None and i.case_id is not None:
+            pairs.add((i.policy, i.case_id))
+    for policy in sorted({p for p, _ in pairs}):
+        cases = sorted(c for p, c in pairs if p == policy)
+        for start in range(0, len(cases), LOOKUP_CHUNK):
+            chunk = cases[start : start + LOOKUP_CHUNK]
+            found = session.execute(
+                select(r.id, r.recommendation_id, r.case_id, *_cohort_columns())
+                .where(r.policy == policy, r.case_id.in_(chunk))
+                .order_by(r.issued_at, r.id)
+            )
+            for row in found:
+                by_case[(policy, row.case_id)] = _target(row)  # the latest wins
+    out: list[_Target | None] = []
+    for item in items:
+        if item.recommendation_id is not None:
+            out.append(by_id.get(item.recommendation_id))
+        else:
+            assert item.policy is not None and item.case_id is not None
+            out.append(by_case.get((item.policy, item.case_id)))
+    return out
+
+
+def _target(row: Any) -> _Target:
+    return _Target(
+        int(row.id), str(row.recommendation_id), {name: getattr(row, name) for name in COPIED}
+    )
+
+
+def _existing(session: Session, pks: Sequence[int]) -> dict[int, Outcome]:
+    found: dict[int, Outcome] = {}
+    unique = sorted(set(pks))
+    for start in range(0, len(unique), LOOKUP_CHUNK):
+        chunk = unique[start : start + LOOKUP_CHUNK]
+        for row in session.scalars(select(Outcome).where(Outcome.recommendation_pk.in_(chunk))):
+            found[row.recommendation_pk] = row
+    return found
+
+
+def record_outcomes(
+    session: Session, items: Sequence[OutcomeReport], actor: str
+) -> list[OutcomeResult]:
+    """Apply every item or none; raises the failure (one item) or a batch error (several)."""
+    targets = _resolve(session, items)
+    current = _existing(session, [t.pk for t in targets if t is not None])
+    results: list[OutcomeResult] = []
+    failures: list[tuple[int, ServiceError]] = []
+    for index, (item, target) in enumerate(zip(items, targets, strict=True)):
+        if target is None:
+            failures.append(
+                (
+                    index,
+                    NotFound(
+                        f"no recommendation for {_describe(item)}", code="unknown_recommendation"
+                    ),
+                )
+            )
+            continue
+        row = current.get(target.pk)
+        if row is None:
+            row = Outcome(
+                **target.cohort,
+                recommendation_pk=target.pk,
+                outcome=item.outcome,
+                observed_at=item.observed_at,
+                source=item.source,
+                corrections=0,
+            )
+            session.add(row)
+            current[target.pk] = row
+            results.append(OutcomeResult(target.recommendation_id, "recorded", item.outcome, 0))
+            continue
+        if row.outcome == item.outcome:
+            results.append(
+                OutcomeResult(target.recommendation_id, "unchanged", row.outcome, row.corrections)
+            )
+            continue
+        if not item.correction_reason:
+            failures.append(
+                (
+                    index,
+                    Conflict(
+                        f"{_describe(item)} already has outcome {row.outcome}; to replace it "
+                        "with "
+                        f"{item.outcome}, send it as a correction with a reason",
+                        code="outcome_conflict",
+                    ),
+                )
+            )
+            continue
+        session.add(
+            OutcomeCorrection(
+                recommendation_pk=target.pk,
+                previous_outcome=row.outcome,
+                previous_observed_at=row.observed_at,
+                previous_source=row.source,
+                new_outcome=item.outcome,
+                reason=item.correction_reason,
+                corrected_by=actor,
+            )
+        )
+        row.outcome = item.outcome
+        row.observed_at = item.observed_at
+        row.source = item.source
+        row.corrections += 1
+        results.append(
+            OutcomeResult(target.recommendation_id, "corrected", item.outcome, row.corrections)
+        )
+    if failures:
+        # Nothing is flushed yet; the caller's session is discarded without a commit.
+        raise _batch_failure(failures, len(items))
+    session.flush()
+    return results
+
+
+def _batch_failure(failures: list[tuple[int, ServiceError]], total: int) -> ServiceError:
+    if total == 1:
+        return failures[0][1]
+    details = [
+        {"code": err.code, "message": err.message, "field": f"items[{i}]"} for i, err in failures
+    ]
+    statuses = {err.status_code for _, err in failures}
+    kind: type[ServiceError] = Unprocessable
+    if statuses == {404}:
+        kind = NotFound
+    elif statuses == {409}:
+        kind = Conflict
+    return kind(
+        f"{len(failures)} of {total} items were refused; nothing was written "
+        f"(first: items[{failures[0][0]}]: {failures[0][1].message})",
+        code="batch_refused",
+        field=f"items[{failures[0][0]}]",
+        details=details,
+    )
+
+
+@dataclass(frozen=True, slots=True)
+class FinalReport:
+    overridden: bool
+    decided_at: datetime
+    reason_code: str | None = None
+    decided_by: str | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class FinalResult:
+    recommendation_id: str
+    status: Status
+    overridden: bool
+    final_action: bool
+    reason_code: str | None
+    decided_at: datetime
+
+
+def record_final(session: Session, recommendation_id: str, report: FinalReport) -> FinalResult:
+    r = Recommendation.__table__.c
+    found = session.execute(
+        select(r.id, r.recommendation_id, *_cohort_columns()).where(
+            r.recommendation_id == recommendation_id
+        )
+    ).first()
+    if found is None:
+        raise NotFound(f"no recommendation {recommendation_id!r}", code="unknown_recommendation")
+    target = _target(found)
+    pk, action = target.pk, bool(target.cohort["action"])
+    final_action = action != report.overridden
+    row = session.get(FinalDecision, pk)
+    if row is not None:
+        same = (row.overridden, row.reason_code) == (report.overridden, report.reason_code)
+        if not same:
+            was = "overridden" if row.overridden else "followed"
+            raise Conflict(
+                f"recommendation {recommendation_id!r} already has a final decision ({was}"
+                f"{', reason ' + repr(row.reason_code) if row.reason_code else ''}); it is "
+                "recorded once",
+                code="final_decision_conflict",
+            )
+        return FinalResult(
+            recommendation_id,
+            "unchanged",
+            row.overridden,
+            row.final_action,
+            row.reason_code,
+            row.decided_at,
+        )
+    session.add(
+        FinalDecision(
+            **target.cohort,
+            recommendation_pk=pk,
+            overridden=report.overridden,
+            final_action=final_action,
+            reason_code=report.reason_code,
+            decided_at=report.decided_at,
+            decided_by=report.decided_by,
+        )
+    )
+    session.flush()
+    return FinalResult(
+        recommendation_id,
+        "recorded",
+        report.overridden,
+        final_action,
+        report.reason_code,
+        report.decided_at,
+    )

@@ -1,0 +1,39 @@
+"""The demo's closing stages: outcomes over HTTP, the month's audit, the saved report."""
+
+from __future__ import annotations
+
+import io
+from pathlib import Path
+
+import pandas as pd
+import pytest
+from sqlalchemy import create_engine, func, select
+from sqlalchemy.orm import Session
+
+from service.audit.reports import get_snapshot
+from service.demo.audit_stages import full_stages
+from service.demo.story import DemoContext, run_demo
+from service.store.audit_models import Outcome
+
+pytestmark = pytest.mark.slow
+
+
+def test_demo_ends_with_a_report(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    ctx = run_demo(DemoContext(output_dir=tmp_path / "demo-output", cases=80), full_stages())
+    out = capsys.readouterr().out
+    assert "Audit of " in out and "alert(s)" in out
+    (html,) = (tmp_path / "demo-output").glob("report-*.html")
+    (csv,) = (tmp_path / "demo-output").glob("report-*.csv")
+    assert str(html.resolve()) in out
+    assert "<svg" in html.read_text(encoding="utf-8")
+    df = pd.read_csv(io.StringIO(csv.read_text(encoding="utf-8")), keep_default_na=False)
+    month = df.month.iloc[0]
+    engine = create_engine(ctx.database_url)
+    with Session(engine) as session:
+        snapshot = get_snapshot(session, ctx.policy_name, month)
+        outcomes = session.scalar(select(func.count()).select_from(Outcome))
+    engine.dispose()
+    # Every recommendation of the demo was issued in the audited month.
+    assert snapshot["row_counts"]["recommendations"] == len(ctx.sent) == 80
+    assert snapshot["row_counts"]["outcomes"] == outcomes
+    assert 0 < outcomes < 80  # some patients are lost to follow-up
