@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 from pathlib import Path
 
 from alembic import command
@@ -10,7 +11,11 @@ from alembic.runtime.migration import MigrationContext
 from alembic.script import ScriptDirectory
 from sqlalchemy import Engine
 
-MIGRATIONS_DIR = Path(__file__).resolve().parents[2] / "migrations"
+# The repository's migrations/ folder; an installed (non-editable) copy, as in the Docker
+# image, points EVENHAND_MIGRATIONS_DIR at the folder it ships.
+MIGRATIONS_DIR = Path(
+    os.environ.get("EVENHAND_MIGRATIONS_DIR", Path(__file__).resolve().parents[2] / "migrations")
+)
 
 
 def alembic_config(database_url: str) -> Config:
