@@ -5,6 +5,7 @@ from __future__ import annotations
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 
+import anyio.to_thread
 from fastapi import FastAPI
 
 from service.api import health, log, outcomes, policies, recommendations, reports
@@ -17,6 +18,8 @@ from service.store.committer import GroupCommitter
 from service.store.db import create_db_engine, create_session_factory, is_sqlite
 from service.store.scoring import DocumentCache, ScoringContext
 
+WORKER_THREADS = 8
+
 
 def create_app(settings: Settings | None = None) -> FastAPI:
     settings = settings or Settings()
@@ -25,6 +28,9 @@ def create_app(settings: Settings | None = None) -> FastAPI:
 
     @asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
+        # Sync routes run in anyio's thread pool (40 threads by default). On 2-4 cores a
+        # few threads keep the CPU busy; more only fight over the GIL.
+        anyio.to_thread.current_default_thread_limiter().total_tokens = WORKER_THREADS
         engine = create_db_engine(settings)
         app.state.engine = engine
         app.state.session_factory = create_session_factory(engine)

@@ -10,11 +10,12 @@ after the response by default).
 from __future__ import annotations
 
 import time
-from collections.abc import Callable, Iterator
+from collections.abc import Awaitable, Callable, Iterator
 from dataclasses import dataclass
 from typing import Annotated
 
 from fastapi import Depends, Request
+from fastapi.concurrency import run_in_threadpool
 from sqlalchemy.orm import Session, sessionmaker
 
 from service.errors import Forbidden, Unauthorized
@@ -101,29 +102,38 @@ class KeyCache:
         self._entries[digest] = (caller, time.monotonic() + self.ttl)
 
 
-def _lookup(request: Request, session: Session, token: str) -> Caller | None:
+def _lookup_in_db(request: Request, digest: str, token: str) -> Caller | None:
+    factory: sessionmaker[Session] = request.app.state.session_factory
+    with factory() as session:
+        # A short read of its own, never sharing the route's (write) transaction.
+        begin_read_only(session)
+        found = keys.authenticate(session, token)
+        caller = None if found is None else Caller(found.id, found.name, found.role)
+        session.rollback()
+    cache: KeyCache | None = getattr(request.app.state, "key_cache", None)
+    if caller is not None and cache is not None:
+        cache.put(digest, caller)
+    return caller
+
+
+async def _lookup(request: Request, token: str) -> Caller | None:
+    # A cached key is checked on the event loop: no thread-pool hop and no session for the
+    # common case; only a cache miss reads the database, in a worker thread.
     cache: KeyCache | None = getattr(request.app.state, "key_cache", None)
     digest = keys.hash_token(token)
     if cache is not None:
         cached = cache.get(digest)
         if cached is not None:
             return cached
-    # A short read of its own: the route's writes start a fresh (write) transaction.
-    begin_read_only(session)
-    found = keys.authenticate(session, token)
-    caller = None if found is None else Caller(found.id, found.name, found.role)
-    session.rollback()
-    if caller is not None and cache is not None:
-        cache.put(digest, caller)
-    return caller
+    return await run_in_threadpool(_lookup_in_db, request, digest, token)
 
 
-def require_role(*roles: str) -> Callable[..., Caller]:
+def require_role(*roles: str) -> Callable[..., Awaitable[Caller]]:
     """A dependency that admits keys with one of ``roles`` and returns the caller."""
     allowed = frozenset(roles)
 
-    def check(request: Request, session: DbSession) -> Caller:
-        key = _lookup(request, session, _bearer_token(request))
+    async def check(request: Request) -> Caller:
+        key = await _lookup(request, _bearer_token(request))
         if key is None:
             raise Unauthorized("unknown or revoked API key")
         if key.role not in allowed:

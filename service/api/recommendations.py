@@ -12,6 +12,7 @@ import json
 from typing import Any
 
 from fastapi import APIRouter, Request, Response
+from sqlalchemy.orm import Session, sessionmaker
 
 from service.api.deps import DbSession, ScoringKey
 from service.api.errors import error_responses
@@ -52,9 +53,9 @@ def _context(request: Request) -> ScoringContext:
         200: {"model": RecommendationResponse, "description": "Replay of a stored request"},
     },
 )
-def recommend(
-    body: RecommendationRequest, request: Request, session: DbSession, _key: ScoringKey
-) -> Response:
+def recommend(body: RecommendationRequest, request: Request, _key: ScoringKey) -> Response:
+    # No session dependency: one thread-pool hop per request (the route), and on SQLite no
+    # session of its own at all, since the committer's session does the work.
     ctx = _context(request)
     committer: GroupCommitter | None = request.app.state.committer
     if committer is not None:
@@ -62,8 +63,10 @@ def recommend(
         # its last statement, so it needs no savepoint of its own.
         result, created = committer.run(lambda s: scoring.recommend(s, body, ctx), savepoint=False)
     else:
-        result, created = scoring.recommend(session, body, ctx)
-        session.commit()
+        factory: sessionmaker[Session] = request.app.state.session_factory
+        with factory() as session:
+            result, created = scoring.recommend(session, body, ctx)
+            session.commit()
     return _json(result, 201 if created else 200)
 
 

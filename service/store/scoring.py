@@ -131,12 +131,26 @@ _PLAN_QUERY = (
         PolicyVersion.status == VersionStatus.ACTIVE.value,
     )
 )
+# The same lookup as plain SQL for the sqlite3 driver: the hot path skips SQLAlchemy's
+# statement and result processing (the four columns are plain integers and text), which
+# halves its CPU on SQLite. On PostgreSQL the driver-level form measured slower than the
+# compiled statement (psycopg), so it keeps _PLAN_QUERY. Keep the two equal.
+_PLAN_SQL_SQLITE = (
+    "SELECT v.version, v.content_hash, s.version, s.content_hash FROM policy_versions AS v "
+    "LEFT OUTER JOIN policy_shadows AS p ON p.name = v.name "
+    "LEFT OUTER JOIN policy_versions AS s ON s.name = p.name AND s.version = p.version "
+    f"WHERE v.name = ? AND v.status = '{VersionStatus.ACTIVE.value}'"
+)
 _EXISTING_QUERY = select(*_STORED).where(Recommendation.request_id == bindparam("request_id"))
 
 
 def resolve_plan(session: Session, name: str, ctx: ScoringContext) -> Plan:
     """The active (and shadow) version of ``name``, read in the request's transaction."""
-    row = session.connection().execute(_PLAN_QUERY, {"name": name}).first()
+    conn = session.connection()
+    if conn.dialect.name == "sqlite":
+        row = conn.exec_driver_sql(_PLAN_SQL_SQLITE, (name,)).first()
+    else:
+        row = conn.execute(_PLAN_QUERY, {"name": name}).first()
     if row is None:
         exists = session.scalar(select(PolicyVersion.id).where(PolicyVersion.name == name).limit(1))
         if exists is None:
