@@ -62,3 +62,13 @@ class Unprocessable(ServiceError):
 class ServiceUnavailable(ServiceError):
     status_code = 503
     code = "unavailable"
+
+
+def check_batch_size(count: int, limit: int) -> None:
+    """Refuse a batch of more than ``limit`` items: one rule for every batch endpoint."""
+    if count > limit:
+        raise PayloadTooLarge(
+            f"a batch holds at most {limit} items (got {count}); split it",
+            code="batch_too_large",
+            field="items",
+        )

@@ -19,7 +19,7 @@ from service.api.outcome_schemas import (
     OutcomeRequest,
     OutcomeResponse,
 )
-from service.errors import PayloadTooLarge
+from service.errors import check_batch_size
 from service.store import feedback
 from service.store.feedback import FinalReport, OutcomeReport, OutcomeResult
 from service.store.records import format_timestamp
@@ -90,12 +90,7 @@ def post_outcome_batch(
     key: ScoringKey,
     settings: AppSettings,
 ) -> OutcomeBatchResponse:
-    if len(body.items) > settings.max_batch_items:
-        raise PayloadTooLarge(
-            f"a batch may hold at most {settings.max_batch_items} items, got {len(body.items)}",
-            code="batch_too_large",
-            field="items",
-        )
+    check_batch_size(len(body.items), settings.max_batch_items)
     results = _apply(session, [_report(i) for i in body.items], key.name)
     if all(r.status == "unchanged" for r in results):
         response.status_code = 200

@@ -26,7 +26,7 @@ from typing import Any, Protocol
 from sqlalchemy import bindparam, select
 from sqlalchemy.orm import Session, aliased
 
-from service.errors import Conflict, PayloadTooLarge, ServiceError, Unprocessable
+from service.errors import Conflict, ServiceError, Unprocessable, check_batch_size
 from service.policy.document import PolicyDocument, resolve_rule_key
 from service.policy.errors import PolicyError
 from service.policy.rules import check_score, evaluate, evaluate_batch, rule_for
@@ -333,12 +333,7 @@ def recommend_batch(
     session: Session, items: Sequence[ScoreInput], ctx: ScoringContext
 ) -> tuple[list[dict[str, Any]], int]:
     """(responses in input order, number newly written). All or nothing: any bad item -> 422."""
-    if len(items) > ctx.max_batch_items:
-        raise PayloadTooLarge(
-            f"a batch holds at most {ctx.max_batch_items} items (got {len(items)}); split it",
-            code="batch_too_large",
-            field="items",
-        )
+    check_batch_size(len(items), ctx.max_batch_items)
     errors: list[dict[str, Any]] = []
     seen: dict[str, int] = {}
     for i, req in enumerate(items):
