@@ -91,7 +91,7 @@ def main() -> int:
                 with factory() as s:
                     keys.authenticate(s, token)
                     s.commit()
-                    scoring.recommend(s, r, ctx)
+                    scoring.recommend(s.connection(), r, ctx)
                     s.commit()
 
         con = sqlite3.connect(path, isolation_level=None)

@@ -80,26 +80,26 @@ def run(url: str, n: int) -> None:
     factory = create_session_factory(engine)
     ctx = ScoringContext(settings.draw_key(), DocumentCache())
     with factory() as s:
-        recommend(s, request(), ctx)  # warm the document cache
+        recommend(s.connection(), request(), ctx)  # warm the document cache
         s.commit()
         reqs = [request() for _ in range(n)]
         t = time.perf_counter()
         for r in reqs:
-            recommend(s, r, ctx)
+            recommend(s.connection(), r, ctx)
         cpu = (time.perf_counter() - t) / n
         s.commit()
         reqs = [request() for _ in range(n)]
         t = time.perf_counter()
         for r in reqs:
-            recommend(s, r, ctx)
+            recommend(s.connection(), r, ctx)
             s.commit()
         each = (time.perf_counter() - t) / n
-    committer = GroupCommitter(engine)
+    committer = GroupCommitter(engine, ctx)
     committer.start()
     reqs = [request() for _ in range(4 * n)]
 
     def one(r: RecommendationRequest) -> None:
-        committer.run(lambda s: recommend(s, r, ctx), savepoint=False)
+        committer.recommend_blocking(r)
 
     t = time.perf_counter()
     with ThreadPoolExecutor(max_workers=16) as pool:
@@ -111,7 +111,7 @@ def run(url: str, n: int) -> None:
         items = [request() for _ in range(5000)]
         with factory() as s:
             t = time.perf_counter()
-            recommend_batch(s, items, ctx)
+            recommend_batch(s.connection(), items, ctx)
             s.commit()
             batches.append(time.perf_counter() - t)
     print(f"  recommend, no commit        {cpu * 1000:7.3f} ms/decision")

@@ -15,7 +15,7 @@ from service.api.limits import BodySizeLimit
 from service.audit.sealer import PeriodicSealer
 from service.settings import Settings
 from service.store.committer import GroupCommitter
-from service.store.db import create_db_engine, create_session_factory, is_sqlite
+from service.store.db import create_db_engine, create_session_factory
 from service.store.scoring import DocumentCache, ScoringContext
 
 WORKER_THREADS = 8
@@ -34,11 +34,10 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         engine = create_db_engine(settings)
         app.state.engine = engine
         app.state.session_factory = create_session_factory(engine)
-        # SQLite: single recommendations share transactions (one fsync per group).
-        committer = GroupCommitter(engine) if is_sqlite(settings.database_url) else None
+        # Single recommendations share transactions (one commit per group).
+        committer = GroupCommitter(engine, app.state.scoring)
         app.state.committer = committer
-        if committer is not None:
-            committer.start()
+        committer.start()
         # Background tasks (e.g. the periodic log sealer) start here and stop after `yield`.
         sealer = PeriodicSealer(app.state.session_factory, settings.seal_interval_seconds)
         sealer.start()
@@ -46,8 +45,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
             yield
         finally:
             await sealer.stop()
-            if committer is not None:
-                committer.stop()
+            committer.stop()
             engine.dispose()
 
     app = FastAPI(

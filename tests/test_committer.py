@@ -1,57 +1,125 @@
-"""The SQLite group committer: every job is committed or undone on its own, before it returns."""
+"""The group committer: single requests decided in shared transactions, each on its own.
+
+What a group must give is what the requests would get one at a time: the engine's decision
+for a new request, the stored answer for a repeat, a 409 for a reused request_id, a refusal
+for a request that cannot be decided (and nothing written for it), and a record that is
+committed before its answer returns.
+"""
 
 from __future__ import annotations
 
+import uuid
 from concurrent.futures import ThreadPoolExecutor
+from typing import Any
 
 import pytest
-from sqlalchemy import Engine, select, text
-from sqlalchemy.orm import Session
+from sqlalchemy import Engine, text
+from sqlalchemy.orm import Session, sessionmaker
 
-from service.errors import Conflict
-from service.store import keys
+from service.api.recommendation_schemas import RecommendationRequest
+from service.errors import Conflict, Unprocessable
+from service.policy.document import PolicyDocument
+from service.policy.errors import UnknownGroup
+from service.policy.rules import evaluate
+from service.store import keys, lifecycle
 from service.store.committer import CommitterStopped, GroupCommitter
-from service.store.models import ApiKey
+from service.store.scoring import DocumentCache, ScoringContext, recommend_group
+from tests.helpers import TEST_SECRET, count_rows, make_policy, make_request
+
+SECRET = TEST_SECRET.encode()
 
 
-class Boom(Exception):
-    pass
+@pytest.fixture
+def ctx(session_factory: sessionmaker[Session]) -> ScoringContext:
+    with session_factory() as s:
+        keys.create_key(s, "author", "admin")
+        keys.create_key(s, "reviewer", "admin")
+        lifecycle.submit(s, "readmission", make_policy(), "author")
+        lifecycle.approve(s, "readmission", 1, "reviewer")
+        lifecycle.activate(s, "readmission", 1, "author")
+        s.commit()
+    return ScoringContext(SECRET, DocumentCache())
 
 
-def test_jobs_commit_or_fail_alone(engine: Engine) -> None:
-    committer = GroupCommitter(engine)
+def _req(**overrides: Any) -> RecommendationRequest:
+    return RecommendationRequest.model_validate(make_request(**overrides))
+
+
+def test_a_group_answers_as_one_request_at_a_time(engine: Engine, ctx: ScoringContext) -> None:
+    first = _req(score=0.35, attributes={"region": "south"})
+    repeat = first.model_copy()
+    reused = first.model_copy(update={"score": 0.9})
+    unknown_group = _req(attributes={"region": "east"})
+    unknown_policy = _req(policy="no-such-policy")
+    plain = _req(score=0.1)
+    group = [first, unknown_group, repeat, unknown_policy, reused, plain]
+
+    with engine.connect() as conn, conn.begin():
+        results = recommend_group(conn, group, ctx)
+
+    doc = PolicyDocument.model_validate(make_policy())
+    answer, created = results[0]  # type: ignore[misc]
+    expected = evaluate(doc, 1, 0.35, {"region": "south"}, first.case_id, SECRET)
+    assert created is True
+    assert (answer["group"], answer["probability"], answer["draw"], answer["action"]) == (
+        expected.group,
+        expected.probability,
+        expected.draw,
+        expected.action,
+    )
+    assert isinstance(results[1], UnknownGroup)
+    assert results[2] == (answer, False)  # the repeat gets the first one's stored answer
+    assert isinstance(results[3], Unprocessable) and results[3].code == "unknown_policy"
+    assert isinstance(results[4], Conflict) and results[4].code == "idempotency_conflict"
+    assert results[5][1] is True  # type: ignore[index]
+    with engine.connect() as conn:
+        stored = conn.execute(text("SELECT request_id FROM recommendations")).scalars().all()
+    assert sorted(stored) == sorted([first.request_id, plain.request_id])
+
+
+def test_every_answer_is_committed_before_it_returns(
+    engine: Engine, ctx: ScoringContext, session_factory: sessionmaker[Session]
+) -> None:
+    committer = GroupCommitter(engine, ctx)
     committer.start()
+    requests = [_req(score=i / 100) for i in range(100)]
+    requests[7] = _req(attributes={"region": "east"})  # refused, alone
 
-    def job(i: int) -> str:
-        def write(session: Session) -> str:
-            keys.create_key(session, f"key-{i}", "scoring")
-            if i % 5 == 0:
-                raise Boom(i)  # written, then undone with this job's savepoint only
-            return f"key-{i}"
-
-        name = committer.run(write)
-        # Returned means committed: another connection sees it.
+    def one(req: RecommendationRequest) -> str:
+        try:
+            answer, created = committer.recommend_blocking(req)
+        except UnknownGroup:
+            return "refused"
+        assert created
+        # Returned means committed: another connection sees the record.
         with engine.connect() as conn:
-            found = conn.execute(text("SELECT name FROM api_keys WHERE name = :n"), {"n": name})
-            assert found.scalar_one() == name
-        return name
+            found = conn.execute(
+                text("SELECT recommendation_id FROM recommendations WHERE request_id = :r"),
+                {"r": req.request_id},
+            ).scalar_one()
+        assert found == answer["recommendation_id"]
+        return "ok"
 
-    outcomes: dict[int, str] = {}
     with ThreadPoolExecutor(max_workers=16) as pool:
-        futures = {i: pool.submit(job, i) for i in range(60)}
-        for i, fut in futures.items():
-            try:
-                outcomes[i] = fut.result()
-            except Boom:
-                outcomes[i] = "boom"
-    # A duplicate name fails with the service's own error, the others are unaffected.
-    with pytest.raises(Conflict):
-        committer.run(lambda s: keys.create_key(s, "key-1", "audit"))
+        outcomes = list(pool.map(one, requests))
     committer.stop()
     with pytest.raises(CommitterStopped):
-        committer.run(lambda s: None)
+        committer.recommend_blocking(_req())
 
-    assert {i for i, o in outcomes.items() if o == "boom"} == set(range(0, 60, 5))
-    with Session(engine) as session:
-        names = set(session.scalars(select(ApiKey.name)))
-    assert names == {f"key-{i}" for i in range(60) if i % 5}
+    assert outcomes.count("refused") == 1 and outcomes[7] == "refused"
+    assert count_rows(session_factory, "recommendations") == 99
+
+
+def test_concurrent_repeats_are_written_once(
+    engine: Engine, ctx: ScoringContext, session_factory: sessionmaker[Session]
+) -> None:
+    committer = GroupCommitter(engine, ctx)
+    committer.start()
+    body = make_request(request_id=f"retry-{uuid.uuid4().hex}")
+    tries = [RecommendationRequest.model_validate(body) for _ in range(24)]
+    with ThreadPoolExecutor(max_workers=12) as pool:
+        answers = list(pool.map(committer.recommend_blocking, tries))
+    committer.stop()
+    assert [created for _, created in answers].count(True) == 1
+    assert len({a["recommendation_id"] for a, _ in answers}) == 1
+    assert count_rows(session_factory, "recommendations") == 1

@@ -1,9 +1,9 @@
 """Scoring (scoring role): one recommendation or a batch, each on the record before the reply.
 
-The route commits explicitly before it returns: the decision and its log record are one
-transaction, durable before a byte of the response is sent. On SQLite single
-recommendations go through the group committer (``service.store.committer``), which returns
-only after the shared transaction has committed.
+Both routes commit before they answer: the decision and its log record are durable before a
+byte of the response is sent. Single recommendations go through the group committer
+(``service.store.committer``), which answers only after the shared transaction has committed;
+a batch is one transaction of its own.
 """
 
 from __future__ import annotations
@@ -12,7 +12,6 @@ import json
 from typing import Any
 
 from fastapi import APIRouter, Request, Response
-from sqlalchemy.orm import Session, sessionmaker
 
 from service.api.deps import DbSession, ScoringKey
 from service.api.errors import error_responses
@@ -53,20 +52,11 @@ def _context(request: Request) -> ScoringContext:
         200: {"model": RecommendationResponse, "description": "Replay of a stored request"},
     },
 )
-def recommend(body: RecommendationRequest, request: Request, _key: ScoringKey) -> Response:
-    # No session dependency: one thread-pool hop per request (the route), and on SQLite no
-    # session of its own at all, since the committer's session does the work.
-    ctx = _context(request)
-    committer: GroupCommitter | None = request.app.state.committer
-    if committer is not None:
-        # Returns once the group holding this write has committed. The job's one write is
-        # its last statement, so it needs no savepoint of its own.
-        result, created = committer.run(lambda s: scoring.recommend(s, body, ctx), savepoint=False)
-    else:
-        factory: sessionmaker[Session] = request.app.state.session_factory
-        with factory() as session:
-            result, created = scoring.recommend(session, body, ctx)
-            session.commit()
+async def recommend(body: RecommendationRequest, request: Request, _key: ScoringKey) -> Response:
+    # A coroutine that only waits: the committer thread decides and records the request in
+    # a group with whatever else is queued, and answers once that group has committed.
+    committer: GroupCommitter = request.app.state.committer
+    result, created = await committer.recommend(body)
     return _json(result, 201 if created else 200)
 
 
@@ -84,6 +74,6 @@ def recommend_batch(
     body: BatchRequest, request: Request, session: DbSession, _key: ScoringKey
 ) -> Response:
     ctx = _context(request)
-    items, created = scoring.recommend_batch(session, body.items, ctx)
+    items, created = scoring.recommend_batch(session.connection(), body.items, ctx)
     session.commit()
     return _json({"items": items, "created": created}, 201 if created else 200)

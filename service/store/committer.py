@@ -1,52 +1,77 @@
-"""Group commit for SQLite: many requests' writes share one transaction and one fsync.
+"""Group commit for single recommendations: one thread decides and records them in groups.
 
-With ``synchronous=FULL`` every SQLite commit waits for the disk (about 2 ms here), and
-SQLite has one writer at a time, so one transaction per request caps throughput at a few
-hundred requests per second however many threads wait. The committer thread takes every job
-queued meanwhile, runs each inside its own SAVEPOINT (a failing job is undone alone and gets
-its exception back), commits once, and only then wakes the waiting requests: each request's
-record is durable before it answers, as before, and nothing is chained or ordered here.
+A single recommendation is a few tens of microseconds of work (a policy lookup, an
+evaluation, a record hash, one row) wrapped in a transaction that costs far more: statements,
+a commit, on SQLite an fsync, on PostgreSQL round trips. The committer thread takes every
+request queued meanwhile, decides the whole group in one transaction
+(:func:`service.store.scoring.recommend_group`: one existing-request lookup, one active-version
+lookup per policy, one multi-row insert), commits once, and only then settles the waiting
+requests: each record is durable before its answer is sent, as before.
 
-PostgreSQL does not need this (its transactions run concurrently and it groups commits
-itself), so the app only starts a committer on SQLite.
+The requests' coroutines only wait (no thread-pool hop per request), and the waiting ends with
+one wake-up of the event loop per group. Nothing is chained or ordered here: the seal step
+orders records later. Each server process has one committer; several processes (or replicas)
+each commit their own groups.
 """
 
 from __future__ import annotations
 
+import asyncio
+import contextlib
 import logging
 import queue
 import threading
-from collections.abc import Callable
-from typing import Any, Generic, TypeVar
+from collections.abc import Sequence
+from concurrent.futures import Future
+from typing import Any
 
-from sqlalchemy import Engine
-from sqlalchemy.orm import Session
+from sqlalchemy import Connection, Engine
+from sqlalchemy.exc import DBAPIError, IntegrityError
 
-from service.store.db import create_session_factory
+from service.errors import ServiceError, ServiceUnavailable
+from service.policy.errors import PolicyError
+from service.store.scoring import (
+    GroupResult,
+    ScoreInput,
+    ScoringContext,
+    recommend,
+    recommend_group,
+)
 
 log = logging.getLogger("evenhand.committer")
-T = TypeVar("T")
+
+Answer = tuple[dict[str, Any], bool]
+"""(response, created): created is False for a replay of a stored request."""
 
 
-class _Job(Generic[T]):
-    __slots__ = ("done", "error", "fn", "result", "savepoint")
-
-    def __init__(self, fn: Callable[[Session], T], savepoint: bool) -> None:
-        self.fn = fn
-        self.savepoint = savepoint
-        self.done = threading.Event()
-        self.result: T | None = None
-        self.error: BaseException | None = None
+class CommitterStopped(ServiceUnavailable):
+    def __init__(self) -> None:
+        super().__init__(
+            "the server is shutting down; retry the request (it is idempotent)",
+            code="shutting_down",
+        )
 
 
-class CommitterStopped(RuntimeError):
-    pass
+class _Job:
+    __slots__ = ("future", "loop", "request")
+
+    def __init__(
+        self,
+        request: ScoreInput,
+        future: Future[Answer] | asyncio.Future[Answer],
+        loop: asyncio.AbstractEventLoop | None,
+    ) -> None:
+        self.request = request
+        self.future = future
+        self.loop = loop  # set for an asyncio future: settled on its own loop
 
 
 class GroupCommitter:
-    def __init__(self, engine: Engine, max_group: int = 512) -> None:
-        self._factory = create_session_factory(engine)
-        self._queue: queue.SimpleQueue[_Job[Any] | None] = queue.SimpleQueue()
+    def __init__(self, engine: Engine, ctx: ScoringContext, max_group: int = 256) -> None:
+        self._engine = engine
+        self._conn: Connection | None = None
+        self._ctx = ctx
+        self._queue: queue.SimpleQueue[_Job | None] = queue.SimpleQueue()
         self._max_group = max_group
         self._thread: threading.Thread | None = None
         self._running = False
@@ -57,6 +82,7 @@ class GroupCommitter:
         self._thread.start()
 
     def stop(self) -> None:
+        """Finish the groups already queued, then refuse the rest."""
         if self._thread is None:
             return
         self._running = False
@@ -64,23 +90,26 @@ class GroupCommitter:
         self._thread.join(timeout=30)
         self._thread = None
 
-    def run(self, fn: Callable[[Session], T], savepoint: bool = True) -> T:
-        """Run ``fn(session)`` in the next group; return after that group has committed.
+    async def recommend(self, request: ScoreInput) -> Answer:
+        """Decide and record ``request``; return once its group has committed."""
+        self._check_running()
+        loop = asyncio.get_running_loop()
+        future: asyncio.Future[Answer] = loop.create_future()
+        self._queue.put(_Job(request, future, loop))
+        return await future
 
-        ``savepoint=False`` saves two statements for a job whose only write is its last
-        statement: when it fails there is nothing of it to undo (a failed SQLite statement
-        undoes itself and leaves the transaction open).
-        """
+    def recommend_blocking(self, request: ScoreInput) -> Answer:
+        """The same from a plain thread (CLI, benchmarks)."""
+        self._check_running()
+        future: Future[Answer] = Future()
+        self._queue.put(_Job(request, future, None))
+        return future.result()
+
+    def _check_running(self) -> None:
         if not self._running:
-            raise CommitterStopped("the server is shutting down")
-        job: _Job[T] = _Job(fn, savepoint)
-        self._queue.put(job)
-        job.done.wait()
-        if job.error is not None:
-            raise job.error
-        return job.result  # type: ignore[return-value]
+            raise CommitterStopped()
 
-    def _next_group(self) -> list[_Job[Any]] | None:
+    def _next_group(self) -> list[_Job] | None:
         first = self._queue.get()
         if first is None:
             return None
@@ -101,42 +130,93 @@ class GroupCommitter:
             jobs = self._next_group()
             if jobs is None:
                 break
-            self._run_group(jobs)
+            results: Sequence[GroupResult | BaseException]
+            try:
+                results = self._decide(jobs)
+            except Exception as exc:  # the commit itself failed: nobody's write is durable
+                log.error("group commit failed: %s", type(exc).__name__)
+                results = [exc] * len(jobs)
+            _settle(jobs, results)
+        self._close_connection()
         # Refuse whatever arrived after the stop.
+        refused: list[_Job] = []
         while True:
             try:
                 job = self._queue.get_nowait()
             except queue.Empty:
-                return
+                break
             if job is not None:
-                job.error = CommitterStopped("the server is shutting down")
-                job.done.set()
+                refused.append(job)
+        _settle(refused, [CommitterStopped()] * len(refused))
 
-    def _run_group(self, jobs: list[_Job[Any]]) -> None:
-        with self._factory() as session:
-            try:
-                for job in jobs:
-                    if not job.savepoint:
-                        try:
-                            job.result = job.fn(session)
-                        except Exception as exc:
-                            job.error = exc
-                        continue
-                    savepoint = session.begin_nested()
-                    try:
-                        job.result = job.fn(session)
-                        savepoint.commit()
-                    except Exception as exc:
-                        savepoint.rollback()
-                        job.error = exc
-                session.commit()
-            except Exception as exc:  # the commit itself failed: nobody's write is durable
-                log.error("group commit failed: %s", type(exc).__name__)
-                session.rollback()
-                for job in jobs:
-                    if job.error is None:
-                        job.error = exc
-                        job.result = None
-            finally:
-                for job in jobs:
-                    job.done.set()
+    def _decide(self, jobs: list[_Job]) -> Sequence[GroupResult]:
+        requests = [job.request for job in jobs]
+        try:
+            return self._decide_group(requests)
+        except DBAPIError as exc:
+            if not exc.connection_invalidated:
+                raise
+            # The connection was lost (a database restart): nothing of this group was
+            # committed, or it was and the retry finds the request_ids stored. Try once more
+            # on a new connection.
+            self._close_connection()
+            return self._decide_group(requests)
+
+    def _decide_group(self, requests: list[ScoreInput]) -> Sequence[GroupResult]:
+        conn = self._connection()
+        try:
+            with conn.begin():
+                return recommend_group(conn, requests, self._ctx)
+        except IntegrityError:
+            # Another process stored one of these request_ids after our lookup (only
+            # possible with several writers on PostgreSQL): decide each on its own.
+            pass
+        except BaseException:
+            self._close_connection()
+            raise
+        return [self._decide_alone(conn, request) for request in requests]
+
+    def _decide_alone(self, conn: Connection, request: ScoreInput) -> GroupResult:
+        try:
+            with conn.begin():
+                return recommend(conn, request, self._ctx)
+        except (ServiceError, PolicyError) as exc:
+            return exc
+
+    def _connection(self) -> Connection:
+        # One connection for the committer's life: no pool checkout (and on PostgreSQL no
+        # pre-ping round trip) per group. Replaced after any failure.
+        if self._conn is None:
+            self._conn = self._engine.connect()
+        return self._conn
+
+    def _close_connection(self) -> None:
+        if self._conn is not None:
+            with contextlib.suppress(Exception):  # already broken: the pool discards it
+                self._conn.close()
+            self._conn = None
+
+
+def _settle(jobs: list[_Job], results: Sequence[GroupResult | BaseException]) -> None:
+    by_loop: dict[asyncio.AbstractEventLoop, list[tuple[_Job, Any]]] = {}
+    for job, result in zip(jobs, results, strict=True):
+        if job.loop is None:
+            _set(job.future, result)
+        else:
+            by_loop.setdefault(job.loop, []).append((job, result))
+    for loop, pairs in by_loop.items():
+        with contextlib.suppress(RuntimeError):  # a closed loop: nobody waits any more
+            loop.call_soon_threadsafe(_settle_on_loop, pairs)  # one wake-up per group
+
+
+def _settle_on_loop(pairs: list[tuple[_Job, Any]]) -> None:
+    for job, result in pairs:
+        if not job.future.done():  # a cancelled request (client gone) keeps its record
+            _set(job.future, result)
+
+
+def _set(future: Future[Answer] | asyncio.Future[Answer], result: Any) -> None:
+    if isinstance(result, BaseException):
+        future.set_exception(result)
+    else:
+        future.set_result(result)

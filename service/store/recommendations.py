@@ -16,8 +16,7 @@ from datetime import UTC, datetime
 from operator import itemgetter
 from typing import Any
 
-from sqlalchemy import Dialect, Table
-from sqlalchemy.orm import Session
+from sqlalchemy import Connection, Dialect, Table
 
 from service.store.models import Recommendation
 
@@ -52,16 +51,14 @@ def _insert_sql(dialect: Dialect, skip_existing: bool = False) -> str:
     return sql
 
 
-def insert_records(session: Session, rows: Sequence[dict[str, Any]]) -> None:
+def insert_records(conn: Connection, rows: Sequence[dict[str, Any]]) -> None:
     """Insert many records (request_ids already checked: a duplicate is an error)."""
     if rows:
-        conn = session.connection()
         conn.exec_driver_sql(_insert_sql(conn.dialect), _driver_params(conn.dialect, rows))
 
 
-def insert_new_record(session: Session, row: dict[str, Any]) -> bool:
+def insert_new_record(conn: Connection, row: dict[str, Any]) -> bool:
     """Insert one record unless its request_id is stored; False when it was."""
-    conn = session.connection()
     result = conn.exec_driver_sql(
         _insert_sql(conn.dialect, skip_existing=True), _driver_params(conn.dialect, [row])[0]
     )
