@@ -40,8 +40,8 @@ from service.store.scoring import (
 
 log = logging.getLogger("evenhand.committer")
 
-Answer = tuple[dict[str, Any], bool]
-"""(response, created): created is False for a replay of a stored request."""
+Answer = tuple[str, bool]
+"""(response JSON, created): created is False for a replay of a stored request."""
 
 
 class CommitterStopped(ServiceUnavailable):

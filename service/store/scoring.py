@@ -15,8 +15,8 @@ stored version never changes.
 from __future__ import annotations
 
 import hashlib
+import json
 import threading
-import uuid
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from datetime import datetime
@@ -32,7 +32,14 @@ from service.policy.errors import PolicyError
 from service.policy.rules import check_score, evaluate, evaluate_batch, rule_for
 from service.store.models import PolicyShadow, PolicyVersion, Recommendation, VersionStatus, utcnow
 from service.store.recommendations import ATTRIBUTES_JSON, insert_new_record, insert_records
-from service.store.records import encode_attributes, format_timestamp, payload_leaf_hash
+from service.store.records import (
+    RESPONSE_FIELDS,
+    decision_texts,
+    encode_attributes,
+    format_timestamp,
+    leaf_hash,
+    new_record_ids,
+)
 
 AttributeValue = str | int | float | bool
 
@@ -49,21 +56,6 @@ class ScoreInput(Protocol):
     @property
     def attributes(self) -> Mapping[str, AttributeValue]: ...
 
-
-RESPONSE_FIELDS = (
-    "recommendation_id",
-    "request_id",
-    "case_id",
-    "policy",
-    "version",
-    "group",
-    "rule",
-    "probability",
-    "draw",
-    "action",
-    "action_label",
-    "issued_at",
-)
 
 _STORED = [getattr(Recommendation, f) for f in RESPONSE_FIELDS if f != "issued_at"] + [
     Recommendation.issued_at,
@@ -189,16 +181,22 @@ def fingerprint(req: ScoreInput) -> str:
     return hashlib.sha256(repr(body).encode("utf-8")).hexdigest()
 
 
-def response_of(values: Any) -> dict[str, Any]:
-    """The API response for a record (a row or a mapping of its values)."""
+def response_of(values: Any) -> str:
+    """The API response (JSON text) for a stored record: a row or a mapping of its values.
+
+    The same bytes as the answer first given for it (``decision_texts``), so a replay is
+    byte-for-byte the original."""
     get = values.__getitem__ if isinstance(values, Mapping) else values._mapping.__getitem__
     out = {f: get(f) for f in RESPONSE_FIELDS}
     out["issued_at"] = format_timestamp(out["issued_at"])
     out["action"] = bool(out["action"])
-    return out
+    return _RESPONSE_JSON.encode(out)
 
 
-def _replay(row: Any, req: ScoreInput, fp: str) -> dict[str, Any]:
+_RESPONSE_JSON = json.JSONEncoder(separators=(",", ":"), ensure_ascii=False, allow_nan=False)
+
+
+def _replay(row: Any, req: ScoreInput, fp: str) -> str:
     if row.request_fingerprint != fp:
         raise Conflict(
             f"request_id {req.request_id!r} was already used with a different body; use a new "
@@ -209,7 +207,7 @@ def _replay(row: Any, req: ScoreInput, fp: str) -> dict[str, Any]:
     return response_of(row)
 
 
-def find_existing(conn: Connection, req: ScoreInput) -> dict[str, Any] | None:
+def find_existing(conn: Connection, req: ScoreInput) -> str | None:
     """The stored answer for this request_id (None if new); 409 if the body differs."""
     row = conn.execute(_EXISTING_QUERY, {"request_id": req.request_id}).first()
     return None if row is None else _replay(row, req, fingerprint(req))
@@ -245,8 +243,9 @@ def _row(
     decision: tuple[str, str, float, float, bool],
     shadow: tuple[float | None, bool | None],
     issued_at: tuple[datetime, str],
-) -> tuple[dict[str, Any], dict[str, Any]]:
-    """(row to insert, response) for one decision, both from the same values.
+    record_id: str,
+) -> tuple[dict[str, Any], str]:
+    """(row to insert, response JSON) for one decision, both from the same values.
 
     The payload is built directly in ``record_payload`` form, so the leaf hash needs no
     second pass over the row (verify recomputes it from the stored row the general way).
@@ -255,7 +254,7 @@ def _row(
     attributes = _stored_attributes(plan, req.attributes)
     attributes_json = _attributes_json(tuple((k, type(v), v) for k, v in attributes.items()))
     payload = {
-        "recommendation_id": str(uuid.uuid4()),
+        "recommendation_id": record_id,
         "request_id": req.request_id,
         "case_id": req.case_id,
         "policy": plan.name,
@@ -273,15 +272,12 @@ def _row(
         "shadow_probability": shadow[0],
         "shadow_action": shadow[1],
     }
-    response = {f: payload[f] for f in RESPONSE_FIELDS}
-    row = {
-        **payload,
-        "issued_at": issued_at[0],
-        "request_fingerprint": fp,
-        "record_hash": payload_leaf_hash(payload, attributes_json),
-        ATTRIBUTES_JSON: attributes_json,
-    }
-    return row, response
+    canonical, response = decision_texts(payload, attributes_json)
+    payload["issued_at"] = issued_at[0]
+    payload["request_fingerprint"] = fp
+    payload["record_hash"] = leaf_hash(canonical)
+    payload[ATTRIBUTES_JSON] = attributes_json
+    return payload, response
 
 
 def _now() -> tuple[datetime, str]:
@@ -289,10 +285,8 @@ def _now() -> tuple[datetime, str]:
     return now, format_timestamp(now)
 
 
-def recommend(
-    conn: Connection, req: ScoreInput, ctx: ScoringContext
-) -> tuple[dict[str, Any], bool]:
-    """(response, created). A replay of a stored request returns it with created=False.
+def recommend(conn: Connection, req: ScoreInput, ctx: ScoringContext) -> tuple[str, bool]:
+    """(response JSON, created). A replay of a stored request returns it with created=False.
 
     New requests, the common case, cost two statements: the plan lookup and an insert that
     skips a request_id already stored (``ON CONFLICT DO NOTHING``, which also settles two
@@ -312,9 +306,9 @@ def recommend(
             return existing, False
         raise
     decision = (d.group, d.rule, float(d.probability), float(d.draw), bool(d.action))
-    row, response = _row(
-        plan, req, fingerprint(req), decision, _shadow_one(plan, req, ctx.secret), _now()
-    )
+    shadow = _shadow_one(plan, req, ctx.secret)
+    (record_id,) = new_record_ids(1)
+    row, response = _row(plan, req, fingerprint(req), decision, shadow, _now(), record_id)
     if insert_new_record(conn, row):
         return response, True
     existing = find_existing(conn, req)
@@ -323,8 +317,8 @@ def recommend(
     return existing, False
 
 
-GroupResult = tuple[dict[str, Any], bool] | ServiceError | PolicyError
-"""One request's outcome in a group: (response, created), or the error it is refused with."""
+GroupResult = tuple[str, bool] | ServiceError | PolicyError
+"""One request's outcome in a group: (response JSON, created), or the error it is refused with."""
 
 
 def recommend_group(
@@ -372,6 +366,7 @@ def _decide_round(
         except Conflict as exc:
             results[i] = exc
     issued_at = _now()
+    record_ids = iter(new_record_ids(len(members)))
     rows: list[dict[str, Any]] = []
     for i in members:
         if results[i] is not None:
@@ -400,8 +395,9 @@ def _decide_round(
             results[i] = exc
             continue
         decision = (d.group, d.rule, float(d.probability), float(d.draw), bool(d.action))
+        shadow = _shadow_one(plan, req, ctx.secret)
         row, response = _row(
-            plan, req, fingerprints[i], decision, _shadow_one(plan, req, ctx.secret), issued_at
+            plan, req, fingerprints[i], decision, shadow, issued_at, next(record_ids)
         )
         rows.append(row)
         results[i] = (response, True)
@@ -418,8 +414,10 @@ def _item_error(i: int, exc: ServiceError | PolicyError) -> dict[str, Any]:
 
 def recommend_batch(
     conn: Connection, items: Sequence[ScoreInput], ctx: ScoringContext
-) -> tuple[list[dict[str, Any]], int]:
-    """(responses in input order, number newly written). All or nothing: any bad item -> 422."""
+) -> tuple[list[str], int]:
+    """(response JSON of each item in input order, number newly written).
+
+    All or nothing: any bad item -> 422 and nothing written."""
     check_batch_size(len(items), ctx.max_batch_items)
     errors: list[dict[str, Any]] = []
     seen: dict[str, int] = {}
@@ -436,7 +434,7 @@ def recommend_batch(
         else:
             seen[req.request_id] = i
     fingerprints = [fingerprint(r) for r in items]
-    responses: list[dict[str, Any] | None] = [None] * len(items)
+    responses: list[str | None] = [None] * len(items)
     ids = list(seen)
     for start in range(0, len(ids), 1000):
         chunk = ids[start : start + 1000]
@@ -513,7 +511,7 @@ def _evaluate_policy_rows(
     fingerprints: list[str],
     issued_at: tuple[datetime, str],
     ctx: ScoringContext,
-) -> tuple[list[dict[str, Any]], list[dict[str, Any]]]:
+) -> tuple[list[dict[str, Any]], list[str]]:
     reqs = [items[i] for i in idx]
     scores = [float(r.score) for r in reqs]
     case_ids = [r.case_id for r in reqs]
@@ -551,13 +549,13 @@ def _evaluate_policy_rows(
     probs = main.probability.tolist()
     draws = main.draw.tolist()
     acts = main.action.tolist()
+    record_ids = new_record_ids(len(reqs))
     rows: list[dict[str, Any]] = []
-    outs: list[dict[str, Any]] = []
+    outs: list[str] = []
     for j, r in enumerate(reqs):
         decision = (main.group[j], main.rule[j], probs[j], draws[j], bool(acts[j]))
-        row, out = _row(
-            plan, r, fingerprints[idx[j]], decision, (shadow_p[j], shadow_a[j]), issued_at
-        )
+        shadow = (shadow_p[j], shadow_a[j])
+        row, out = _row(plan, r, fingerprints[idx[j]], decision, shadow, issued_at, record_ids[j])
         rows.append(row)
         outs.append(out)
     return rows, outs
