@@ -2,7 +2,8 @@
 
 For each database (SQLite file, and PostgreSQL on 127.0.0.1 when reachable) the script
 1. creates a fresh database, migrates it, creates keys and activates the Fernhollow demo policy;
-2. serves the bare endpoint (benchmarks/bare_app.py) with uvicorn, then Evenhand with
+2. serves the bare endpoint (benchmarks/bare_app.py; an async route, the reference, then a
+   sync one for comparison) with uvicorn, then Evenhand with
    ``evenhand serve``, with the SAME uvicorn settings (host 127.0.0.1, workers, no access log,
    log level) and drives both with the SAME closed-loop
    load generator (benchmarks/loadgen.py), the same request bodies and concurrency;
@@ -36,6 +37,7 @@ from sqlalchemy.engine import make_url
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
+from bare_app import ROUTE_KIND_VARIABLE
 from loadgen import LoadResult, run_load
 
 from service.demo.api_client import EvenhandClient
@@ -216,20 +218,23 @@ def run_backend(backend: str, args: argparse.Namespace, workdir: Path) -> dict[s
             file=sys.stderr,
         )
 
-        # The bare endpoint first, then the service: same command line, same load.
-        port = free_port()
-        bare = ServerProcess(
-            env,
-            workdir / f"bare-{backend}.log",
-            port=port,
-            command=bare_command(port, args.workers),
-            ready_path="/openapi.json",
-        )
-        with bare:
-            run_load(bare.port, "/v1/recommendations", None, bodies(200, "w", name))  # warm-up
-            bare_result, bare_cpu = measured(
-                bare, bare.port, None, bodies(args.requests, "bare", name), args.concurrency
+        # The bare endpoints first (async: the reference; sync: a thread hop per request),
+        # then the service: same command line, same load.
+        bare_results: dict[str, tuple[LoadResult, float | None]] = {}
+        for kind in ("async", "sync"):
+            port = free_port()
+            bare = ServerProcess(
+                {**env, ROUTE_KIND_VARIABLE: kind},
+                workdir / f"bare-{kind}-{backend}.log",
+                port=port,
+                command=bare_command(port, args.workers),
+                ready_path="/openapi.json",
             )
+            with bare:
+                run_load(bare.port, "/v1/recommendations", None, bodies(200, "w", name))
+                bare_results[kind] = measured(
+                    bare, bare.port, None, bodies(args.requests, "bare", name), args.concurrency
+                )
         service = ServerProcess(env, workdir / f"evenhand-{backend}.log", workers=args.workers)
         with service:
             with EvenhandClient(service.base_url) as api:
@@ -242,10 +247,18 @@ def run_backend(backend: str, args: argparse.Namespace, workdir: Path) -> dict[s
                 bodies(args.requests, "svc", name),
                 args.concurrency,
             )
-            rows = [describe("bare FastAPI endpoint", bare_result, bare_cpu)]
-            rows.append(describe("POST /v1/recommendations", service_result, service_cpu))
-            ratio = service_result.throughput / bare_result.throughput
-            print(f"  ratio service / bare: {ratio:.2f} (target >= 0.6)", file=sys.stderr)
+            rows = [
+                describe("bare FastAPI endpoint (async)", *bare_results["async"]),
+                describe("bare FastAPI endpoint (sync)", *bare_results["sync"]),
+                describe("POST /v1/recommendations", service_result, service_cpu),
+            ]
+            ratio = service_result.throughput / bare_results["async"][0].throughput
+            ratio_sync = service_result.throughput / bare_results["sync"][0].throughput
+            print(
+                f"  ratio service / bare async route: {ratio:.2f} (target >= 0.6); "
+                f"/ bare sync route: {ratio_sync:.2f}",
+                file=sys.stderr,
+            )
 
             batch_bodies = [bodies(args.batch_size, f"b{k}", name) for k in range(args.batches + 1)]
             with httpx.Client(base_url=service.base_url, timeout=120) as client:
@@ -288,6 +301,7 @@ def run_backend(backend: str, args: argparse.Namespace, workdir: Path) -> dict[s
             "sqlite_synchronous": args.sqlite_synchronous if backend == "sqlite" else None,
             "single": rows,
             "ratio": round(ratio, 2),
+            "ratio_to_sync_bare": round(ratio_sync, 2),
             "batch": {
                 "batch_size": args.batch_size,
                 "batches": args.batches,

@@ -155,12 +155,6 @@ RESPONSE_FIELDS: tuple[str, ...] = (
 _RESPONSE_TEMPLATE = "{" + ",".join(f'"{k}":%s' for k in RESPONSE_FIELDS) + "}"
 
 
-def _finite(value: float) -> str:
-    if not math.isfinite(value):
-        raise ValueError("NaN or infinity in a record")
-    return float.__repr__(value)
-
-
 def decision_texts(payload: dict[str, Any], attributes_json: str) -> tuple[bytes, str]:
     """(canonical bytes, response JSON) of a new decision in :func:`record_payload` form.
 
@@ -169,28 +163,76 @@ def decision_texts(payload: dict[str, Any], attributes_json: str) -> tuple[bytes
     response fields, compact and UTF-8 (tests check both on generated records).
     """
     text = _string
-    enc = {
-        "recommendation_id": text(payload["recommendation_id"]),
-        "request_id": text(payload["request_id"]),
-        "case_id": text(payload["case_id"]),
-        "policy": text(payload["policy"]),
-        "version": int.__repr__(payload["version"]),
-        "score": _finite(payload["score"]),
-        "attributes": attributes_json,
-        "group": text(payload["group"]),
-        "rule": text(payload["rule"]),
-        "probability": _finite(payload["probability"]),
-        "draw": _finite(payload["draw"]),
-        "action": "true" if payload["action"] else "false",
-        "action_label": text(payload["action_label"]),
-        "issued_at": text(payload["issued_at"]),
-        "shadow_version": _scalar(payload["shadow_version"]),
-        "shadow_probability": _scalar(payload["shadow_probability"]),
-        "shadow_action": _scalar(payload["shadow_action"]),
-    }
-    record = _TEMPLATE % tuple(enc[k] for k in _SORTED_FIELDS)
-    response = _RESPONSE_TEMPLATE % tuple(enc[k] for k in RESPONSE_FIELDS)
+    score, probability, draw = payload["score"], payload["probability"], payload["draw"]
+    if not (math.isfinite(score) and math.isfinite(probability) and math.isfinite(draw)):
+        raise ValueError("NaN or infinity in a record")
+    rid = text(payload["recommendation_id"])
+    request_id = text(payload["request_id"])
+    case_id = text(payload["case_id"])
+    policy = text(payload["policy"])
+    version = int.__repr__(payload["version"])
+    group = text(payload["group"])
+    rule = text(payload["rule"])
+    prob = float.__repr__(probability)
+    u = float.__repr__(draw)
+    action = "true" if payload["action"] else "false"
+    label = text(payload["action_label"])
+    issued = text(payload["issued_at"])
+    record = _TEMPLATE % (  # in _SORTED_FIELDS order (checked below)
+        action,
+        label,
+        attributes_json,
+        case_id,
+        u,
+        group,
+        issued,
+        policy,
+        prob,
+        rid,
+        request_id,
+        rule,
+        float.__repr__(score),
+        _scalar(payload["shadow_action"]),
+        _scalar(payload["shadow_probability"]),
+        _scalar(payload["shadow_version"]),
+        version,
+    )
+    response = _RESPONSE_TEMPLATE % (  # in RESPONSE_FIELDS order
+        rid,
+        request_id,
+        case_id,
+        policy,
+        version,
+        group,
+        rule,
+        prob,
+        u,
+        action,
+        label,
+        issued,
+    )
     return record.encode("utf-8"), response
+
+
+assert _SORTED_FIELDS == (
+    "action",
+    "action_label",
+    "attributes",
+    "case_id",
+    "draw",
+    "group",
+    "issued_at",
+    "policy",
+    "probability",
+    "recommendation_id",
+    "request_id",
+    "rule",
+    "score",
+    "shadow_action",
+    "shadow_probability",
+    "shadow_version",
+    "version",
+), "decision_texts writes the fields in this order"
 
 
 def leaf_hash(canonical: bytes) -> str:
