@@ -10,7 +10,7 @@ from __future__ import annotations
 
 from fastapi import APIRouter, Request, Response
 
-from service.api.deps import DbSession, ScoringKey
+from service.api.deps import ScoringKey
 from service.api.errors import error_responses
 from service.api.recommendation_schemas import (
     BatchRequest,
@@ -66,12 +66,9 @@ async def recommend(body: RecommendationRequest, request: Request, _key: Scoring
         200: {"model": BatchResponse, "description": "Every item was a replay"},
     },
 )
-def recommend_batch(
-    body: BatchRequest, request: Request, session: DbSession, _key: ScoringKey
-) -> Response:
+def recommend_batch(body: BatchRequest, request: Request, _key: ScoringKey) -> Response:
     ctx = _context(request)
-    items, created = scoring.recommend_batch(session.connection(), body.items, ctx)
-    session.commit()
+    items, created = scoring.recommend_batch(request.app.state.engine, body.items, ctx)
     # The items are JSON texts already (the same bytes a single request would get).
     return _json_text(
         f'{{"items":[{",".join(items)}],"created":{created}}}', 201 if created else 200

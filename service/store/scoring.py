@@ -23,13 +23,14 @@ from datetime import datetime
 from functools import lru_cache
 from typing import Any, Protocol
 
-from sqlalchemy import Connection, bindparam, select
+from sqlalchemy import Connection, Engine, bindparam, select
 from sqlalchemy.orm import aliased
 
 from service.errors import Conflict, ServiceError, Unprocessable, check_batch_size
 from service.policy.document import PolicyDocument, resolve_rule_key
 from service.policy.errors import PolicyError
 from service.policy.rules import check_score, evaluate, evaluate_batch, rule_for
+from service.store.db import READ_ONLY
 from service.store.models import PolicyShadow, PolicyVersion, Recommendation, VersionStatus, utcnow
 from service.store.recommendations import ATTRIBUTES_JSON, insert_new_record, insert_records
 from service.store.records import (
@@ -412,12 +413,59 @@ def _item_error(i: int, exc: ServiceError | PolicyError) -> dict[str, Any]:
     return {"code": exc.code, "message": exc.message, "field": field}
 
 
-def recommend_batch(
-    conn: Connection, items: Sequence[ScoreInput], ctx: ScoringContext
-) -> tuple[list[str], int]:
-    """(response JSON of each item in input order, number newly written).
+@dataclass(frozen=True, slots=True)
+class PreparedBatch:
+    """A batch decided against one snapshot of the store, ready to be written."""
 
-    All or nothing: any bad item -> 422 and nothing written."""
+    responses: list[str]  # JSON of each item, in input order
+    rows: list[dict[str, Any]]  # the new records
+    versions: dict[str, tuple[int, int | None]]  # policy -> (version, shadow) decided with
+
+
+def recommend_batch(
+    engine: Engine, items: Sequence[ScoreInput], ctx: ScoringContext
+) -> tuple[list[str], int]:
+    """(response JSON of each item in input order, number newly written), committed.
+
+    All or nothing: any bad item -> 422 and nothing written. The batch is decided in a
+    read-only transaction (on SQLite a WAL snapshot: no write lock while thousands of
+    decisions are computed, so single requests are not held up), then written in a short
+    write transaction that first checks the snapshot still holds: the same active (and
+    shadow) versions, and none of the new request_ids stored meanwhile. If anything moved,
+    the batch is decided again inside the write transaction, so every record still names
+    the version active when it was written.
+    """
+    with engine.connect().execution_options(**{READ_ONLY: True}) as conn, conn.begin():
+        prepared = prepare_batch(conn, items, ctx)
+    with engine.connect() as conn, conn.begin():
+        if not _still_current(conn, prepared, ctx):
+            prepared = prepare_batch(conn, items, ctx)
+        insert_records(conn, prepared.rows)
+    return prepared.responses, len(prepared.rows)
+
+
+def _still_current(conn: Connection, prepared: PreparedBatch, ctx: ScoringContext) -> bool:
+    for name, versions in prepared.versions.items():
+        try:
+            plan = resolve_plan(conn, name, ctx)
+        except ServiceError:
+            return False
+        if (plan.version, plan.shadow_version) != versions:
+            return False
+    ids = [row["request_id"] for row in prepared.rows]
+    for start in range(0, len(ids), 1000):
+        query = select(Recommendation.id).where(
+            Recommendation.request_id.in_(ids[start : start + 1000])
+        )
+        if conn.execute(query.limit(1)).first() is not None:
+            return False
+    return True
+
+
+def prepare_batch(
+    conn: Connection, items: Sequence[ScoreInput], ctx: ScoringContext
+) -> PreparedBatch:
+    """Decide a batch against what ``conn`` sees, writing nothing; 422 if any item is bad."""
     check_batch_size(len(items), ctx.max_batch_items)
     errors: list[dict[str, Any]] = []
     seen: dict[str, int] = {}
@@ -491,9 +539,8 @@ def recommend_batch(
         rows_out.extend(new_rows)
         for i, out in zip(idx, outs, strict=True):
             responses[i] = out
-    if rows_out:
-        insert_records(conn, rows_out)
-    return [r for r in responses if r is not None], len(rows_out)
+    versions = {name: (plan.version, plan.shadow_version) for name, plan in plans.items()}
+    return PreparedBatch([r for r in responses if r is not None], rows_out, versions)
 
 
 def _item_index(field: str | None) -> int:
