@@ -7,8 +7,9 @@ For each database (SQLite file, and PostgreSQL on 127.0.0.1 when reachable) the 
    ``evenhand serve``, with the SAME uvicorn settings (host 127.0.0.1, workers, no access log,
    log level) and drives both with the SAME closed-loop
    load generator (benchmarks/loadgen.py), the same request bodies and concurrency;
-3. sends batches of 5,000 to POST /v1/recommendations/batch, timed end to end (encoding,
-   request, decision, durable write, answer, decoding).
+3. sends batches of 5,000 to POST /v1/recommendations/batch from one client, then from two
+   concurrent clients, timed end to end (encoding, request, decision, durable write, answer,
+   decoding).
 
 Every write is durable: SQLite with synchronous=FULL (the default), PostgreSQL with its default
 synchronous_commit=on. Only loopback traffic; every loop is bounded. Not a test: the targets
@@ -27,6 +28,7 @@ import sys
 import tempfile
 import time
 import uuid
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -198,6 +200,59 @@ def describe(label: str, r: LoadResult, cpu: float | None) -> dict[str, Any]:
     return row
 
 
+def run_batches(
+    service: ServerProcess, token: str, policy: str, args: argparse.Namespace, clients: int
+) -> dict[str, Any]:
+    """``args.batches`` batches per client, each client sending its next batch when the last
+    was answered; timed from the first send to the last answer, encoding and decoding
+    included."""
+    per_client = [
+        [bodies(args.batch_size, f"b{c}-{k}", policy) for k in range(args.batches)]
+        for c in range(clients)
+    ]
+    headers = {"Authorization": f"Bearer {token}", "Content-Type": "application/json"}
+
+    def send(client: httpx.Client, items: list[dict[str, Any]]) -> None:
+        r = client.post(
+            "/v1/recommendations/batch", content=json.dumps({"items": items}), headers=headers
+        )
+        if r.status_code != 201:
+            raise SystemExit(f"batch failed: {r.status_code} {r.text[:300]}")
+        if len(r.json()["items"]) != len(items):
+            raise SystemExit("batch answer is missing items")
+
+    def one_client(batches: list[list[dict[str, Any]]]) -> None:
+        with httpx.Client(base_url=service.base_url, timeout=300) as client:
+            for items in batches:
+                send(client, items)
+
+    one_client([bodies(args.batch_size, f"warm{clients}", policy)])
+    cpu_before = server_cpu_seconds(service.pid)
+    start = time.perf_counter()
+    with ThreadPoolExecutor(max_workers=clients) as pool:
+        list(pool.map(one_client, per_client))
+    seconds = time.perf_counter() - start
+    cpu_after = server_cpu_seconds(service.pid)
+    decisions = clients * args.batches * args.batch_size
+    per_second = decisions / seconds
+    cpu = None if cpu_before is None or cpu_after is None else (cpu_after - cpu_before)
+    cpu_us = None if cpu is None else cpu / decisions * 1e6
+    print(
+        f"  batches of {args.batch_size}, {clients} client(s): {per_second:,.0f} decisions/s "
+        f"({decisions:,} decisions, {seconds:.2f} s; server CPU {cpu_us or 0:.1f} us per "
+        "decision; target on SQLite >= 50,000)",
+        file=sys.stderr,
+    )
+    return {
+        "clients": clients,
+        "batch_size": args.batch_size,
+        "batches_per_client": args.batches,
+        "seconds": round(seconds, 3),
+        "decisions_per_second": round(per_second),
+        "server_cpu_us_per_decision": None if cpu_us is None else round(cpu_us, 1),
+    }
+
+
 def run_backend(backend: str, args: argparse.Namespace, workdir: Path) -> dict[str, Any] | None:
     db = make_database(backend, workdir)
     if db is None:
@@ -260,55 +315,17 @@ def run_backend(backend: str, args: argparse.Namespace, workdir: Path) -> dict[s
                 file=sys.stderr,
             )
 
-            batch_bodies = [bodies(args.batch_size, f"b{k}", name) for k in range(args.batches + 1)]
-            with httpx.Client(base_url=service.base_url, timeout=120) as client:
-                headers = {"Authorization": f"Bearer {tokens['scoring']}"}
-
-                def send(items: list[dict[str, Any]]) -> None:
-                    body = json.dumps({"items": items}).encode()
-                    r = client.post(
-                        "/v1/recommendations/batch",
-                        content=body,
-                        headers={**headers, "Content-Type": "application/json"},
-                    )
-                    if r.status_code != 201:
-                        raise SystemExit(f"batch failed: {r.status_code} {r.text[:300]}")
-                    if len(r.json()["items"]) != len(items):
-                        raise SystemExit("batch answer is missing items")
-
-                send(batch_bodies[0])  # warm-up
-                cpu_before = server_cpu_seconds(service.pid)
-                start = time.perf_counter()
-                for items in batch_bodies[1:]:
-                    send(items)
-                seconds = time.perf_counter() - start
-                cpu_after = server_cpu_seconds(service.pid)
-            decisions = args.batches * args.batch_size
-            per_second = decisions / seconds
-            batch_cpu = (
-                None
-                if cpu_before is None or cpu_after is None
-                else (cpu_after - cpu_before) / decisions * 1e6
-            )
-            print(
-                f"  batches of {args.batch_size}: {per_second:,.0f} decisions/s "
-                f"({args.batches} batches, {seconds:.2f} s; server CPU {batch_cpu or 0:.1f} us "
-                "per decision; target on SQLite >= 50,000)",
-                file=sys.stderr,
-            )
+            batch_runs = [
+                run_batches(service, tokens["scoring"], name, args, clients)
+                for clients in args.batch_clients
+            ]
         return {
             "backend": backend,
             "sqlite_synchronous": args.sqlite_synchronous if backend == "sqlite" else None,
             "single": rows,
             "ratio": round(ratio, 2),
             "ratio_to_sync_bare": round(ratio_sync, 2),
-            "batch": {
-                "batch_size": args.batch_size,
-                "batches": args.batches,
-                "seconds": round(seconds, 3),
-                "decisions_per_second": round(per_second),
-                "server_cpu_us_per_decision": None if batch_cpu is None else round(batch_cpu, 1),
-            },
+            "batches": batch_runs,
         }
     finally:
         drop_database(db)
@@ -322,6 +339,12 @@ def main() -> int:
     parser.add_argument("--workers", type=int, default=1)
     parser.add_argument("--batches", type=int, default=10)
     parser.add_argument("--batch-size", type=int, default=5000)
+    parser.add_argument(
+        "--batch-clients",
+        type=lambda v: [int(x) for x in v.split(",")],
+        default=[1, 2],
+        help="comma-separated numbers of concurrent batch clients to measure (default 1,2)",
+    )
     parser.add_argument(
         "--sqlite-synchronous",
         default="FULL",

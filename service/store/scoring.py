@@ -138,6 +138,22 @@ _EXISTING_QUERY = select(*_STORED).where(Recommendation.request_id == bindparam(
 _EXISTING_MANY = select(*_STORED).where(
     Recommendation.request_id.in_(bindparam("ids", expanding=True))
 )
+_STORED_IDS_SQL: dict[tuple[str, int], str] = {}
+
+
+def _stored_request_ids(conn: Connection, ids: list[str]) -> set[str]:
+    """Which of ``ids`` are stored: one plain statement on the driver (most groups find
+    none, so the full typed lookup runs only for the ones found)."""
+    dialect = conn.dialect
+    key = (dialect.name, len(ids))
+    sql = _STORED_IDS_SQL.get(key)
+    if sql is None:
+        mark = "?" if dialect.paramstyle == "qmark" else "%s"
+        sql = _STORED_IDS_SQL[key] = (
+            "SELECT request_id FROM recommendations WHERE request_id IN "
+            f"({', '.join([mark] * len(ids))})"
+        )
+    return {row[0] for row in conn.exec_driver_sql(sql, tuple(ids))}
 
 
 def resolve_plan(conn: Connection, name: str, ctx: ScoringContext) -> Plan:
@@ -360,7 +376,9 @@ def _decide_round(
 ) -> None:
     fingerprints = {i: fingerprint(reqs[i]) for i in members}
     by_id = {reqs[i].request_id: i for i in members}
-    for stored in conn.execute(_EXISTING_MANY, {"ids": list(by_id)}):
+    found = _stored_request_ids(conn, list(by_id))
+    stored_rows = conn.execute(_EXISTING_MANY, {"ids": list(found)}) if found else ()
+    for stored in stored_rows:
         i = by_id[stored.request_id]
         try:
             results[i] = (_replay(stored, reqs[i], fingerprints[i]), False)
