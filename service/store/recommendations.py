@@ -51,10 +51,36 @@ def _insert_sql(dialect: Dialect, skip_existing: bool = False) -> str:
     return sql
 
 
+SQLITE_ROWS_PER_STATEMENT = 256
+"""Rows per multi-row INSERT on SQLite (20 parameters a row, far below SQLite's 32,766)."""
+_MULTI_SQL_CACHE: dict[int, str] = {}
+
+
+def _sqlite_multi_row_sql(dialect: Dialect, count: int) -> str:
+    sql = _MULTI_SQL_CACHE.get(count)
+    if sql is None:
+        head, _, values = _insert_sql(dialect).partition(" VALUES ")
+        sql = _MULTI_SQL_CACHE[count] = f"{head} VALUES " + ", ".join([values] * count)
+    return sql
+
+
 def insert_records(conn: Connection, rows: Sequence[dict[str, Any]]) -> None:
-    """Insert many records (request_ids already checked: a duplicate is an error)."""
-    if rows:
-        conn.exec_driver_sql(_insert_sql(conn.dialect), _driver_params(conn.dialect, rows))
+    """Insert many records (request_ids already checked: a duplicate is an error).
+
+    On SQLite as multi-row INSERTs: the driver runs ``executemany`` one row at a time and
+    releases the GIL around each, so a group of rows costs as many thread hand-offs with the
+    event loop; one statement per 256 rows costs one.
+    """
+    if not rows:
+        return
+    params = _driver_params(conn.dialect, rows)
+    if conn.dialect.name != "sqlite":
+        conn.exec_driver_sql(_insert_sql(conn.dialect), params)
+        return
+    for start in range(0, len(params), SQLITE_ROWS_PER_STATEMENT):
+        chunk = params[start : start + SQLITE_ROWS_PER_STATEMENT]
+        flat = tuple(value for row in chunk for value in row)
+        conn.exec_driver_sql(_sqlite_multi_row_sql(conn.dialect, len(chunk)), flat)
 
 
 def insert_new_record(conn: Connection, row: dict[str, Any]) -> bool:
