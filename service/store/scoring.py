@@ -24,6 +24,7 @@ from functools import lru_cache
 from typing import Any, Protocol
 
 from sqlalchemy import Connection, Engine, bindparam, select
+from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import aliased
 
 from service.errors import Conflict, ServiceError, Unprocessable, check_batch_size
@@ -448,34 +449,35 @@ def recommend_batch(
     All or nothing: any bad item -> 422 and nothing written. The batch is decided in a
     read-only transaction (on SQLite a WAL snapshot: no write lock while thousands of
     decisions are computed, so single requests are not held up), then written in a short
-    write transaction that first checks the snapshot still holds: the same active (and
-    shadow) versions, and none of the new request_ids stored meanwhile. If anything moved,
-    the batch is decided again inside the write transaction, so every record still names
-    the version active when it was written.
+    write transaction that first checks the active (and shadow) versions are still those it
+    was decided with; the unique index on request_id refuses one stored meanwhile. If
+    either moved, the batch is decided again inside the write transaction, so every record
+    names the version active when it was written and no request_id is stored twice.
     """
     with engine.connect().execution_options(**{READ_ONLY: True}) as conn, conn.begin():
         prepared = prepare_batch(conn, items, ctx)
-    with engine.connect() as conn, conn.begin():
-        if not _still_current(conn, prepared, ctx):
-            prepared = prepare_batch(conn, items, ctx)
-        insert_records(conn, prepared.rows)
+    with engine.connect() as conn:
+        try:
+            with conn.begin():
+                if not _same_versions(conn, prepared, ctx):
+                    prepared = prepare_batch(conn, items, ctx)
+                insert_records(conn, prepared.rows)
+        except IntegrityError:
+            # One of the request_ids was stored meanwhile (the unique index says so): decide
+            # again inside the write transaction, which sees it as stored.
+            with conn.begin():
+                prepared = prepare_batch(conn, items, ctx)
+                insert_records(conn, prepared.rows)
     return prepared.responses, len(prepared.rows)
 
 
-def _still_current(conn: Connection, prepared: PreparedBatch, ctx: ScoringContext) -> bool:
+def _same_versions(conn: Connection, prepared: PreparedBatch, ctx: ScoringContext) -> bool:
     for name, versions in prepared.versions.items():
         try:
             plan = resolve_plan(conn, name, ctx)
         except ServiceError:
             return False
         if (plan.version, plan.shadow_version) != versions:
-            return False
-    ids = [row["request_id"] for row in prepared.rows]
-    for start in range(0, len(ids), 1000):
-        query = select(Recommendation.id).where(
-            Recommendation.request_id.in_(ids[start : start + 1000])
-        )
-        if conn.execute(query.limit(1)).first() is not None:
             return False
     return True
 
