@@ -17,6 +17,7 @@ import json
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
+from functools import lru_cache
 
 import numpy as np
 import numpy.typing as npt
@@ -28,28 +29,31 @@ _TWO_64 = float(2**64)
 MAX_DRAW = math.nextafter(1.0, 0.0)
 
 
-def draw_message(name: str, version: int, case_id: str) -> bytes:
-    return json.dumps([name, version, case_id], separators=(",", ":"), ensure_ascii=False).encode(
-        "utf-8"
-    )
+@lru_cache(maxsize=64)
+def _keyed_prefix(secret: bytes, name: str, version: int) -> hmac.HMAC:
+    """The HMAC state after the message's fixed prefix ``[name,version,``: the same for every
+    case of a version, so it is hashed once and copied per case."""
+    prefix = json.dumps([name, version], separators=(",", ":"), ensure_ascii=False)[:-1] + ","
+    return hmac.new(secret, prefix.encode("utf-8"), hashlib.sha256)
+
+
+# encode_basestring is exactly what json.dumps(case_id, ensure_ascii=False) returns, without the
+# encoder set-up per call: the string as it appears inside the array.
+_encode_string = json.encoder.encode_basestring
 
 
 def keyed_draw(secret: bytes, name: str, version: int, case_id: str) -> float:
-    digest = hmac.new(secret, draw_message(name, version, case_id), hashlib.sha256).digest()
-    return min(int.from_bytes(digest[:8], "big") / _TWO_64, MAX_DRAW)
+    mac = _keyed_prefix(secret, name, version).copy()
+    mac.update((_encode_string(case_id) + "]").encode("utf-8"))
+    return min(int.from_bytes(mac.digest()[:8], "big") / _TWO_64, MAX_DRAW)
 
 
 def keyed_draws(
     secret: bytes, name: str, version: int, case_ids: Sequence[str]
 ) -> npt.NDArray[np.float64]:
     """Draws for many cases: one HMAC each, on a reused keyed state, then one numpy pass."""
-    prefix = json.dumps([name, version], separators=(",", ":"), ensure_ascii=False)[:-1] + ","
-    # The message prefix is the same for every case: hash it once into the reused state.
-    base = hmac.new(secret, prefix.encode("utf-8"), hashlib.sha256)
-    # encode_basestring is exactly what json.dumps(case_id, ensure_ascii=False) returns, without
-    # the encoder set-up per call: the string as it appears inside the array.
-    encode = json.encoder.encode_basestring
-    copy = base.copy
+    encode = _encode_string
+    copy = _keyed_prefix(secret, name, version).copy
     heads: list[bytes] = []
     append = heads.append
     for case_id in case_ids:
