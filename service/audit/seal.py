@@ -155,12 +155,19 @@ def seal_pending(session: Session, max_records: int = MAX_RECORDS_PER_SEAL) -> S
         # Mark exactly the records in the tree, by id: a late commit with an id inside the
         # range stays unsealed for the next seal.
         connection = session.connection()
-        for start in range(0, len(ids), 900):
-            chunk = ids[start : start + 900]
+        if connection.dialect.name == "sqlite":
+            # This transaction has held SQLite's single write lock since before it read the
+            # pending records, so no record can have committed since: the unsealed records
+            # of the id range are exactly those in the tree (one range update, no id list).
+            chunks = [(ids, _REC.c.id.between(ids[0], ids[-1]))]
+        else:
+            chunks = [
+                (chunk, _REC.c.id.in_(chunk))
+                for chunk in (ids[i : i + 900] for i in range(0, len(ids), 900))
+            ]
+        for chunk, condition in chunks:
             marked = connection.execute(
-                update(_REC)
-                .where(_REC.c.id.in_(chunk), _REC.c.seal_id.is_(None))
-                .values(seal_id=seal.id)
+                update(_REC).where(condition, _REC.c.seal_id.is_(None)).values(seal_id=seal.id)
             ).rowcount
             if marked != len(chunk):
                 # Only a second sealer ignoring the lock could cause this: seal nothing.
