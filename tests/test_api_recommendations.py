@@ -72,12 +72,17 @@ def test_same_request_replays_and_writes_nothing(
     assert first.status_code == 201
     again = _post(client, tokens["scoring"], body)
     assert again.status_code == 200
-    assert again.json() == first.json()
+    assert again.content == first.content  # byte for byte: re-encoded from the stored record
     assert count_rows(session_factory, "recommendations") == 1
+    quoted = make_request(case_id='Café "Nord" \\ 7')  # escapes and non-ASCII text
+    first_quoted = _post(client, tokens["scoring"], quoted)
+    assert first_quoted.json()["case_id"] == 'Café "Nord" \\ 7'
+    assert _post(client, tokens["scoring"], quoted).content == first_quoted.content
+    assert count_rows(session_factory, "recommendations") == 2
     changed = _post(client, tokens["scoring"], {**body, "score": 0.11})
     assert changed.status_code == 409
     assert changed.json()["error"]["code"] == "idempotency_conflict"
-    assert count_rows(session_factory, "recommendations") == 1
+    assert count_rows(session_factory, "recommendations") == 2
 
 
 def test_record_is_hashed_over_all_fields(
