@@ -11,13 +11,12 @@ from sqlalchemy import create_engine, func, select
 from sqlalchemy.orm import Session
 
 from service.audit.reports import get_snapshot
-from service.demo.audit_stages import full_stages
+from service.demo.audit_stages import alert_summary, full_stages
 from service.demo.story import DemoContext, run_demo
 from service.store.audit_models import Outcome
 
-pytestmark = pytest.mark.slow
 
-
+@pytest.mark.slow
 def test_demo_ends_with_a_report(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     ctx = run_demo(DemoContext(output_dir=tmp_path / "demo-output", cases=80), full_stages())
     out = capsys.readouterr().out
@@ -37,3 +36,21 @@ def test_demo_ends_with_a_report(tmp_path: Path, capsys: pytest.CaptureFixture[s
     assert snapshot["row_counts"]["recommendations"] == len(ctx.sent) == 80
     assert snapshot["row_counts"]["outcomes"] == outcomes
     assert 0 < outcomes < 80  # some patients are lost to follow-up
+
+
+def test_the_summary_tells_the_most_serious_alerts_and_counts_the_rest() -> None:
+    alerts = [
+        {"status": "too-few", "version": 1, "message": "a"},
+        {"status": "watch", "version": 1, "message": "b"},
+        {"status": "breach", "version": 2, "message": "c"},
+        {"status": "watch", "version": 2, "message": "d"},
+    ]
+    lines = alert_summary(alerts, shown=2)
+    assert lines == [
+        "4 alert(s): 1 breach, 2 watch, 1 too-few",
+        "  [breach] v2 c",
+        "  [watch] v1 b",
+        "  ... and 2 more, each listed in the report",
+    ]
+    assert alert_summary([]) == ["no alerts"]
+    assert len(alert_summary(alerts)) == 5  # all four fit under the default

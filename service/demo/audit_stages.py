@@ -100,13 +100,34 @@ def audit_month(ctx: DemoContext) -> None:
         f"{counts['outcomes']} outcomes, versions {result['versions']} "
         f"(of {len(listing)} stored), digest {result['digest'][:16]}"
     )
-    lines = ["", f"Audit of {issued}: {len(result['alerts'])} alert(s)"]
-    for alert in result["alerts"]:
-        lines.append(f"  [{alert['status']}] v{alert['version']} {alert['message']}")
+    summary = alert_summary(result["alerts"])
+    lines = ["", f"Audit of {issued}: {summary[0]}", *summary[1:]]
     lines.append(f"report: {paths['html'].resolve()}")
     lines.append(f"        {paths['csv'].resolve()} (one row per version x group x metric)")
     ctx.summary.extend(lines)
     ctx.say(f"     {len(result['alerts'])} alert(s); report saved to {paths['html']}")
+
+
+# The order alerts are told in: what needs action first.
+_STATUS_ORDER = ("breach", "watch", "too-few", "not-identifiable")
+
+
+def alert_summary(alerts: list[dict[str, Any]], shown: int = 6) -> list[str]:
+    """A headline with the count per status, then the first ``shown`` alerts, most serious
+    first; the rest are counted and left to the report (which lists every one)."""
+    if not alerts:
+        return ["no alerts"]
+    rank = {status: i for i, status in enumerate(_STATUS_ORDER)}
+    ordered = sorted(alerts, key=lambda a: rank.get(a["status"], len(rank)))
+    counts: dict[str, int] = {}
+    for alert in ordered:
+        counts[alert["status"]] = counts.get(alert["status"], 0) + 1
+    head = f"{len(alerts)} alert(s): " + ", ".join(f"{n} {k}" for k, n in counts.items())
+    lines = [head]
+    lines += [f"  [{a['status']}] v{a['version']} {a['message']}" for a in ordered[:shown]]
+    if len(ordered) > shown:
+        lines.append(f"  ... and {len(ordered) - shown} more, each listed in the report")
+    return lines
 
 
 def _get_text(ctx: DemoContext, path: str) -> str:
