@@ -133,7 +133,7 @@ class GroupCommitter:
             results: Sequence[GroupResult | BaseException]
             try:
                 results = self._decide(jobs)
-            except Exception as exc:  # the commit itself failed: nobody's write is durable
+            except Exception as exc:  # a database error: nothing of this group is durable
                 log.error("group commit failed: %s", type(exc).__name__)
                 results = [exc] * len(jobs)
             _settle(jobs, results)
@@ -147,7 +147,7 @@ class GroupCommitter:
                 break
             if job is not None:
                 refused.append(job)
-        _settle(refused, [CommitterStopped()] * len(refused))
+        _settle(refused, [CommitterStopped() for _ in refused])
 
     def _decide(self, jobs: list[_Job]) -> Sequence[GroupResult]:
         requests = [job.request for job in jobs]

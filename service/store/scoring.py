@@ -3,12 +3,14 @@
 A request is evaluated against the policy's active version (and its shadow version, if one
 is designated; the shadow result is recorded, never returned). The record and the response
 are built from the same values, and a repeated ``request_id`` is answered from the stored
-record, so a replayed request gets byte-for-byte the same answer. Nothing here commits: the
-caller commits once, before it responds.
+record, so a replayed request gets byte-for-byte the same answer. Single requests
+(:func:`recommend`, :func:`recommend_group`) commit nothing: the caller (the group committer)
+commits before anyone is answered. :func:`recommend_batch` owns its transactions: a read
+snapshot to decide in, then a short write.
 
-The active version is looked up on every request, in the request's own transaction (one
-indexed query that also finds the shadow): correct across worker processes and rollbacks
-without any invalidation. Only the parsed documents are cached, by content hash, since a
+The active version is looked up in the transaction that writes the records (once per policy
+and group of requests; one indexed query that also finds the shadow): correct across worker
+processes and rollbacks without any invalidation. Only the parsed documents are cached, by content hash, since a
 stored version never changes.
 """
 
