@@ -10,8 +10,8 @@ snapshot to decide in, then a short write.
 
 The active version is looked up in the transaction that writes the records (once per policy
 and group of requests; one indexed query that also finds the shadow): correct across worker
-processes and rollbacks without any invalidation. Only the parsed documents are cached, by content hash, since a
-stored version never changes.
+processes and rollbacks without any invalidation. Only the parsed documents are cached, by
+content hash, since a stored version never changes.
 """
 
 from __future__ import annotations
