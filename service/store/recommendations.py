@@ -53,14 +53,14 @@ def _insert_sql(dialect: Dialect, skip_existing: bool = False) -> str:
 
 SQLITE_ROWS_PER_STATEMENT = 256
 """Rows per multi-row INSERT on SQLite (20 parameters a row, far below SQLite's 32,766)."""
-_MULTI_SQL_CACHE: dict[int, str] = {}
+_MULTI_SQL_CACHE: dict[tuple[str, int], str] = {}
 
 
 def _sqlite_multi_row_sql(dialect: Dialect, count: int) -> str:
-    sql = _MULTI_SQL_CACHE.get(count)
+    sql = _MULTI_SQL_CACHE.get((dialect.name, count))
     if sql is None:
         head, _, values = _insert_sql(dialect).partition(" VALUES ")
-        sql = _MULTI_SQL_CACHE[count] = f"{head} VALUES " + ", ".join([values] * count)
+        sql = _MULTI_SQL_CACHE[(dialect.name, count)] = f"{head} VALUES " + ", ".join([values] * count)
     return sql
 
 
