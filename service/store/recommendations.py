@@ -60,7 +60,9 @@ def _sqlite_multi_row_sql(dialect: Dialect, count: int) -> str:
     sql = _MULTI_SQL_CACHE.get((dialect.name, count))
     if sql is None:
         head, _, values = _insert_sql(dialect).partition(" VALUES ")
-        sql = _MULTI_SQL_CACHE[(dialect.name, count)] = f"{head} VALUES " + ", ".join([values] * count)
+        sql = _MULTI_SQL_CACHE[(dialect.name, count)] = f"{head} VALUES " + ", ".join(
+            [values] * count
+        )
     return sql
 
 
