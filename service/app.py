@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import gc
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 
@@ -41,12 +42,19 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         # Background tasks (e.g. the periodic log sealer) start here and stop after `yield`.
         sealer = PeriodicSealer(app.state.session_factory, settings.seal_interval_seconds)
         sealer.start()
+        # Everything made so far (modules, the app, the engine) lives as long as the server:
+        # move it out of the cyclic garbage collector's view, so the full collections that
+        # large request bodies set off scan only what requests create (in a batch of 5,000
+        # they cost about 5 us per item, more than validating it). Undone at shutdown, so a
+        # process that builds many apps (the tests) still frees their cycles.
+        gc.freeze()
         try:
             yield
         finally:
             await sealer.stop()
             committer.stop()
             engine.dispose()
+            gc.unfreeze()
 
     app = FastAPI(
         title="Evenhand",
