@@ -99,7 +99,7 @@ class GroupCommitter:
         return await future
 
     def recommend_blocking(self, request: ScoreInput) -> Answer:
-        """The same from a plain thread (CLI, benchmarks)."""
+        """The same from a plain thread (tests, benchmarks)."""
         self._check_running()
         future: Future[Answer] = Future()
         self._queue.put(_Job(request, future, None))

@@ -136,21 +136,13 @@ def encode_attributes(attributes: dict[str, Any]) -> str:
 
 # -- the scoring hot path: a fresh decision's record bytes and its API response at once -----
 
-# Response fields in the order the API has always sent them (a replay re-encodes a stored
+# The response is the record without the score, the attributes and the shadow result, in
+# the record's field order (the order the API has always sent; a replay re-encodes a stored
 # record with json.dumps in this order and must give the same bytes).
-RESPONSE_FIELDS: tuple[str, ...] = (
-    "recommendation_id",
-    "request_id",
-    "case_id",
-    "policy",
-    "version",
-    "group",
-    "rule",
-    "probability",
-    "draw",
-    "action",
-    "action_label",
-    "issued_at",
+RESPONSE_FIELDS: tuple[str, ...] = tuple(
+    f
+    for f in RECORD_FIELDS
+    if f not in ("score", "attributes", "shadow_version", "shadow_probability", "shadow_action")
 )
 _RESPONSE_TEMPLATE = "{" + ",".join(f'"{k}":%s' for k in RESPONSE_FIELDS) + "}"
 

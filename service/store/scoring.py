@@ -508,7 +508,7 @@ def prepare_batch(
     ids = list(seen)
     for start in range(0, len(ids), 1000):
         chunk = ids[start : start + 1000]
-        for row in conn.execute(select(*_STORED).where(Recommendation.request_id.in_(chunk))):
+        for row in conn.execute(_EXISTING_MANY, {"ids": chunk}):
             i = seen[row.request_id]
             try:
                 responses[i] = _replay(row, items[i], fingerprints[i])
