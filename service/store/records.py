@@ -54,8 +54,8 @@ def format_timestamp(value: datetime) -> str:
     return value.astimezone(UTC).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
 
 
-def _get(rec: Any, name: str) -> Any:
-    return rec[name] if isinstance(rec, Mapping) else getattr(rec, name)
+def _get_item(rec: Any, name: str) -> Any:
+    return rec[name]
 
 
 def _opt_float(value: Any) -> float | None:
@@ -76,6 +76,8 @@ def record_payload(rec: Any) -> dict[str, Any]:
     ``rec`` may be a :class:`~service.store.models.Recommendation`, a result row or a mapping
     of column values.
     """
+    # Decided once per record, not per field: verify calls this for every record in the log.
+    _get = _get_item if isinstance(rec, Mapping) else getattr
     return {
         "recommendation_id": str(_get(rec, "recommendation_id")),
         "request_id": str(_get(rec, "request_id")),
