@@ -23,7 +23,18 @@ from dataclasses import dataclass
 from datetime import datetime
 from typing import Any, Literal
 
-from sqlalchemy import Table, func, select, text, update
+from sqlalchemy import (
+    BigInteger,
+    ColumnElement,
+    Table,
+    any_,
+    bindparam,
+    func,
+    select,
+    text,
+    update,
+)
+from sqlalchemy.dialects.postgresql import ARRAY
 from sqlalchemy.orm import Session
 
 from service.audit.merkle import TreeBuilder
@@ -155,26 +166,25 @@ def seal_pending(session: Session, max_records: int = MAX_RECORDS_PER_SEAL) -> S
         # Mark exactly the records in the tree, by id: a late commit with an id inside the
         # range stays unsealed for the next seal.
         connection = session.connection()
+        in_tree: ColumnElement[bool]
         if connection.dialect.name == "sqlite":
             # This transaction has held SQLite's single write lock since before it read the
             # pending records, so no record can have committed since: the unsealed records
             # of the id range are exactly those in the tree (one range update, no id list).
-            chunks = [(ids, _REC.c.id.between(ids[0], ids[-1]))]
+            in_tree = _REC.c.id.between(ids[0], ids[-1])
         else:
-            chunks = [
-                (chunk, _REC.c.id.in_(chunk))
-                for chunk in (ids[i : i + 900] for i in range(0, len(ids), 900))
-            ]
-        for chunk, condition in chunks:
-            marked = connection.execute(
-                update(_REC).where(condition, _REC.c.seal_id.is_(None)).values(seal_id=seal.id)
-            ).rowcount
-            if marked != len(chunk):
-                # Only a second sealer ignoring the lock could cause this: seal nothing.
-                raise RuntimeError(
-                    f"sealing: {len(chunk) - marked} records were sealed meanwhile by another "
-                    "process; nothing was sealed"
-                )
+            # PostgreSQL: exactly these ids, as one array parameter (an IN list would be
+            # capped by the protocol's 65,535 parameters).
+            in_tree = _REC.c.id == any_(bindparam("seal_ids", ids, type_=ARRAY(BigInteger)))
+        marked = connection.execute(
+            update(_REC).where(in_tree, _REC.c.seal_id.is_(None)).values(seal_id=seal.id)
+        ).rowcount
+        if marked != len(ids):
+            # Only a second sealer ignoring the lock could cause this: seal nothing.
+            raise RuntimeError(
+                f"sealing: {len(ids) - marked} records were sealed meanwhile by another "
+                "process; nothing was sealed"
+            )
         session.commit()
         return seal
     except BaseException:
