@@ -10,18 +10,13 @@ from __future__ import annotations
 import argparse
 import os
 import sys
-import tempfile
 import time
-import uuid
 from pathlib import Path
-
-from sqlalchemy import create_engine, text
-from sqlalchemy.engine import make_url
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
-from store_hot_path import prepare, request
+from store_hot_path import on_each_database, prepare, request
 
 from service.audit.seal import seal_all_pending, verify_log
 from service.store.db import create_db_engine, create_session_factory
@@ -54,29 +49,7 @@ def main() -> None:
     parser.add_argument("-n", type=int, default=100_000, help="records to seal and verify")
     args = parser.parse_args()
     print(f"machine: {os.cpu_count()} cores, load average {os.getloadavg()[0]:.1f}")
-    with tempfile.TemporaryDirectory() as tmp:
-        print("sqlite (synchronous=FULL):")
-        run(f"sqlite:///{tmp}/seal.db", args.n)
-    server = make_url(
-        os.environ.get(
-            "EVENHAND_TEST_POSTGRES_URL", "postgresql+psycopg://postgres@127.0.0.1:5432/test"
-        )
-    )
-    name = f"evenhand_bench_{uuid.uuid4().hex[:8]}"
-    admin = create_engine(server, isolation_level="AUTOCOMMIT")
-    try:
-        with admin.connect() as conn:
-            conn.execute(text(f'CREATE DATABASE "{name}"'))
-    except Exception as exc:
-        print(f"postgresql: skipped ({type(exc).__name__})")
-        return
-    try:
-        print("postgresql:")
-        run(server.set(database=name).render_as_string(hide_password=False), args.n)
-    finally:
-        with admin.connect() as conn:
-            conn.execute(text(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)'))
-        admin.dispose()
+    on_each_database(lambda url: run(url, args.n))
 
 
 if __name__ == "__main__":

@@ -18,6 +18,7 @@ import sys
 import tempfile
 import time
 import uuid
+from collections.abc import Callable
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
@@ -122,14 +123,12 @@ def run(url: str, n: int) -> None:
     engine.dispose()
 
 
-def main() -> None:
-    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    parser.add_argument("-n", type=int, default=300, help="single decisions per measurement")
-    args = parser.parse_args()
-    print(f"machine: {os.cpu_count()} cores, load average {os.getloadavg()[0]:.1f}")
+def on_each_database(run: Callable[[str], None]) -> None:
+    """``run(url)`` on a fresh SQLite file, then on a fresh PostgreSQL database of its own
+    (created on the local server and dropped after; skipped when the server is not there)."""
     with tempfile.TemporaryDirectory() as tmp:
         print("sqlite (synchronous=FULL):")
-        run(f"sqlite:///{tmp}/bench.db", args.n)
+        run(f"sqlite:///{tmp}/bench.db")
     server = make_url(
         os.environ.get(
             "EVENHAND_TEST_POSTGRES_URL", "postgresql+psycopg://postgres@127.0.0.1:5432/test"
@@ -145,11 +144,19 @@ def main() -> None:
         return
     try:
         print("postgresql:")
-        run(server.set(database=name).render_as_string(hide_password=False), args.n)
+        run(server.set(database=name).render_as_string(hide_password=False))
     finally:
         with admin.connect() as conn:
             conn.execute(text(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)'))
         admin.dispose()
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("-n", type=int, default=300, help="single decisions per measurement")
+    args = parser.parse_args()
+    print(f"machine: {os.cpu_count()} cores, load average {os.getloadavg()[0]:.1f}")
+    on_each_database(lambda url: run(url, args.n))
 
 
 if __name__ == "__main__":
