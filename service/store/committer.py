@@ -157,9 +157,8 @@ class GroupCommitter:
             if not exc.connection_invalidated:
                 raise
             # The connection was lost (a database restart): nothing of this group was
-            # committed, or it was and the retry finds the request_ids stored. Try once more
-            # on a new connection.
-            self._close_connection()
+            # committed, or it was and the retry finds the request_ids stored. Try once more;
+            # _decide_group has dropped the broken connection and opens a new one.
             return self._decide_group(requests)
 
     def _decide_group(self, requests: list[ScoreInput]) -> Sequence[GroupResult]:
