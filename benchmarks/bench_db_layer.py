@@ -1,8 +1,9 @@
 """CPU per single recommendation of the database work alone, two ways, in one process.
 
-1. the service's path: a SQLAlchemy session, ``keys.authenticate`` in its own transaction, then
-   ``scoring.recommend`` and a commit (what the route does, without HTTP and without the group
-   committer);
+1. through SQLAlchemy: a session, ``keys.authenticate`` in its own transaction, then
+   ``scoring.recommend`` and a commit, one request per transaction (the route's path before
+   the group committer, which now shares one transaction among a group of requests; the
+   committer's own cost is in ``store_hot_path.py``);
 2. the same statements on a plain ``sqlite3`` connection: key lookup, idempotency lookup and
    active-version lookup in one read transaction, the same evaluation and record hash, then one
    INSERT and COMMIT.
