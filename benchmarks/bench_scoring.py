@@ -3,13 +3,15 @@
 For each database (SQLite file, and PostgreSQL on 127.0.0.1 when reachable) the script
 1. creates a fresh database, migrates it, creates keys and activates the Fernhollow demo policy;
 2. serves the bare endpoint (benchmarks/bare_app.py; an async route, the reference, then a
-   sync one for comparison) with uvicorn, then Evenhand with
-   ``evenhand serve``, with the SAME uvicorn settings (host 127.0.0.1, workers, no access log,
-   log level) and drives both with the SAME closed-loop
-   load generator (benchmarks/loadgen.py), the same request bodies and concurrency;
+   sync one for comparison), then Evenhand's own app with a committer that answers at once
+   (its HTTP layer alone), with uvicorn, then Evenhand with ``evenhand serve``, with the SAME
+   uvicorn settings (host 127.0.0.1, workers, no access log, log level) and drives all of
+   them with the SAME closed-loop load generator (benchmarks/loadgen.py), the same request
+   bodies and concurrency;
 3. sends batches of 5,000 to POST /v1/recommendations/batch from one client, then from two
    concurrent clients, timed end to end (encoding, request, decision, durable write, answer,
-   decoding).
+   decoding); and, beside them, to the bare app's batch route (validation and a fixed answer
+   per item: the framework's share).
 
 Every write is durable: SQLite with synchronous=FULL (the default), PostgreSQL with its default
 synchronous_commit=on. Only loopback traffic; every loop is bounded. Not a test: the targets
@@ -201,7 +203,12 @@ def describe(label: str, r: LoadResult, cpu: float | None) -> dict[str, Any]:
 
 
 def run_batches(
-    service: ServerProcess, token: str, policy: str, args: argparse.Namespace, clients: int
+    service: ServerProcess,
+    token: str | None,
+    policy: str,
+    args: argparse.Namespace,
+    clients: int,
+    label: str = "batches",
 ) -> dict[str, Any]:
     """``args.batches`` batches per client, each client sending its next batch when the last
     was answered; timed from the first send to the last answer, encoding and decoding
@@ -210,7 +217,9 @@ def run_batches(
         [bodies(args.batch_size, f"b{c}-{k}", policy) for k in range(args.batches)]
         for c in range(clients)
     ]
-    headers = {"Authorization": f"Bearer {token}", "Content-Type": "application/json"}
+    headers = {"Content-Type": "application/json"}
+    if token:
+        headers["Authorization"] = f"Bearer {token}"
 
     def send(client: httpx.Client, items: list[dict[str, Any]]) -> None:
         r = client.post(
@@ -238,9 +247,9 @@ def run_batches(
     cpu = None if cpu_before is None or cpu_after is None else (cpu_after - cpu_before)
     cpu_us = None if cpu is None else cpu / decisions * 1e6
     print(
-        f"  batches of {args.batch_size}, {clients} client(s): {per_second:,.0f} decisions/s "
+        f"  {label} of {args.batch_size}, {clients} client(s): {per_second:,.0f} decisions/s "
         f"({decisions:,} decisions, {seconds:.2f} s; server CPU {cpu_us or 0:.1f} us per "
-        "decision; target on SQLite >= 50,000)",
+        f"decision{'; target on SQLite >= 50,000' if token else ''})",
         file=sys.stderr,
     )
     return {
@@ -274,22 +283,28 @@ def run_backend(backend: str, args: argparse.Namespace, workdir: Path) -> dict[s
         )
 
         # The bare endpoints first (async: the reference; sync: a thread hop per request),
-        # then the service: same command line, same load.
+        # then the service's HTTP layer alone (its committer answering at once), then the
+        # service: same command line, same load.
         bare_results: dict[str, tuple[LoadResult, float | None]] = {}
-        for kind in ("async", "sync"):
+        bare_batches: dict[str, Any] = {}
+        for kind in ("async", "sync", "service-canned"):
+            canned = kind == "service-canned"
             port = free_port()
             bare = ServerProcess(
                 {**env, ROUTE_KIND_VARIABLE: kind},
                 workdir / f"bare-{kind}-{backend}.log",
                 port=port,
                 command=bare_command(port, args.workers),
-                ready_path="/openapi.json",
+                ready_path="/readyz" if canned else "/openapi.json",
             )
+            token = tokens["scoring"] if canned else None
             with bare:
-                run_load(bare.port, "/v1/recommendations", None, bodies(200, "w", name))
+                run_load(bare.port, "/v1/recommendations", token, bodies(200, "w", name))
                 bare_results[kind] = measured(
-                    bare, bare.port, None, bodies(args.requests, "bare", name), args.concurrency
+                    bare, bare.port, token, bodies(args.requests, "bare", name), args.concurrency
                 )
+                if kind == "async":
+                    bare_batches = run_batches(bare, None, name, args, 1, "bare batch route")
         service = ServerProcess(env, workdir / f"evenhand-{backend}.log", workers=args.workers)
         with service:
             with EvenhandClient(service.base_url) as api:
@@ -305,13 +320,17 @@ def run_backend(backend: str, args: argparse.Namespace, workdir: Path) -> dict[s
             rows = [
                 describe("bare FastAPI endpoint (async)", *bare_results["async"]),
                 describe("bare FastAPI endpoint (sync)", *bare_results["sync"]),
+                describe("service HTTP layer alone", *bare_results["service-canned"]),
                 describe("POST /v1/recommendations", service_result, service_cpu),
             ]
-            ratio = service_result.throughput / bare_results["async"][0].throughput
+            reference = bare_results["async"][0].throughput
+            ratio = service_result.throughput / reference
             ratio_sync = service_result.throughput / bare_results["sync"][0].throughput
+            ceiling = bare_results["service-canned"][0].throughput / reference
             print(
                 f"  ratio service / bare async route: {ratio:.2f} (target >= 0.6); "
-                f"/ bare sync route: {ratio_sync:.2f}",
+                f"/ bare sync route: {ratio_sync:.2f}; HTTP layer alone / bare async: "
+                f"{ceiling:.2f}",
                 file=sys.stderr,
             )
 
@@ -325,7 +344,9 @@ def run_backend(backend: str, args: argparse.Namespace, workdir: Path) -> dict[s
             "single": rows,
             "ratio": round(ratio, 2),
             "ratio_to_sync_bare": round(ratio_sync, 2),
+            "http_layer_alone_ratio": round(ceiling, 2),
             "batches": batch_runs,
+            "bare_batches": bare_batches,
         }
     finally:
         drop_database(db)

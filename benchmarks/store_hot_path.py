@@ -5,7 +5,11 @@ For a fresh SQLite file (and PostgreSQL when reachable) it reports, per decision
 1. ``recommend`` without committing (our CPU + two statements);
 2. the same with a commit each (adds one durable flush per decision);
 3. through the group committer from 16 threads (flushes shared by a group);
-4. batches of 5,000 through ``recommend_batch`` with one commit each.
+4. groups of 8 through ``recommend_group`` on one connection, as the committer decides them,
+   all in one transaction, then with a durable commit per group: CPU time (user + system, so
+   the kernel's share of writing and flushing counts) per decision, the store's floor under
+   a single request;
+5. batches of 5,000 through ``recommend_batch`` with one commit each.
 Not a test, no asserts. Run: ``.venv/bin/python benchmarks/store_hot_path.py``.
 """
 
@@ -33,7 +37,13 @@ from service.store import keys, lifecycle
 from service.store.committer import GroupCommitter
 from service.store.db import create_db_engine, create_session_factory
 from service.store.migrate import upgrade
-from service.store.scoring import DocumentCache, ScoringContext, recommend, recommend_batch
+from service.store.scoring import (
+    DocumentCache,
+    ScoringContext,
+    recommend,
+    recommend_batch,
+    recommend_group,
+)
 
 POLICY = {
     "name": "bench",
@@ -49,6 +59,7 @@ POLICY = {
     },
 }
 RNG = random.Random(20261201)
+GROUP = 8  # about what the committer gathers under bench_scoring.py's 16 connections
 
 
 def request() -> RecommendationRequest:
@@ -95,6 +106,20 @@ def run(url: str, n: int) -> None:
             recommend(s.connection(), r, ctx)
             s.commit()
         each = (time.perf_counter() - t) / n
+    group_cpu = {}
+    with engine.connect() as conn:
+        for durable in (False, True):
+            groups = [[request() for _ in range(GROUP)] for _ in range(4 * n // GROUP)]
+            t = time.process_time()
+            if durable:
+                for group in groups:
+                    with conn.begin():
+                        recommend_group(conn, group, ctx)
+            else:
+                with conn.begin():
+                    for group in groups:
+                        recommend_group(conn, group, ctx)
+            group_cpu[durable] = (time.process_time() - t) / (len(groups) * GROUP)
     committer = GroupCommitter(engine, ctx)
     committer.start()
     reqs = [request() for _ in range(4 * n)]
@@ -116,6 +141,9 @@ def run(url: str, n: int) -> None:
     print(f"  recommend, no commit        {cpu * 1000:7.3f} ms/decision")
     print(f"  recommend + commit each     {each * 1000:7.3f} ms/decision")
     print(f"  group committer, 16 threads {grouped * 1000:7.3f} ms/decision")
+    for durable, label in ((False, "one commit in all"), (True, "a commit each")):
+        text = f"groups of {GROUP}, {label}"
+        print(f"  {text:<28}{group_cpu[durable] * 1000:7.3f} ms CPU/decision")
     best = min(batches)
     print(
         f"  batch of 5,000 + commit     {best:7.3f} s  ({5000 / best:,.0f} decisions/s, best of 4)"
