@@ -141,7 +141,7 @@ def run(url: str, n: int) -> None:
     print(f"  recommend, no commit        {cpu * 1000:7.3f} ms/decision")
     print(f"  recommend + commit each     {each * 1000:7.3f} ms/decision")
     print(f"  group committer, 16 threads {grouped * 1000:7.3f} ms/decision")
-    for durable, label in ((False, "one commit in all"), (True, "a commit each")):
+    for durable, label in ((False, "one commit"), (True, "commit each")):
         text = f"groups of {GROUP}, {label}"
         print(f"  {text:<28}{group_cpu[durable] * 1000:7.3f} ms CPU/decision")
     best = min(batches)
