@@ -106,7 +106,7 @@ def run(url: str, n: int) -> None:
             recommend(s.connection(), r, ctx)
             s.commit()
         each = (time.perf_counter() - t) / n
-    group_cpu = {}
+    group_cpu: dict[bool, float] = {}
     with engine.connect() as conn:
         for durable in (False, True):
             groups = [[request() for _ in range(GROUP)] for _ in range(4 * n // GROUP)]
