@@ -17,8 +17,8 @@ from statsmodels.stats.proportion import proportion_confint
 
 from service.audit.job import month_bounds, run_audit
 from service.audit.snapshot import digest
-from service.policy.intervals import wilson_interval
 from service.policy.realized import RATE_FRACTIONS
+from service.stats.proportions import wilson_interval
 from service.store.models import Recommendation
 from tests.audit_helpers import POLICY, audit_policy, put_live
 from tests.helpers import bearer, make_request

@@ -4,7 +4,7 @@ import pytest
 from scipy.stats import binomtest
 from statsmodels.stats.proportion import confint_proportions_2indep, proportion_confint
 
-from service.policy.intervals import Z95, newcombe_difference_interval, wilson_interval
+from service.stats.proportions import Z95, newcombe_difference_interval, wilson_interval
 
 # Newcombe 1998a (Statistics in Medicine 17:857-872), Table I, Wilson score method;
 # secondary: quoted by several independent sources, primary table not seen.

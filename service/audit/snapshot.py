@@ -15,7 +15,6 @@ from datetime import datetime
 from typing import Any
 
 from service.policy.document import Criterion, PolicyDocument, canonical_json
-from service.policy.intervals import newcombe_difference_interval
 from service.policy.realized import (
     GAP_METRICS,
     CellCounts,
@@ -41,6 +40,7 @@ from service.policy.statuses import (
     four_fifths_status,
 )
 from service.policy.suppression import SMALL_CELL_LIMIT, Visibility, published, suppress
+from service.stats.proportions import newcombe_difference_interval
 
 SNAPSHOT_FORMAT = "evenhand.audit-snapshot/1"
 
@@ -225,7 +225,7 @@ def _message(check: dict[str, Any]) -> str:
 def _version_json(v: VersionCounts, inp: AuditInput) -> dict[str, Any]:
     doc = v.document
     targets = doc.targets
-    tolerance = targets.tolerance if targets is not None else 0.0
+    tolerance = (targets.tolerance or 0.0) if targets is not None else 0.0
     if inp.tolerance is not None:
         tolerance = inp.tolerance
     criterion = str(targets.criterion) if targets is not None else None

@@ -15,6 +15,7 @@ from __future__ import annotations
 import hashlib
 import json
 from enum import StrEnum
+from itertools import pairwise
 from typing import Annotated, Any, Literal, Self
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
@@ -169,21 +170,120 @@ class Groups(_Strict):
         return self
 
 
+class CalibrationCounts(_Strict):
+    """The counts one group's promised rates rest on, from calibration rows the rules were not
+    fitted on (cross-fitting): ``n`` rows, ``positives`` of them with outcome 1, and the rules'
+    expected actions among the positives (``tp``) and the negatives (``fp``), sums of
+    P(action | score). The audit compares a month's realized counts with these as a second
+    sample, not with an exact number."""
+
+    n: int = Field(ge=1)
+    positives: int = Field(ge=0)
+    tp: NonNegative
+    fp: NonNegative
+
+    @model_validator(mode="after")
+    def _consistent(self) -> Self:
+        slack = 1e-6 * max(1, self.n)  # sums of probabilities carry rounding
+        if self.positives > self.n:
+            raise ValueError(f"positives ({self.positives}) exceed n ({self.n})")
+        if self.tp > self.positives + slack:
+            raise ValueError(f"tp ({self.tp}) exceeds positives ({self.positives})")
+        if self.fp > self.n - self.positives + slack:
+            raise ValueError(f"fp ({self.fp}) exceeds negatives ({self.n - self.positives})")
+        return self
+
+
 class GroupTarget(_Strict):
-    """Rates the policy was expected to produce for one group on its calibration data."""
+    """Rates the policy was expected to produce for one group on its calibration data.
+
+    With ``out_of_sample`` the rates are those counts' ratios (honest promises); without it
+    they are in-sample figures, taken by the audit as exact numbers.
+    """
 
     n: int | None = Field(default=None, ge=0)
     prevalence: Probability | None = None
     action_rate: Probability
     tpr: Probability
     fpr: Probability
+    out_of_sample: CalibrationCounts | None = None
+    score_counts: list[Annotated[int, Field(ge=0)]] | None = Field(
+        default=None,
+        description="calibration rows per score bin (bins cut at targets.score_edges)",
+    )
+    outside_promise: str | None = Field(
+        default=None,
+        description="why the criterion's promise does not cover this group (None: it does), "
+        "e.g. a fallback rule that misses the criterion on the calibration data",
+    )
 
 
 class Targets(_Strict):
     criterion: Criterion
-    tolerance: NonNegative = 0.0
+    tolerance: NonNegative | None = Field(
+        default=None,
+        description="largest gap between groups (for gap criteria) and between realized and "
+        "promised rates that keeps the promise; required and positive at submit",
+    )
     expected_cost: NonNegative | None = None
+    reference_group: str | None = Field(
+        default=None,
+        description="group every gap is taken against, and the four-fifths comparator "
+        "(default: the largest calibration group for gaps, the calibration group with the "
+        "highest favourable rate for four-fifths)",
+    )
+    capacity: Probability | None = Field(
+        default=None, description="largest overall action rate the rules were derived under"
+    )
+    folds: int | None = Field(
+        default=None, ge=2, description="cross-fitting folds behind groups[*].out_of_sample"
+    )
+    score_edges: list[FiniteFloat] | None = Field(
+        default=None,
+        description="inner edges of the score bins of groups[*].score_counts, increasing",
+    )
     groups: dict[str, GroupTarget] = Field(default_factory=dict)
+
+    @model_validator(mode="after")
+    def _bins_match(self) -> Self:
+        edges = self.score_edges
+        if edges is not None and any(b <= a for a, b in pairwise(edges)):
+            raise ValueError("targets.score_edges must be strictly increasing")
+        for key, target in self.groups.items():
+            if target.score_counts is None:
+                continue
+            if edges is None or len(target.score_counts) != len(edges) + 1:
+                raise ValueError(
+                    f"targets.groups[{key!r}].score_counts needs one count per bin "
+                    "(len(targets.score_edges) + 1)"
+                )
+        return self
+
+
+class AuditPlan(_Strict):
+    """How the audit decides statuses for this policy: part of what is approved."""
+
+    level: float = Field(
+        default=0.05,
+        gt=0.0,
+        le=0.2,
+        description="error rate controlled over each month's family of checks",
+    )
+    multiplicity: Literal["holm", "benjamini-yekutieli"] = Field(
+        default="holm",
+        description="holm: family-wise error rate (Holm 1979); benjamini-yekutieli: false "
+        "discovery rate under any dependence (Benjamini & Yekutieli 2001)",
+    )
+    maturity_share: Probability = Field(
+        default=0.9,
+        description="a month is mature once this share of its observable decisions has an outcome",
+    )
+    maturity_days: int = Field(
+        default=60,
+        ge=0,
+        le=3660,
+        description="... or once this many days have passed since the month ended",
+    )
 
 
 class PolicyDocument(_Strict):
@@ -206,6 +306,9 @@ class PolicyDocument(_Strict):
     groups: Groups
     rules: dict[str, Rule] = Field(description="group key (or parent key) -> rule")
     targets: Targets | None = None
+    audit: AuditPlan | None = Field(
+        default=None, description="how the audit decides statuses (default: AuditPlan())"
+    )
 
     @model_validator(mode="after")
     def _consistent(self) -> Self:
@@ -244,7 +347,15 @@ class PolicyDocument(_Strict):
             for key in self.targets.groups:
                 if key not in known:
                     raise ValueError(f"targets.groups[{key!r}]: not a known group")
+            ref = self.targets.reference_group
+            if ref is not None and ref not in known:
+                raise ValueError(f"targets.reference_group ({ref!r}) is not a known group")
         return self
+
+    @property
+    def audit_plan(self) -> AuditPlan:
+        """The audit plan, with the documented defaults when the document sets none."""
+        return self.audit if self.audit is not None else AuditPlan()
 
     def group_key(self, attributes: dict[str, Any]) -> str:
         """The group key for a request's attributes (only the policy's attributes count)."""

@@ -9,9 +9,9 @@ import numpy.typing as npt
 
 from service.policy.derive import CalibrationData, DeriveError
 from service.policy.document import PolicyDocument
-from service.policy.intervals import wilson_interval_for_rate
 from service.policy.rates import expected_counts_by_group
 from service.policy.rules import rule_for, rule_probabilities
+from service.stats.proportions import wilson_interval_for_rate
 
 
 def stratified_split(

@@ -15,7 +15,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Literal
 
-from service.policy.intervals import newcombe_difference_interval, wilson_interval
+from service.stats.proportions import newcombe_difference_interval, wilson_interval
 
 Observability = Literal["both", "action", "no-action"]
 Favourable = Literal["action", "no-action"]

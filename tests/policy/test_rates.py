@@ -90,7 +90,7 @@ def test_wilson_for_expected_rates_matches_statsmodels() -> None:
     # which accepts a non-integer count: the holdout applies Wilson (1927) to expected rates.
     from statsmodels.stats.proportion import proportion_confint
 
-    from service.policy.intervals import wilson_interval_for_rate
+    from service.stats.proportions import wilson_interval_for_rate
 
     for count, nobs in [(81.0, 263), (37.25, 148), (0.0, 20), (19.5, 20), (3.3, 7)]:
         ours = wilson_interval_for_rate(count / nobs, nobs)
