@@ -194,16 +194,17 @@ def load(url: str, n: int) -> float:
 _CHILD = """
 import json, resource, sys, time
 from service.audit.job import run_audit
+from service.audit.month import Month
 from service.settings import Settings
 from service.store.db import create_db_engine, create_session_factory
 factory = create_session_factory(create_db_engine(Settings(database_url=sys.argv[1])))
 with factory() as session:
     started, cpu = time.perf_counter(), time.process_time()
-    run = run_audit(session, sys.argv[2], sys.argv[3])
+    run = run_audit(session, sys.argv[2], Month.parse(sys.argv[3]))
     session.commit()
     elapsed, cpu = time.perf_counter() - started, time.process_time() - cpu
 peak_kb = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
-n = sum(c.n for cells in run.cells.values() for c in cells.values())
+n = run.result.internal.row_counts["recommendations"]
 print(json.dumps({"seconds": elapsed, "cpu": cpu, "peak_mb": peak_kb / 1024, "rows": n}))
 """
 

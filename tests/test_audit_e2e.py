@@ -17,7 +17,7 @@ from statsmodels.stats.proportion import proportion_confint
 
 from service.audit.job import month_bounds, run_audit
 from service.audit.snapshot import digest
-from service.policy.realized import RATE_FRACTIONS
+from service.audit.realized import RATE_FRACTIONS
 from service.stats.proportions import wilson_interval
 from service.store.models import Recommendation
 from tests.audit_helpers import POLICY, audit_policy, put_live

@@ -7,7 +7,7 @@ import pytest
 from sklearn.metrics import confusion_matrix, precision_score, recall_score
 from statsmodels.stats.proportion import confint_proportions_2indep, proportion_confint
 
-from service.policy.realized import (
+from service.audit.realized import (
     CellCounts,
     cost_per_case,
     four_fifths,

@@ -15,7 +15,7 @@ from service.audit.snapshot import (
     digest,
 )
 from service.policy.document import PolicyDocument
-from service.policy.realized import CellCounts, ShadowCounts
+from service.audit.realized import CellCounts, ShadowCounts
 from service.policy.statuses import Status, classify, four_fifths_status
 from service.stats.proportions import newcombe_difference_interval
 

@@ -6,8 +6,8 @@ import numpy as np
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from service.policy.realized import CellCounts
-from service.policy.suppression import Visibility, published, suppress
+from service.audit.realized import CellCounts
+from service.audit.suppression import Visibility, published, suppress
 
 CELL_RELATIONS = [
     ("n", ["actions", "no_actions"]),

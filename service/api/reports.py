@@ -3,24 +3,28 @@
 ``POST /v1/audits`` runs the audit of one policy and month and stores a new snapshot.
 ``GET /v1/reports/{policy}`` lists months and snapshots; ``GET /v1/reports/{policy}/{YYYY-MM}``
 returns the latest snapshot as JSON, and with ``.csv`` or ``.html`` appended the same snapshot
-rendered (``?snapshot=ID`` picks an earlier one).
+rendered (``?snapshot=ID`` picks an earlier one; ``?view=internal`` the unsuppressed view).
 """
 
 from __future__ import annotations
 
+import json
 import re
-from typing import Annotated, Any
+from typing import Annotated, Any, Literal
 
 from fastapi import APIRouter, Query, Response
 from pydantic import BaseModel, ConfigDict, Field
 
 from service.api.deps import AppSettings, AuditKey, DbSession
 from service.api.errors import error_responses
-from service.audit import render
 from service.audit.job import run_audit
+from service.audit.month import Month
+from service.audit.render_csv import to_csv
+from service.audit.render_html import to_html
 from service.audit.reports import get_snapshot, list_reports
+from service.audit.snapshot_model import AlertRow
+from service.audit.verdicts import DEFAULT_MIN_COUNT
 from service.errors import NotFound
-from service.policy.statuses import DEFAULT_MIN_COUNT
 from service.store.db import begin_read_only
 
 router = APIRouter(tags=["audit"], responses=error_responses(401, 403, 404, 422))
@@ -34,15 +38,23 @@ class AuditRequest(BaseModel):
     policy: str = Field(min_length=1, max_length=64)
     month: str = Field(pattern=r"^\d{4}-(0[1-9]|1[0-2])$", examples=["2026-10"])
     reference_group: str | None = Field(
-        default=None, description="group the gaps are taken against (default: the largest)"
+        default=None,
+        max_length=256,
+        description="group every gap is taken against and the four-fifths comparator "
+        "(default: each version's own; must be a group of the policy)",
     )
     tolerance: float | None = Field(
         default=None,
-        ge=0.0,
-        le=1.0,
+        gt=0.0,
+        le=0.5,
         description="tolerance of every check (default: each version's targets.tolerance)",
     )
     min_count: int = Field(default=DEFAULT_MIN_COUNT, ge=1, le=100_000)
+    provisional: bool = Field(
+        default=False,
+        description="decide checks that need outcomes even if the month is not mature yet "
+        "(the report marks them as decided provisionally)",
+    )
 
 
 class AuditResponse(BaseModel):
@@ -51,8 +63,9 @@ class AuditResponse(BaseModel):
     month: str
     digest: str
     versions: list[int]
+    maturity: Literal["mature", "provisional"]
     row_counts: dict[str, Any]
-    alerts: list[dict[str, Any]]
+    alerts: list[AlertRow]
 
 
 @router.post(
@@ -67,23 +80,25 @@ def post_audit(
     run = run_audit(
         session,
         body.policy,
-        body.month,
+        Month.parse(body.month),
         time_zone=settings.timezone,
         actor=key.name,
         reference_group=body.reference_group,
         tolerance=body.tolerance,
         min_count=body.min_count,
+        provisional=body.provisional,
     )
     session.commit()
     s = run.snapshot
     return AuditResponse(
         snapshot_id=run.snapshot_id,
-        policy=s["policy"],
-        month=s["month"],
-        digest=s["digest"],
-        versions=s["versions_covered"],
-        row_counts=s["row_counts"],
-        alerts=s["alerts"],
+        policy=s.policy,
+        month=s.month,
+        digest=s.digest,
+        versions=s.versions_covered,
+        maturity=s.maturity.state,
+        row_counts=s.row_counts,
+        alerts=s.alerts,
     )
 
 
@@ -101,7 +116,8 @@ def get_reports(policy: str, session: DbSession, _key: AuditKey) -> dict[str, An
         200: {
             "content": {"application/json": {}, "text/csv": {}, "text/html": {}},
             "description": "The snapshot, as JSON or rendered",
-        }
+        },
+        **error_responses(409),
     },
 )
 def get_report(
@@ -109,7 +125,11 @@ def get_report(
     month_file: str,
     session: DbSession,
     _key: AuditKey,
-    snapshot: Annotated[int | None, Query(ge=1, description="a snapshot id")] = None,
+    snapshot: Annotated[int | None, Query(ge=1, le=2**31 - 1, description="a snapshot id")] = None,
+    view: Annotated[
+        Literal["published", "internal"],
+        Query(description="published (small cells suppressed) or internal (every count)"),
+    ] = "published",
 ) -> Response:
     m = _REPORT_FILE.match(month_file)
     if m is None:
@@ -117,13 +137,15 @@ def get_report(
             f"{month_file!r} is not a report: use YYYY-MM, YYYY-MM.csv or YYYY-MM.html",
             code="report_not_found",
         )
-    month, kind = m.group(1), m.group(2) or "json"
+    month, kind = Month.parse(m.group(1)), m.group(2) or "json"
     begin_read_only(session)
-    content = get_snapshot(session, policy, month, snapshot)
-    headers = {"X-Evenhand-Digest": content["digest"]}
+    content = get_snapshot(session, policy, month, snapshot, view)
+    headers = {"X-Evenhand-Digest": content.digest, "X-Evenhand-View": view}
+    suffix = "" if view == "published" else "-internal"
     if kind == "csv":
-        headers["Content-Disposition"] = f'attachment; filename="{policy}-{month}.csv"'
-        return Response(render.to_csv(content), media_type="text/csv", headers=headers)
+        headers["Content-Disposition"] = f'attachment; filename="{policy}-{month}{suffix}.csv"'
+        return Response(to_csv(content), media_type="text/csv", headers=headers)
     if kind == "html":
-        return Response(render.to_html(content), media_type="text/html", headers=headers)
-    return Response(render.to_json(content), media_type="application/json", headers=headers)
+        return Response(to_html(content), media_type="text/html", headers=headers)
+    text = json.dumps(content.content(), indent=2, sort_keys=True, ensure_ascii=False)
+    return Response(text, media_type="application/json", headers=headers)

@@ -1,399 +1,99 @@
-"""The audit job: count one policy's month in the database, finish the maths, store a snapshot.
+"""The audit job: count one policy's month in the database, decide it, store the snapshots.
 
-Cohort: recommendations of the policy issued in the calendar month, with the month cut in the
-deployment's time zone (``EVENHAND_TIMEZONE``, default UTC). Every count is computed in the
-database, per (version, group, shadow version), over three tables that each carry the cohort
-fields: recommendations, outcomes and final decisions (no join of the big tables). Only the
-grouped totals, a few rows per cell, reach Python; it adds them up (integer sums, exact),
-computes intervals and statuses and writes the snapshot. Snapshots are immutable; a re-run
-writes a new one.
+The job reads counts (:mod:`service.audit.counting`), hands them to the pure assembly
+(:mod:`service.audit.snapshot`) and adds one immutable snapshot row. Its caller (the request or
+the CLI command) commits. An empty month or one that has not begun is refused, so no snapshot
+ever looks clean for lack of data.
 """
 
 from __future__ import annotations
 
-import re
 import sys
-from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from datetime import UTC, datetime
 from typing import Any
-from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
-from sqlalchemy import Table, and_, func, literal, select
+from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
 from service import __version__
-from service.audit.snapshot import AuditInput, VersionCounts, build_snapshot
+from service.audit.counting import Progress, cells_from_tallies, count_month, quiet
+from service.audit.month import Month
+from service.audit.snapshot import AuditInput, AuditResult, VersionCounts, build
+from service.audit.snapshot_model import Snapshot
+from service.audit.verdicts import DEFAULT_MIN_COUNT
 from service.errors import NotFound, Unprocessable
 from service.policy.document import PolicyDocument
-from service.policy.realized import CellCounts, ShadowCounts
-from service.policy.statuses import DEFAULT_MIN_COUNT
-from service.store.audit_models import AuditSnapshot, FinalDecision, Outcome
+from service.store.audit_models import AuditSnapshot
 from service.store.db import begin_read_only
-from service.store.models import PolicyVersion, Recommendation
-
-MONTH_PATTERN = re.compile(r"^(\d{4})-(0[1-9]|1[0-2])$")
-
-Progress = Callable[[str], None]
+from service.store.models import PolicyVersion
 
 
 def stderr_progress(message: str) -> None:
     print(message, file=sys.stderr, flush=True)
 
 
-def _quiet(_message: str) -> None:
-    return None
-
-
-def parse_month(month: str) -> tuple[int, int]:
-    m = MONTH_PATTERN.match(month)
-    if m is None:
-        raise Unprocessable(f"month {month!r} is not of the form YYYY-MM", field="month")
-    return int(m.group(1)), int(m.group(2))
-
-
-def month_bounds(month: str, time_zone: str) -> tuple[datetime, datetime]:
-    """[start, end) of the calendar month in ``time_zone``, as UTC instants."""
-    year, mon = parse_month(month)
-    try:
-        zone = ZoneInfo(time_zone)
-    except (ZoneInfoNotFoundError, ValueError):
-        raise Unprocessable(f"unknown time zone {time_zone!r}", field="timezone") from None
-    start = datetime(year, mon, 1, tzinfo=zone)
-    end = datetime(year + (mon == 12), mon % 12 + 1, 1, tzinfo=zone)
-    return start.astimezone(UTC), end.astimezone(UTC)
-
-
-def previous_months(month: str, count: int) -> list[str]:
-    year, mon = parse_month(month)
-    out = []
-    for _ in range(count):
-        year, mon = (year - 1, 12) if mon == 1 else (year, mon - 1)
-        out.append(f"{year:04d}-{mon:02d}")
-    return out
-
-
-def cast_table(t: Any) -> Table:
-    assert isinstance(t, Table)
-    return t
-
-
-def _count_if(condition: Any) -> Any:
-    # Aggregate FILTER (PostgreSQL; SQLite >= 3.30) is cheaper per row than SUM(CASE ...).
-    return func.count().filter(condition)
-
-
-def _float_sum(value: Any, condition: Any | None = None) -> Any:
-    if condition is None:
-        return func.sum(value)
-    return func.sum(value).filter(condition)
-
-
-def _recommendation_counts(t: Table) -> list[Any]:
-    c = t.c
-    return [
-        func.count().label("n"),
-        _count_if(c.action.is_(True)).label("actions"),
-        _float_sum(c.probability).label("expected_actions"),
-        func.count(c.shadow_action).label("shadow_n"),
-        _count_if(c.shadow_action.is_(True)).label("shadow_actions"),
-        _count_if(c.shadow_action != c.action).label("differs"),
-    ]
-
-
-def _outcome_counts(t: Table) -> list[Any]:
-    c = t.c
-    acted, shadow_acted = c.action.is_(True), c.shadow_action.is_(True)
-    return [
-        func.count().label("observed"),
-        _count_if(c.outcome == 1).label("positives"),
-        _count_if(and_(acted, c.outcome == 1)).label("tp"),
-        _count_if(and_(acted, c.outcome == 0)).label("fp"),
-        _float_sum(c.probability, c.outcome == 0).label("expected_fp"),
-        _float_sum(1.0 - c.probability, c.outcome == 1).label("expected_fn"),
-        func.count(c.shadow_action).label("shadow_observed"),
-        _count_if(and_(c.shadow_action.is_not(None), c.outcome == 1)).label("shadow_positives"),
-        _count_if(and_(shadow_acted, c.outcome == 1)).label("shadow_tp"),
-        _count_if(and_(shadow_acted, c.outcome == 0)).label("shadow_fp"),
-    ]
-
-
-def _final_counts(t: Table) -> list[Any]:
-    return [
-        func.count().label("finals"),
-        _count_if(t.c.overridden.is_(True)).label("overrides"),
-    ]
-
-
-_SOURCES: tuple[tuple[str, Table, Callable[[Table], list[Any]]], ...] = (
-    ("recommendations", cast_table(Recommendation.__table__), _recommendation_counts),
-    ("outcomes", cast_table(Outcome.__table__), _outcome_counts),
-    ("final decisions", cast_table(FinalDecision.__table__), _final_counts),
-)
-_INT_FIELDS = (
-    "n",
-    "actions",
-    "shadow_n",
-    "shadow_actions",
-    "differs",
-    "observed",
-    "positives",
-    "tp",
-    "fp",
-    "shadow_observed",
-    "shadow_positives",
-    "shadow_tp",
-    "shadow_fp",
-    "finals",
-    "overrides",
-)
-_FLOAT_FIELDS = ("expected_actions", "expected_fp", "expected_fn")
-
-
-def _in_cohort(t: Table, policy: str, start: datetime, end: datetime) -> Any:
-    return and_(t.c.policy == policy, t.c.issued_at >= start, t.c.issued_at < end)
-
-
-@dataclass
-class _Tally:
-    ints: dict[str, int] = field(default_factory=lambda: dict.fromkeys(_INT_FIELDS, 0))
-    floats: dict[str, float] = field(default_factory=lambda: dict.fromkeys(_FLOAT_FIELDS, 0.0))
-
-    def add(self, row: Any) -> None:
-        for name, value in row._mapping.items():
-            if name in self.ints:
-                self.ints[name] += int(value or 0)
-            elif name in self.floats:
-                self.floats[name] += float(value or 0.0)
-
-
-Key = tuple[int, str, int | None]
-
-
-_FLAGS: dict[str, tuple[str, ...]] = {
-    "recommendations": ("action", "shadow_action"),
-    "outcomes": ("action", "shadow_action", "outcome"),
-    "final decisions": ("overridden",),
-}
-"""Columns the grouped path adds to the GROUP BY, so each row costs one hash lookup and two
-aggregates instead of a dozen filtered ones; the tallies follow from the finer cells."""
-
-
-def _tally_from_flags(label: str, fine: Any, tally: _Tally) -> None:
-    """Add one finer cell (key + flag values, count, sum of probabilities) to a tally."""
-    count, p_sum = int(fine.rows), float(fine.p_sum or 0.0)
-    i = tally.ints
-    if label == "final decisions":
-        i["finals"] += count
-        i["overrides"] += count if fine.overridden else 0
-        return
-    acted, shadow = bool(fine.action), fine.shadow_action
-    if label == "recommendations":
-        i["n"] += count
-        i["actions"] += count if acted else 0
-        tally.floats["expected_actions"] += p_sum
-        if shadow is not None:
-            i["shadow_n"] += count
-            i["shadow_actions"] += count if shadow else 0
-            i["differs"] += count if bool(shadow) != acted else 0
-        return
-    y = int(fine.outcome)
-    i["observed"] += count
-    i["positives"] += count * y
-    i["tp"] += count if acted and y == 1 else 0
-    i["fp"] += count if acted and y == 0 else 0
-    if y == 0:
-        tally.floats["expected_fp"] += p_sum
-    else:
-        tally.floats["expected_fn"] += count - p_sum
-    if shadow is not None:
-        i["shadow_observed"] += count
-        i["shadow_positives"] += count * y
-        i["shadow_tp"] += count if shadow and y == 1 else 0
-        i["shadow_fp"] += count if shadow and y == 0 else 0
-
-
-def _grouped_counts(
-    session: Session, policy: str, start: datetime, end: datetime, progress: Progress
-) -> dict[Key, _Tally]:
-    """One GROUP BY per table over the month (hash aggregation, in parallel on PostgreSQL),
-    by (version, group, shadow version) and the table's decision and outcome flags."""
-    tallies: dict[Key, _Tally] = {}
-    for label, t, _aggregates in _SOURCES:
-        flags = [t.c[name] for name in _FLAGS[label]]
-        keys = [t.c.version, t.c.group, t.c.shadow_version, *flags]
-        p_sum = func.sum(t.c.probability) if label != "final decisions" else None
-        stmt = (
-            select(
-                *keys,
-                func.count().label("rows"),
-                (p_sum if p_sum is not None else literal(0.0)).label("p_sum"),
-            )
-            .where(_in_cohort(t, policy, start, end))
-            .group_by(*keys)
-        )
-        rows = 0
-        for fine in session.execute(stmt):
-            key = (int(fine.version), str(fine.group), fine.shadow_version)
-            _tally_from_flags(label, fine, tallies.setdefault(key, _Tally()))
-            rows += int(fine.rows)
-        progress(f"  counted {label}: {rows:,}")
-    return tallies
-
-
-def _index_keys(session: Session, policy: str) -> list[Key]:
-    """Every (version, group, shadow version) of the policy, found by seeking the audit index
-    from one key to the next (a few lookups per key, however many rows there are)."""
-    c = Recommendation.__table__.c
-    base = c.policy == policy
-
-    def smallest(column: Any, *where: Any) -> Any:
-        return session.scalar(select(func.min(column)).where(base, *where))
-
-    keys: list[Key] = []
-    version = smallest(c.version)
-    while version is not None:
-        group = smallest(c.group, c.version == version)
-        while group is not None:
-            here = (c.version == version, c.group == group)
-            if session.scalar(select(c.id).where(base, *here, c.shadow_version.is_(None)).limit(1)):
-                keys.append((int(version), str(group), None))
-            shadow = smallest(c.shadow_version, *here)
-            while shadow is not None:
-                keys.append((int(version), str(group), int(shadow)))
-                shadow = smallest(c.shadow_version, *here, c.shadow_version > shadow)
-            group = smallest(c.group, c.version == version, c.group > group)
-        version = smallest(c.version, c.version > version)
-    return keys
-
-
-def _keyed_counts(
-    session: Session, policy: str, start: datetime, end: datetime, progress: Progress
-) -> dict[Key, _Tally]:
-    """Per (version, group, shadow version), one aggregate over one range of each table's
-    audit index. SQLite has no hash aggregation: a GROUP BY over a time range would first sort
-    every row, while a range of an index in grouping order is read straight through."""
-    tallies: dict[Key, _Tally] = {}
-    keys = _index_keys(session, policy)
-    rows = 0
-    for i, (version, group, shadow) in enumerate(keys):
-        tally = _Tally()
-        for _label, t, aggregates in _SOURCES:
-            where = [
-                _in_cohort(t, policy, start, end),
-                t.c.version == version,
-                t.c.group == group,
-                t.c.shadow_version.is_(None) if shadow is None else t.c.shadow_version == shadow,
-            ]
-            tally.add(session.execute(select(*aggregates(t)).where(*where)).one())
-        if tally.ints["n"]:
-            tallies[(version, group, shadow)] = tally
-            rows += tally.ints["n"]
-        progress(f"  counted cell {i + 1}/{len(keys)} (v{version} {group}): {rows:,} so far")
-    return tallies
-
-
-def count_month(
-    session: Session, policy: str, start: datetime, end: datetime, progress: Progress = _quiet
-) -> dict[Key, _Tally]:
-    """Counts of the cohort per (version, group, shadow version), all computed in SQL."""
-    if session.get_bind().dialect.name == "sqlite":
-        return _keyed_counts(session, policy, start, end, progress)
-    return _grouped_counts(session, policy, start, end, progress)
-
-
-def cells_from_tallies(
-    tallies: dict[Key, _Tally],
-) -> dict[int, tuple[dict[str, CellCounts], dict[int, dict[str, ShadowCounts]]]]:
-    """Per version: the cell of each group (its shadow subgroups added up) and shadow cells."""
-    merged: dict[tuple[int, str], _Tally] = {}
-    shadows: dict[int, dict[int, dict[str, ShadowCounts]]] = {}
-    for (version, group, shadow_version), t in tallies.items():
-        m = merged.setdefault((version, group), _Tally())
-        for name in _INT_FIELDS:
-            m.ints[name] += t.ints[name]
-        for name in _FLOAT_FIELDS:
-            m.floats[name] += t.floats[name]
-        if shadow_version is not None and t.ints["shadow_n"]:
-            shadows.setdefault(version, {}).setdefault(int(shadow_version), {})[group] = (
-                ShadowCounts(
-                    n=t.ints["shadow_n"],
-                    actions=t.ints["shadow_actions"],
-                    differs=t.ints["differs"],
-                    observed=t.ints["shadow_observed"],
-                    positives=t.ints["shadow_positives"],
-                    tp=t.ints["shadow_tp"],
-                    fp=t.ints["shadow_fp"],
-                )
-            )
-    out: dict[int, tuple[dict[str, CellCounts], dict[int, dict[str, ShadowCounts]]]] = {}
-    for (version, group), t in sorted(merged.items()):
-        if not t.ints["n"]:
-            continue
-        cell = CellCounts(
-            n=t.ints["n"],
-            actions=t.ints["actions"],
-            observed=t.ints["observed"],
-            positives=t.ints["positives"],
-            tp=t.ints["tp"],
-            fp=t.ints["fp"],
-            finals=t.ints["finals"],
-            overrides=t.ints["overrides"],
-            expected_actions=t.floats["expected_actions"],
-            expected_fp=t.floats["expected_fp"],
-            expected_fn=t.floats["expected_fn"],
-        )
-        out.setdefault(version, ({}, shadows.get(version, {})))[0][group] = cell
-    return out
-
-
 @dataclass(frozen=True)
 class AuditRun:
     snapshot_id: int
-    snapshot: dict[str, Any]
-    cells: dict[int, dict[str, CellCounts]]
-    """The true counts the statuses were decided on (not stored: they are not suppressed)."""
+    result: AuditResult
+
+    @property
+    def snapshot(self) -> Snapshot:
+        return self.result.published
 
 
-def _load_documents(session: Session, policy: str, versions: set[int]) -> dict[int, Any]:
-    rows = session.execute(
-        select(PolicyVersion.version, PolicyVersion.document, PolicyVersion.content_hash).where(
-            PolicyVersion.name == policy, PolicyVersion.version.in_(sorted(versions))
+def _load_documents(
+    session: Session, policy: str, versions: set[int] | None = None
+) -> dict[int, tuple[PolicyDocument, str]]:
+    query = select(PolicyVersion.version, PolicyVersion.document, PolicyVersion.content_hash).where(
+        PolicyVersion.name == policy
+    )
+    if versions is not None:
+        query = query.where(PolicyVersion.version.in_(sorted(versions)))
+    return {int(v): (PolicyDocument.model_validate(doc), h) for v, doc, h in session.execute(query)}
+
+
+def _check_reference(
+    reference_group: str | None, documents: dict[int, tuple[PolicyDocument, str]], seen: set[str]
+) -> None:
+    if reference_group is None:
+        return
+    known = set(seen)
+    for doc, _ in documents.values():
+        known.update(doc.groups.known)
+    if reference_group not in known:
+        raise Unprocessable(
+            f"reference group {reference_group!r} is not a group of this policy "
+            f"(known: {', '.join(sorted(known)) or 'none'})",
+            field="reference_group",
+            code="unknown_group",
         )
-    )
-    return {int(v): (PolicyDocument.model_validate(doc), h) for v, doc, h in rows}
-
-
-def latest_snapshots(session: Session, policy: str, months: list[str]) -> list[dict[str, Any]]:
-    """The latest snapshot content of each of ``months`` that has one."""
-    if not months:
-        return []
-    rows = session.execute(
-        select(AuditSnapshot.month, AuditSnapshot.content)
-        .where(AuditSnapshot.policy == policy, AuditSnapshot.month.in_(months))
-        .order_by(AuditSnapshot.month, AuditSnapshot.created_at, AuditSnapshot.id)
-    )
-    latest: dict[str, dict[str, Any]] = {}
-    for month, content in rows:
-        latest[month] = content
-    return [latest[m] for m in sorted(latest)]
 
 
 def run_audit(
     session: Session,
     policy: str,
-    month: str,
+    month: Month,
     *,
     time_zone: str = "UTC",
     actor: str = "cli",
     reference_group: str | None = None,
     tolerance: float | None = None,
     min_count: int = DEFAULT_MIN_COUNT,
-    progress: Progress = _quiet,
+    provisional: bool = False,
+    progress: Progress = quiet,
     now: datetime | None = None,
 ) -> AuditRun:
-    """Audit ``policy`` for ``month`` and store the snapshot (the caller commits)."""
-    start, end = month_bounds(month, time_zone)
+    """Audit ``policy`` for ``month`` and add the snapshot (the caller commits)."""
+    start, end = month.bounds(time_zone)
+    now = now or datetime.now(UTC)
+    if start > now:
+        raise Unprocessable(
+            f"{month} has not begun in {time_zone}: nothing to audit yet",
+            field="month",
+            code="future_month",
+        )
     # Count in a read-only transaction (on SQLite: no write lock, so scoring goes on), then
     # write the snapshot in a short transaction of its own.
     reading = not session.in_transaction()
@@ -404,16 +104,22 @@ def run_audit(
         raise NotFound(f"unknown policy {policy!r}", code="unknown_policy", field="policy")
     span = f"{start:%Y-%m-%d %H:%M}Z to {end:%Y-%m-%d %H:%M}Z"
     progress(f"auditing {policy} for {month} ({time_zone}): {span}")
-    tallies = count_month(session, policy, start, end, progress)
-    per_version = cells_from_tallies(tallies)
-    docs = _load_documents(session, policy, set(per_version))
+    per_version = cells_from_tallies(count_month(session, policy, start, end, progress))
+    if not per_version:
+        raise Unprocessable(
+            f"no decisions of {policy!r} were issued in {month} ({time_zone}): nothing to audit",
+            field="month",
+            code="empty_month",
+        )
+    documents = _load_documents(session, policy)
+    seen = {g for cells, _ in per_version.values() for g in cells}
+    _check_reference(reference_group, documents, seen)
     versions = [
-        VersionCounts(v, docs[v][0], cells, shadows)
+        VersionCounts(v, documents[v][0], cells, shadows, documents[v][1])
         for v, (cells, shadows) in sorted(per_version.items())
     ]
-    history = latest_snapshots(session, policy, previous_months(month, 11))
-    created = now or datetime.now(UTC)
-    snapshot = build_snapshot(
+    created = now
+    result = build(
         AuditInput(
             policy=policy,
             month=month,
@@ -426,17 +132,18 @@ def run_audit(
             reference_group=reference_group,
             tolerance=tolerance,
             min_count=min_count,
-            history=history,
+            provisional=provisional,
         ),
-        content_hashes={v: docs[v][1] for v in docs},
+        now,
     )
     if reading:
         session.rollback()
+    published = result.published
     total_n = sum(c.n for v in versions for c in v.cells.values())
     total_obs = sum(c.observed for v in versions for c in v.cells.values())
     row = AuditSnapshot(
         policy=policy,
-        month=month,
+        month=str(month),
         created_at=created,
         created_by=actor,
         time_zone=time_zone,
@@ -444,13 +151,20 @@ def run_audit(
         versions=[v.version for v in versions],
         recommendations=total_n,
         outcomes=total_obs,
-        digest=snapshot["digest"],
-        content=snapshot,
+        digest=published.digest,
+        content=published.content(),
+        internal=result.internal.content(),
     )
     session.add(row)
     session.flush()
     progress(
         f"snapshot {row.id}: {total_n:,} recommendations, {total_obs:,} outcomes, "
-        f"{len(snapshot['alerts'])} alert(s), digest {snapshot['digest'][:16]}"
+        f"{published.maturity.state}, {len(published.alerts)} alert(s), "
+        f"digest {published.digest[:16]}"
     )
-    return AuditRun(row.id, snapshot, {v.version: dict(v.cells) for v in versions})
+    return AuditRun(row.id, result)
+
+
+def snapshot_of(content: dict[str, Any]) -> Snapshot:
+    """A stored snapshot's content as the typed model (current format only)."""
+    return Snapshot.model_validate(content)

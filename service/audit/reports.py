@@ -2,27 +2,36 @@
 
 from __future__ import annotations
 
-from typing import Any
+from typing import Any, Literal
 
+from pydantic import ValidationError
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
-from service.audit.job import parse_month
-from service.errors import NotFound
+from service.audit.month import Month
+from service.audit.snapshot_model import SNAPSHOT_FORMAT, Snapshot
+from service.errors import Conflict, NotFound
 from service.store.audit_models import AuditSnapshot
+
+View = Literal["published", "internal"]
 
 
 def snapshot_summary(row: AuditSnapshot) -> dict[str, Any]:
     content = row.content
+    maturity = content.get("maturity") or {}
+    alerts = content.get("alerts", [])
     return {
         "id": row.id,
         "month": row.month,
         "created_at": content["created_at"],
         "created_by": row.created_by,
         "digest": row.digest,
+        "format": content.get("format"),
         "versions": list(row.versions),
         "row_counts": content["row_counts"],
-        "alerts": len(content["alerts"]),
+        "maturity": maturity.get("state"),
+        "alerts": len(alerts),
+        "breaches": sum(1 for a in alerts if a.get("level") == "breach"),
         "code_version": row.code_version,
     }
 
@@ -44,12 +53,15 @@ def list_reports(session: Session, policy: str) -> dict[str, Any]:
 
 
 def get_snapshot(
-    session: Session, policy: str, month: str, snapshot_id: int | None = None
-) -> dict[str, Any]:
-    """The latest snapshot of the month, or the one with ``snapshot_id``."""
-    parse_month(month)
+    session: Session,
+    policy: str,
+    month: Month,
+    snapshot_id: int | None = None,
+    view: View = "published",
+) -> Snapshot:
+    """The latest snapshot of the month, or the one with ``snapshot_id``, in ``view``."""
     query = select(AuditSnapshot).where(
-        AuditSnapshot.policy == policy, AuditSnapshot.month == month
+        AuditSnapshot.policy == policy, AuditSnapshot.month == str(month)
     )
     if snapshot_id is not None:
         query = query.where(AuditSnapshot.id == snapshot_id)
@@ -62,5 +74,17 @@ def get_snapshot(
         else:
             message = f"no audit of {policy!r} for {month} yet: run `evenhand audit run` first"
         raise NotFound(message, code="report_not_found")
-    content: dict[str, Any] = row.content
-    return content
+    content = row.content if view == "published" else row.internal
+    if content is None or content.get("format") != SNAPSHOT_FORMAT:
+        raise Conflict(
+            f"snapshot {row.id} was written in an earlier format ({row.content.get('format')}) "
+            f"and has no {view} view in {SNAPSHOT_FORMAT}: run the month's audit again",
+            code="snapshot_format",
+        )
+    try:
+        return Snapshot.model_validate(content)
+    except ValidationError as exc:  # a stored row that no longer matches its own format
+        raise Conflict(
+            f"snapshot {row.id} does not match {SNAPSHOT_FORMAT}: {exc.errors()[0]['msg']}",
+            code="snapshot_format",
+        ) from None

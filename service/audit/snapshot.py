@@ -1,63 +1,69 @@
-"""Assembling a report snapshot from counts: the published, JSON-able content of one audit run.
+"""Assembling the report snapshots of one audit run from counts (pure: no database).
 
-Input are the true counts per (version, group) cell; statuses are decided on them. The output
-is what may be published: small counts as ``"<11"``, complementary counts and every rate,
-gap, ratio and cost that could reveal a small count withheld. The layout is documented in
-``docs/audit.md`` ("Snapshot layout"); :data:`SNAPSHOT_FORMAT` names its version.
+Input are the true counts per (version, group) cell. Statuses are decided on them
+(:mod:`service.audit.verdicts`), then two views are built: the *published* one, where small
+counts show as ``"<11"`` and every figure that could reveal one is withheld
+(:mod:`service.audit.suppression`), and the *internal* one with every count, for the audit role.
 """
 
 from __future__ import annotations
 
-import hashlib
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from datetime import datetime
-from typing import Any
 
-from service.policy.document import Criterion, PolicyDocument, canonical_json
-from service.policy.realized import (
+from service.audit.maturity import Maturity, month_maturity
+from service.audit.month import Month
+from service.audit.realized import (
     GAP_METRICS,
     CellCounts,
     Rate,
     ShadowCounts,
     cost_per_case,
-    four_fifths,
+    four_fifths_flag,
     fraction_of,
     gap,
     rates,
-    reference_group,
     shadow_rates,
 )
-from service.policy.realized import (
-    SHADOW_RATE_FRACTIONS as SHADOW_FRACTIONS,
+from service.audit.realized import SHADOW_RATE_FRACTIONS as SHADOW_FRACTIONS
+from service.audit.snapshot_model import (
+    AlertRow,
+    Band,
+    CheckRow,
+    Cohort,
+    CostFigures,
+    Costs,
+    Estimate,
+    EvidenceRow,
+    FamilySection,
+    FourFifthsFigures,
+    GroupRow,
+    MaturitySection,
+    PublishedCount,
+    RunSettings,
+    ShadowGroup,
+    ShadowSection,
+    Snapshot,
+    VersionSection,
+    Withheld,
 )
-from service.policy.statuses import (
-    ALERTING,
-    DEFAULT_MIN_COUNT,
-    SEVERITY,
+from service.audit.suppression import SMALL_CELL_LIMIT, Visibility, published, suppress
+from service.audit.verdicts import (
+    PROCEDURES,
+    Check,
+    CheckKind,
+    Family,
+    MonthContext,
     Status,
-    classify,
-    four_fifths_status,
+    VersionSettings,
+    decide,
+    resolve_settings,
+    strictest_plan,
+    version_checks,
 )
-from service.policy.suppression import SMALL_CELL_LIMIT, Visibility, published, suppress
-from service.stats.proportions import newcombe_difference_interval
-
-SNAPSHOT_FORMAT = "evenhand.audit-snapshot/1"
-
-CRITERION_METRICS: dict[str, tuple[str, ...]] = {
-    Criterion.MAX_UTILITY: (),
-    Criterion.SINGLE_CUT: (),
-    Criterion.DEMOGRAPHIC_PARITY: ("action_rate",),
-    Criterion.EQUAL_OPPORTUNITY: ("tpr",),
-    Criterion.PREDICTIVE_EQUALITY: ("fpr",),
-    Criterion.EQUALIZED_ODDS: ("tpr", "fpr"),
-    Criterion.FOUR_FIFTHS: (),
-}
-"""Which gaps to the reference group each criterion bounds by its tolerance."""
-
-PROMISED_METRICS = ("action_rate", "tpr", "fpr")
-TREND_METRICS = ("action_rate", "tpr", "fpr", "ppv")
-TREND_MONTHS = 12
+from service.policy.document import GroupTarget, PolicyDocument
+from service.stats.ratios import katz_ratio_interval
 
 METRIC_LABELS = {
     "action_rate": "action rate",
@@ -71,7 +77,6 @@ METRIC_LABELS = {
     "npv": "NPV",
     "override_rate": "override rate",
     "differ_rate": "share decided differently",
-    "four_fifths_ratio": "four-fifths ratio",
 }
 
 CAUTIONS = (
@@ -87,6 +92,8 @@ CAUTIONS = (
     "coverage is shown for every group; rates that cannot be identified are marked as such.",
     'Only the attributes the policy needs are stored. Counts from 1 to 10 are shown as "<11", '
     "and figures from which they could be worked out are withheld.",
+    "Intervals are 95% intervals of each figure on its own; statuses come from the tests "
+    "named in the family section, adjusted for the number of checks.",
 )
 
 CALIBRATION_CONFLICT = (
@@ -129,12 +136,13 @@ class VersionCounts:
     document: PolicyDocument
     cells: Mapping[str, CellCounts]
     shadows: Mapping[int, Mapping[str, ShadowCounts]] = field(default_factory=dict)
+    content_hash: str | None = None
 
 
 @dataclass(frozen=True)
 class AuditInput:
     policy: str
-    month: str
+    month: Month
     time_zone: str
     cohort_from: datetime
     cohort_until: datetime
@@ -142,33 +150,26 @@ class AuditInput:
     code_version: str
     versions: Sequence[VersionCounts]
     reference_group: str | None = None
+    """The auditor's reference group for every version (None: each version's own)."""
     tolerance: float | None = None
-    """The auditor's tolerance for every check; None: each version's ``targets.tolerance``."""
-    min_count: int = DEFAULT_MIN_COUNT
-    history: Sequence[Mapping[str, Any]] = ()
-    """Earlier snapshots of the same policy (latest per month), for the 12-month trend."""
+    """The auditor's tolerance for every check (None: each version's ``targets.tolerance``)."""
+    min_count: int = 20
+    provisional: bool = False
+    """Decide outcome-based checks even when the month is not mature (the report says so)."""
 
 
-def _interval(value: float | None, low: float | None, high: float | None) -> dict[str, Any]:
-    return {"value": value, "low": low, "high": high}
+@dataclass(frozen=True)
+class AuditResult:
+    published: Snapshot
+    internal: Snapshot
+    checks: list[Check]
+    """Every check with its true figures and decided status."""
 
 
-def _withheld(reason: str) -> dict[str, Any]:
-    return {"value": None, "low": None, "high": None, "withheld": reason}
+class _Visibility:
+    """Which counts of a version may be published (all of them in the internal view)."""
 
-
-def _rate_json(r: Rate, hidden: bool) -> dict[str, Any]:
-    if r.missing is not None:
-        return _withheld(r.missing)
-    if hidden:
-        return _withheld("small-cell")
-    return _interval(r.value, r.low, r.high)
-
-
-class _Cells:
-    """Visibility of every count of a version: its cells, totals and shadow cells."""
-
-    def __init__(self, v: VersionCounts) -> None:
+    def __init__(self, v: VersionCounts, suppressing: bool) -> None:
         values: dict[tuple[str, ...], int] = {}
         relations: list[tuple[tuple[str, ...], list[tuple[str, ...]]]] = []
         for g, cell in v.cells.items():
@@ -187,393 +188,432 @@ class _Cells:
                 for parent, children in _SHADOW_RELATIONS:
                     relations.append(((key, g, parent), [(key, g, c) for c in children]))
         self.values = values
-        self.visibility = suppress(values, relations)
+        if suppressing:
+            self.visibility = suppress(values, relations)
+        else:
+            self.visibility = dict.fromkeys(values, Visibility.SHOWN)
 
     def hidden(self, *key: str) -> bool:
         return self.visibility[key] is not Visibility.SHOWN
 
-    def shown(self, *key: str) -> int | str | None:
-        return published(self.values[key], self.visibility[key])
+    def shown(self, *key: str) -> PublishedCount:
+        value = published(self.values[key], self.visibility[key])
+        return value if value is None or isinstance(value, int) else "<11"
+
+    def any_hidden(self, figures: Sequence[tuple[str, str]]) -> bool:
+        return any(self.hidden("cell", g, name) for g, name in figures)
 
 
-def _message(check: dict[str, Any]) -> str:
-    metric = METRIC_LABELS.get(check["metric"], check["metric"])
-    status = check["status"]
-    group, against = check["group"], check["against"]
-    if check["check"] == "promise":
-        what = f"{metric} of {group} vs the rate version {check['version']} promised"
-    elif check["check"] == "four-fifths":
-        what = f"favourable rate of {group} vs the highest ({against})"
-    else:
-        what = f"{metric} gap of {group} vs {against}"
-    if status == Status.TOO_FEW:
-        return f"{what}: too few cases to decide (a denominator is below {check['min_count']})"
-    if status == Status.NOT_IDENTIFIABLE:
-        return f"{what}: not identifiable, outcomes are observed only after some decisions"
-    if check.get("withheld"):
-        figures = "figures withheld (small cells)"
-    elif check["check"] == "four-fifths":
-        figures = f"ratio {check['ratio']:.3f}"
-    else:
-        figures = (
-            f"{check['value']:+.3f} (95% CI {check['low']:+.3f} to {check['high']:+.3f}), "
-            f"tolerance {check['tolerance']:g}"
+def _estimate(r: Rate, hidden: bool) -> Estimate:
+    if r.missing is not None:
+        return Estimate(
+            withheld="not-identifiable" if r.missing == "not-identifiable" else "no-cases"
         )
-    return f"{what}: {status}; {figures}"
+    if hidden:
+        return Estimate(withheld="small-cell")
+    return Estimate(value=r.value, low=r.low, high=r.high)
 
 
-def _version_json(v: VersionCounts, inp: AuditInput) -> dict[str, Any]:
+def _promised_cost(document: PolicyDocument, target: GroupTarget | None) -> float | None:
+    """The group's own promised cost per case: from its out-of-sample counts, else from its
+    promised prevalence, TPR and FPR."""
+    if target is None:
+        return None
+    c_fp, c_fn = document.costs.false_positive, document.costs.false_negative
+    c = target.out_of_sample
+    if c is not None:
+        return (c_fp * c.fp + c_fn * (c.positives - c.tp)) / c.n
+    if target.prevalence is None:
+        return None
+    p = float(target.prevalence)
+    return c_fp * (1 - p) * float(target.fpr) + c_fn * p * (1 - float(target.tpr))
+
+
+def _group_rows(v: VersionCounts, s: VersionSettings, vis: _Visibility) -> list[GroupRow]:
     doc = v.document
-    targets = doc.targets
-    tolerance = (targets.tolerance or 0.0) if targets is not None else 0.0
-    if inp.tolerance is not None:
-        tolerance = inp.tolerance
-    criterion = str(targets.criterion) if targets is not None else None
     fav, obs = doc.favourable, doc.outcome_observed_after
-    cells = _Cells(v)
-    group_names = sorted(v.cells)
-    sizes = {g: v.cells[g].n for g in group_names}
-    ref = reference_group(sizes, inp.reference_group)
-    all_rates = {g: rates(v.cells[g], fav, obs) for g in group_names}
+    targets = doc.targets
+    names = sorted(v.cells)
+    all_rates = {g: rates(v.cells[g], fav, obs) for g in names}
+    ref, comp = s.reference_group, s.comparator_group
+    fav_num = fraction_of("favourable_rate", fav)[0]
 
     def rate_hidden(g: str, metric: str) -> bool:
         num, den = fraction_of(metric, fav)
-        return cells.hidden("cell", g, num) or cells.hidden("cell", g, den)
+        return vis.hidden("cell", g, num) or vis.hidden("cell", g, den)
 
-    fav_fractions = {g: (v.cells[g].favourable(fav), v.cells[g].n) for g in group_names}
-    ff = four_fifths(fav_fractions)
-    top = next(iter(ff.values())).highest_group
-    fav_num = fraction_of("favourable_rate", fav)[0]
-
-    groups_json: list[dict[str, Any]] = []
-    for g in group_names:
+    rows: list[GroupRow] = []
+    for g in names:
         cell = v.cells[g]
-        rj = {m: _rate_json(r, rate_hidden(g, m)) for m, r in all_rates[g].items()}
-        gaps: dict[str, Any] = {}
-        for m in GAP_METRICS:
-            if g == ref:
-                continue
-            gp = gap(all_rates[g][m], all_rates[ref][m])
-            if all_rates[g][m].missing or all_rates[ref][m].missing:
-                gaps[m] = _withheld(all_rates[g][m].missing or all_rates[ref][m].missing or "")
-            elif rate_hidden(g, m) or rate_hidden(ref, m):
-                gaps[m] = _withheld("small-cell")
+        gaps: dict[str, Estimate] = {}
+        if ref is not None and ref in v.cells and g != ref:
+            for m in GAP_METRICS:
+                rg, rr = all_rates[g][m], all_rates[ref][m]
+                missing = rg.missing or rr.missing
+                if missing:
+                    gaps[m] = _estimate(Rate(0, 0, None, None, None, missing), False)
+                elif rate_hidden(g, m) or rate_hidden(ref, m):
+                    gaps[m] = Estimate(withheld="small-cell")
+                else:
+                    gp = gap(rg, rr)
+                    gaps[m] = Estimate(value=gp.value, low=gp.low, high=gp.high)
+        ff = None
+        if comp is not None and comp in v.cells:
+            k, n = cell.favourable(fav), cell.n
+            kc, nc = v.cells[comp].favourable(fav), v.cells[comp].n
+            hidden = vis.any_hidden([(g, fav_num), (g, "n"), (comp, fav_num), (comp, "n")])
+            if hidden:
+                ratio = Estimate(withheld="small-cell")
+            elif kc == 0:
+                ratio = Estimate(withheld="no-cases")
             else:
-                gaps[m] = _interval(gp.value, gp.low, gp.high)
-        ff_hidden = any(cells.hidden("cell", x, name) for x in (g, top) for name in (fav_num, "n"))
+                low, high = katz_ratio_interval(k, n, kc, nc)
+                ratio = Estimate(value=(k / n) / (kc / nc), low=low, high=high)
+            ff = FourFifthsFigures(
+                against=comp,
+                ratio=ratio,
+                flagged=None if hidden else four_fifths_flag(k, n, kc, nc),
+            )
+        target = targets.groups.get(g) if targets is not None else None
         cost = cost_per_case(
             cell,
             doc.costs.false_positive,
             doc.costs.false_negative,
-            targets.expected_cost if targets is not None else None,
+            _promised_cost(doc, target),
             obs,
         )
-        cost_hidden = any(cells.hidden("cell", g, c) for c in ("fp", "fn", "observed"))
-        target = targets.groups.get(g) if targets is not None else None
-        groups_json.append(
-            {
-                "group": g,
-                "reference": g == ref,
-                "counts": {name: cells.shown("cell", g, name) for name in cell.all_counts()},
-                "rates": rj,
-                "gaps": gaps,
-                "four_fifths": {
-                    "ratio": None if ff_hidden else ff[g].ratio,
-                    "flagged": ff[g].flagged,
-                    **({"withheld": "small-cell"} if ff_hidden else {}),
-                },
-                "cost_per_case": {
-                    "realized": None if cost_hidden else cost.realized,
-                    "expected": None if cost_hidden else cost.expected,
-                    "promised": cost.promised,
-                    **({"withheld": "small-cell"} if cost_hidden and obs == "both" else {}),
-                    **({"withheld": "not-identifiable"} if obs != "both" else {}),
-                },
-                "promised": None
+        withheld: Withheld | None = None
+        if obs != "both":
+            withheld = "not-identifiable"
+        elif vis.any_hidden([(g, "fp"), (g, "fn"), (g, "observed")]):
+            withheld = "small-cell"
+        rows.append(
+            GroupRow(
+                group=g,
+                reference=g == ref,
+                comparator=g == comp,
+                outside_promise=target.outside_promise if target is not None else None,
+                counts={name: vis.shown("cell", g, name) for name in cell.all_counts()},
+                rates={m: _estimate(r, rate_hidden(g, m)) for m, r in all_rates[g].items()},
+                gaps=gaps,
+                four_fifths=ff,
+                cost_per_case=CostFigures(
+                    realized=None if withheld else cost.realized,
+                    expected=None if withheld else cost.expected,
+                    promised=cost.promised,
+                    withheld=withheld,
+                ),
+                promised=None
                 if target is None
-                else {m: getattr(target, m) for m in PROMISED_METRICS},
-            }
+                else {m: float(getattr(target, m)) for m in ("action_rate", "tpr", "fpr")},
+            )
         )
+    return rows
 
-    checks = _checks(v, inp, cells, all_rates, ref, ff, fav_fractions, rate_hidden, tolerance)
 
-    shadows_json = []
+def _shadow_sections(v: VersionCounts, vis: _Visibility) -> list[ShadowSection]:
+    obs = v.document.outcome_observed_after
+    sections = []
     for sv in sorted(v.shadows):
-        sgroups = []
+        key = f"shadow-{sv}"
+        groups = []
         for g in sorted(v.shadows[sv]):
             sc = v.shadows[sv][g]
-            key = f"shadow-{sv}"
             srates = shadow_rates(sc, obs)
-            sgroups.append(
-                {
-                    "group": g,
-                    "counts": {name: cells.shown(key, g, name) for name in sc.all_counts()},
-                    "rates": {
-                        m: _rate_json(
+            groups.append(
+                ShadowGroup(
+                    group=g,
+                    counts={name: vis.shown(key, g, name) for name in sc.all_counts()},
+                    rates={
+                        m: _estimate(
                             r,
-                            cells.hidden(key, g, SHADOW_FRACTIONS[m][0])
-                            or cells.hidden(key, g, SHADOW_FRACTIONS[m][1]),
+                            vis.hidden(key, g, SHADOW_FRACTIONS[m][0])
+                            or vis.hidden(key, g, SHADOW_FRACTIONS[m][1]),
                         )
                         for m, r in srates.items()
                     },
-                }
-            )
-        shadows_json.append({"version": sv, "groups": sgroups})
-
-    return {
-        "version": v.version,
-        "content_hash": None,
-        "criterion": criterion,
-        "tolerance": tolerance,
-        "policy_tolerance": targets.tolerance if targets is not None else None,
-        "favourable": fav,
-        "outcome_observed_after": obs,
-        "action_label": doc.action_label,
-        "no_action_label": doc.no_action_label,
-        "costs": {
-            "false_positive": doc.costs.false_positive,
-            "false_negative": doc.costs.false_negative,
-        },
-        "reference_group": ref,
-        "highest_favourable_group": top,
-        "totals": {name: cells.shown("total", name) for name in _TOTALLED},
-        "groups": groups_json,
-        "shadows": shadows_json,
-        "checks": checks,
-    }
-
-
-def _checks(
-    v: VersionCounts,
-    inp: AuditInput,
-    cells: _Cells,
-    all_rates: dict[str, dict[str, Rate]],
-    ref: str,
-    ff: Mapping[str, Any],
-    fav_fractions: dict[str, tuple[int, int]],
-    rate_hidden: Any,
-    tolerance: float,
-) -> list[dict[str, Any]]:
-    doc = v.document
-    targets = doc.targets
-    criterion = targets.criterion if targets is not None else None
-    checks: list[dict[str, Any]] = []
-
-    def add(check: dict[str, Any]) -> None:
-        check.setdefault("version", v.version)
-        check.setdefault("min_count", inp.min_count)
-        check["message"] = _message(check)
-        checks.append(check)
-
-    for m in CRITERION_METRICS.get(criterion or "", ()):
-        for g in sorted(v.cells):
-            if g == ref:
-                continue
-            rg, rr = all_rates[g][m], all_rates[ref][m]
-            base = {
-                "check": "parity",
-                "criterion": str(criterion),
-                "metric": m,
-                "group": g,
-                "against": ref,
-                "tolerance": tolerance,
-            }
-            if rg.missing == "not-identifiable":
-                add({**base, "status": Status.NOT_IDENTIFIABLE.value})
-                continue
-            if min(rg.denominator, rr.denominator) < inp.min_count:
-                add({**base, "status": Status.TOO_FEW.value})
-                continue
-            gp = gap(rg, rr)
-            assert gp.value is not None and gp.low is not None and gp.high is not None
-            status = classify(gp.value, gp.low, gp.high, tolerance)
-            hidden = rate_hidden(g, m) or rate_hidden(ref, m)
-            add({**base, "status": status.value, **_figures(gp.value, gp.low, gp.high, hidden)})
-
-    if targets is not None:
-        for g in sorted(targets.groups):
-            if g not in v.cells:
-                continue
-            target = targets.groups[g]
-            for m in PROMISED_METRICS:
-                r = all_rates[g][m]
-                promised = float(getattr(target, m))
-                base = {
-                    "check": "promise",
-                    "criterion": str(criterion),
-                    "metric": m,
-                    "group": g,
-                    "against": "promised",
-                    "promised": promised,
-                    "tolerance": tolerance,
-                }
-                if r.missing == "not-identifiable":
-                    add({**base, "status": Status.NOT_IDENTIFIABLE.value})
-                    continue
-                if r.denominator < inp.min_count:
-                    add({**base, "status": Status.TOO_FEW.value})
-                    continue
-                assert r.value is not None and r.low is not None and r.high is not None
-                d, lo, hi = r.value - promised, r.low - promised, r.high - promised
-                status = classify(d, lo, hi, tolerance)
-                add({**base, "status": status.value, **_figures(d, lo, hi, rate_hidden(g, m))})
-
-    top = next(iter(ff.values())).highest_group if ff else None
-    fav_num = fraction_of("favourable_rate", doc.favourable)[0]
-    for g in sorted(v.cells):
-        if top is None or g == top:
-            continue
-        base = {
-            "check": "four-fifths",
-            "criterion": str(criterion),
-            "metric": "four_fifths_ratio",
-            "group": g,
-            "against": top,
-            "tolerance": 0.2,
-        }
-        (k, n), (km, nm) = fav_fractions[g], fav_fractions[top]
-        if min(n, nm) < inp.min_count:
-            add({**base, "status": Status.TOO_FEW.value})
-            continue
-        _, high = newcombe_difference_interval(k, n, km, nm)
-        status = four_fifths_status(ff[g].flagged, high)
-        hidden = any(cells.hidden("cell", x, c) for x in (g, top) for c in (fav_num, "n"))
-        add(
-            {
-                **base,
-                "status": status.value,
-                "ratio": None if hidden else ff[g].ratio,
-                "flagged": ff[g].flagged,
-                **({"withheld": "small-cell"} if hidden else {}),
-            }
-        )
-    return checks
-
-
-def _figures(value: float, low: float, high: float, hidden: bool) -> dict[str, Any]:
-    if hidden:
-        return {"value": None, "low": None, "high": None, "withheld": "small-cell"}
-    return {"value": value, "low": low, "high": high}
-
-
-def _primary_version(snapshot: Mapping[str, Any]) -> Mapping[str, Any] | None:
-    """The version with the most recommendations in a snapshot (it carries the month's trend)."""
-    best: Mapping[str, Any] | None = None
-    best_n = -1
-    for v in snapshot.get("versions", []):
-        n = sum(int(g["counts"]["n"]) for g in v["groups"] if isinstance(g["counts"]["n"], int))
-        if n > best_n:
-            best, best_n = v, n
-    return best
-
-
-def _trend(current: Mapping[str, Any], history: Sequence[Mapping[str, Any]]) -> list[Any]:
-    by_month = {s["month"]: s for s in history if s.get("month") != current["month"]}
-    by_month[current["month"]] = current
-    months = sorted(by_month)[-TREND_MONTHS:]
-    points: list[dict[str, Any]] = []
-    for month in months:
-        v = _primary_version(by_month[month])
-        if v is None:
-            continue
-        for g in v["groups"]:
-            for m in TREND_METRICS:
-                gp = g["gaps"].get(m)
-                if gp is None:
-                    continue
-                points.append(
-                    {
-                        "month": month,
-                        "version": v["version"],
-                        "group": g["group"],
-                        "against": v["reference_group"],
-                        "metric": m,
-                        "value": gp["value"],
-                        "low": gp["low"],
-                        "high": gp["high"],
-                    }
                 )
-    return points
+            )
+        sections.append(ShadowSection(version=sv, groups=groups))
+    return sections
 
 
-def _alerts(versions: Sequence[Mapping[str, Any]]) -> list[dict[str, Any]]:
-    alerting = {s.value for s in ALERTING}
-    found = [c for v in versions for c in v["checks"] if c["status"] in alerting]
-    found.sort(key=lambda c: (SEVERITY[Status(c["status"])], c["version"], c["group"]))
-    return [
-        {
-            "status": c["status"],
-            "version": c["version"],
-            "check": c["check"],
-            "metric": c["metric"],
-            "group": c["group"],
-            "against": c["against"],
-            "message": c["message"],
-        }
-        for c in found
-    ]
+_UNTESTED_TEXT = {
+    Status.TOO_FEW: "too few cases to test (a denominator is below {min_count})",
+    Status.NOT_IDENTIFIABLE: "not identifiable: outcomes are observed only after some decisions",
+    Status.PENDING: "pending: the month's outcomes are not mature yet",
+    Status.OUTSIDE_PROMISE: "outside the promise (recorded in the version: {reason})",
+}
 
 
-def digest(snapshot: Mapping[str, Any]) -> str:
-    """SHA-256 of the canonical JSON of the snapshot without its ``digest`` field."""
-    content = {k: v for k, v in snapshot.items() if k != "digest"}
-    return hashlib.sha256(canonical_json(content)).hexdigest()
+def _what(c: Check) -> str:
+    metric = METRIC_LABELS.get(c.metric, c.metric)
+    if c.kind is CheckKind.PROMISE:
+        return f"{metric} of {c.group} vs the rate version {c.version} promised"
+    if c.kind is CheckKind.FOUR_FIFTHS:
+        return f"favourable-rate ratio of {c.group} to {c.against}"
+    return f"{metric} gap of {c.group} vs {c.against}"
 
 
-def build_snapshot(inp: AuditInput, content_hashes: Mapping[int, str] | None = None) -> Any:
-    """The snapshot dict of one audit run; ``digest`` is set last, over everything else."""
-    versions = [_version_json(v, inp) for v in sorted(inp.versions, key=lambda v: v.version)]
-    for vj in versions:
-        vj["content_hash"] = (content_hashes or {}).get(vj["version"])
-    cautions = list(CAUTIONS)
-    shows_both = any(
-        g["rates"]["ppv"].get("withheld") is None and g["rates"]["tpr"].get("withheld") is None
-        for v in versions
-        for g in v["groups"]
+def _message(c: Check, hidden: bool, min_count: int, reason: str | None) -> str:
+    what = _what(c)
+    if c.status in _UNTESTED_TEXT:
+        text = _UNTESTED_TEXT[c.status].format(min_count=min_count, reason=reason or "")
+        return f"{what}: {text}"
+    ev = c.evidence
+    assert ev is not None and ev.p_outside_adjusted is not None
+    if hidden:
+        return f"{what}: {c.status.value}; figures withheld (small cells)"
+    if c.kind is CheckKind.FOUR_FIFTHS:
+        figures = f"ratio {c.estimate:.3f} (95% CI {c.low:.3f} to {c.high:.3f}), line 0.8"
+    elif c.kind is CheckKind.PROMISE:
+        figures = (
+            f"{c.estimate:.3f} (95% CI {c.low:.3f} to {c.high:.3f}), promised band "
+            f"{c.band.low:.3f} to {c.band.high:.3f}"
+        )
+    else:
+        figures = (
+            f"{c.estimate:+.3f} (95% CI {c.low:+.3f} to {c.high:+.3f}), tolerance {c.band.high:g}"
+        )
+    p = ev.p_outside if c.status is Status.BREACH else ev.p_inside
+    padj = ev.p_outside_adjusted if c.status is Status.BREACH else ev.p_inside_adjusted
+    which = "breach" if c.status is Status.BREACH else "equivalence"
+    return f"{what}: {c.status.value}; {figures}; {which} test p = {p:.2g}, adjusted {padj:.2g}"
+
+
+def _check_row(c: Check, v: VersionCounts, vis: _Visibility, min_count: int) -> CheckRow:
+    doc = v.document
+    figures = [(g, name) for g, name in c.figures_from if g in v.cells]
+    hidden = vis.any_hidden(figures)
+    target = doc.targets.groups.get(c.group) if doc.targets is not None else None
+    evidence = None
+    if c.evidence is not None and not hidden:
+        ev = c.evidence
+        assert ev.p_inside_adjusted is not None and ev.p_outside_adjusted is not None
+        evidence = EvidenceRow(
+            procedure=ev.procedure.value,
+            p_inside=ev.p_inside,
+            p_inside_adjusted=ev.p_inside_adjusted,
+            p_outside=ev.p_outside,
+            p_outside_adjusted=ev.p_outside_adjusted,
+            side="below" if ev.side == "below" else "above",
+        )
+    if c.estimate is None:
+        estimate = Estimate(withheld=_untested_withheld(c.status))
+    elif hidden:
+        estimate = Estimate(withheld="small-cell")
+    else:
+        estimate = Estimate(value=c.estimate, low=c.low, high=c.high)
+    return CheckRow(
+        key=c.key,
+        version=c.version,
+        check=c.kind.value,
+        criterion=doc.targets.criterion.value if doc.targets is not None else None,
+        metric=c.metric,
+        group=c.group,
+        against=c.against,
+        band=Band(low=c.band.low, high=c.band.high),
+        estimate=estimate,
+        status=c.status.value,
+        evidence=evidence,
+        message=_message(
+            c, hidden, min_count, target.outside_promise if target is not None else None
+        ),
     )
-    if shows_both:
+
+
+def _untested_withheld(status: Status) -> Withheld | None:
+    if status is Status.NOT_IDENTIFIABLE:
+        return "not-identifiable"
+    if status is Status.PENDING:
+        return "pending"
+    if status is Status.TOO_FEW:
+        return "no-cases"
+    return None
+
+
+def _family_text(family: Family, procedures: set[str]) -> str:
+    method = (
+        "Holm (1979), controlling the family-wise error rate"
+        if family.method == "holm"
+        else "Benjamini & Yekutieli (2001), controlling the false discovery rate"
+    )
+    used = "; ".join(PROCEDURES[p] for p in sorted(PROCEDURES) if p.value in procedures)
+    return (
+        f"Each tested check has two p-values: an equivalence test (two one-sided tests, "
+        f"Schuirmann 1987) whose rejection shows the quantity inside its band (holds), and a "
+        f"test whose rejection shows it outside (breach: the smaller one-sided p-value at the "
+        f"nearer edge, doubled for the two directions; one-sided for the four-fifths line). "
+        f"Tests used: {used or 'none'}. The breach p-values of the {family.tests} tested "
+        f"check(s) of this policy and month form one family and the equivalence p-values "
+        f"another; each is adjusted by {method}, at level {family.level:g}. A check is a "
+        f"breach when its adjusted breach p-value is at most the level, holds when its "
+        f"adjusted equivalence p-value is, and is undecided otherwise."
+    )
+
+
+def build(inp: AuditInput, now: datetime) -> AuditResult:
+    """Decide every check of the month and build its published and internal snapshots."""
+    settings = {
+        v.version: resolve_settings(v.document, v.cells, inp.reference_group, inp.tolerance)
+        for v in inp.versions
+    }
+    plan = strictest_plan([s.plan for s in settings.values()])
+    maturity = month_maturity(
+        [(c, v.document.outcome_observed_after) for v in inp.versions for c in v.cells.values()],
+        plan,
+        inp.cohort_until,
+        inp.month.days_after_end(inp.time_zone, plan.maturity_days),
+        now,
+    )
+    context = MonthContext(inp.min_count, maturity.mature or inp.provisional)
+    checks: list[Check] = []
+    for v in inp.versions:
+        checks.extend(version_checks(v.version, v.document, v.cells, settings[v.version], context))
+    decided, family = decide(checks, plan)
+    views = [
+        _snapshot(inp, settings, decided, family, maturity, suppressing)
+        for suppressing in (True, False)
+    ]
+    return AuditResult(views[0], views[1], decided)
+
+
+def _snapshot(
+    inp: AuditInput,
+    settings: Mapping[int, VersionSettings],
+    checks: Sequence[Check],
+    family: Family,
+    maturity: Maturity,
+    suppressing: bool,
+) -> Snapshot:
+    sections: list[VersionSection] = []
+    alerts: list[AlertRow] = []
+    for v in sorted(inp.versions, key=lambda x: x.version):
+        s = settings[v.version]
+        doc = v.document
+        vis = _Visibility(v, suppressing)
+        rows = [_check_row(c, v, vis, inp.min_count) for c in checks if c.version == v.version]
+        for row in rows:
+            if row.status == Status.BREACH.value:
+                alerts.append(
+                    AlertRow(
+                        level="breach",
+                        version=row.version,
+                        check=row.check,
+                        metric=row.metric,
+                        group=row.group,
+                        against=row.against,
+                        message=row.message,
+                    )
+                )
+        targets = doc.targets
+        promises = "none"
+        if targets is not None and targets.groups:
+            two = any(t.out_of_sample is not None for t in targets.groups.values())
+            promises = "two-sample" if two else "exact"
+        sections.append(
+            VersionSection(
+                version=v.version,
+                content_hash=v.content_hash,
+                criterion=targets.criterion.value if targets is not None else None,
+                tolerance=s.tolerance,
+                tolerance_source=s.tolerance_source,
+                favourable=doc.favourable,
+                outcome_observed_after=doc.outcome_observed_after,
+                action_label=doc.action_label,
+                no_action_label=doc.no_action_label,
+                costs=Costs(
+                    false_positive=doc.costs.false_positive,
+                    false_negative=doc.costs.false_negative,
+                ),
+                reference_group=s.reference_group,
+                reference_source=s.reference_source,
+                comparator_group=s.comparator_group,
+                comparator_source=s.comparator_source,
+                promises=promises,
+                totals={name: vis.shown("total", name) for name in _TOTALLED},
+                groups=_group_rows(v, s, vis),
+                shadows=_shadow_sections(v, vis),
+                checks=rows,
+            )
+        )
+    cautions = list(CAUTIONS)
+    if any(
+        g.rates["ppv"].value is not None and g.rates["tpr"].value is not None
+        for sec in sections
+        for g in sec.groups
+    ):
         cautions.append(CALIBRATION_CONFLICT)
     totals = {name: 0 for name in _TOTALLED}
     for v in inp.versions:
         for cell in v.cells.values():
             for name in _TOTALLED:
                 totals[name] += cell.all_counts()[name]
-    snapshot: dict[str, Any] = {
-        "format": SNAPSHOT_FORMAT,
-        "policy": inp.policy,
-        "month": inp.month,
-        "time_zone": inp.time_zone,
-        "cohort": {"from": inp.cohort_from.isoformat(), "until": inp.cohort_until.isoformat()},
-        "created_at": inp.created_at.isoformat(),
-        "code_version": inp.code_version,
-        "settings": {
-            "min_count": inp.min_count,
-            "small_cell_limit": SMALL_CELL_LIMIT,
-            "reference_group": inp.reference_group,
-            "tolerance": inp.tolerance,
+    decided_provisionally = not maturity.mature and inp.provisional
+    outcome_checks = (
+        "decided"
+        if maturity.mature
+        else ("decided provisionally" if decided_provisionally else "pending")
+    )
+    procedures = {c.evidence.procedure.value for c in checks if c.evidence is not None}
+    snapshot = Snapshot(
+        view="published" if suppressing else "internal",
+        policy=inp.policy,
+        month=str(inp.month),
+        time_zone=inp.time_zone,
+        cohort=Cohort(from_=inp.cohort_from.isoformat(), until=inp.cohort_until.isoformat()),
+        created_at=inp.created_at.isoformat(),
+        code_version=inp.code_version,
+        settings=RunSettings(
+            min_count=inp.min_count,
+            small_cell_limit=SMALL_CELL_LIMIT,
+            reference_group=inp.reference_group,
+            tolerance=inp.tolerance,
+            provisional=inp.provisional,
+        ),
+        maturity=MaturitySection(
+            state="mature" if maturity.mature else "provisional",
+            reason=maturity.reason,
+            observable=_total_count(maturity.observable, suppressing),
+            observed=_total_count(maturity.observed, suppressing),
+            share=maturity.share,
+            required_share=maturity.required_share,
+            mature_after=maturity.mature_after.isoformat(),
+            outcome_checks=outcome_checks,
+        ),
+        family=FamilySection(
+            method=family.method,
+            level=family.level,
+            tests=family.tests,
+            description=_family_text(family, procedures),
+        ),
+        row_counts={
+            "recommendations": _grand_total(totals["n"], sections, "n", suppressing),
+            "outcomes": _grand_total(totals["observed"], sections, "observed", suppressing),
+            "final_decisions": _grand_total(totals["finals"], sections, "finals", suppressing),
         },
-        "row_counts": {
-            "recommendations": _total_shown(totals["n"], versions, "n"),
-            "outcomes": _total_shown(totals["observed"], versions, "observed"),
-            "final_decisions": _total_shown(totals["finals"], versions, "finals"),
-        },
-        "versions_covered": [v["version"] for v in versions],
-        "versions": versions,
-        "alerts": _alerts(versions),
-        "cautions": cautions,
-    }
-    snapshot["trend"] = _trend(snapshot, inp.history)
-    snapshot["digest"] = digest(snapshot)
-    return snapshot
+        versions_covered=[s.version for s in sections],
+        versions=sections,
+        alerts=alerts,
+        cautions=cautions,
+    )
+    return snapshot.sealed()
 
 
-def _total_shown(total: int, versions: Sequence[Mapping[str, Any]], name: str) -> int | str | None:
-    """The grand total across versions, hidden like any count, and when exactly one version
-    total is hidden (it would follow from the grand total minus the others)."""
-    vis = [v["totals"][name] for v in versions]
-    hidden = sum(1 for x in vis if not isinstance(x, int))
-    if hidden == 1 and len(vis) > 1:
-        return None
-    if 0 < total < SMALL_CELL_LIMIT:
+def _total_count(value: int, suppressing: bool) -> PublishedCount:
+    if suppressing and 0 < value < SMALL_CELL_LIMIT:
         return "<11"
-    return total
+    return value
+
+
+def _grand_total(
+    total: int, sections: Sequence[VersionSection], name: str, suppressing: bool
+) -> PublishedCount:
+    """The total across versions, hidden like any count, and when exactly one version total is
+    hidden (it would follow from the grand total minus the others)."""
+    if not suppressing:
+        return total
+    shown = [s.totals[name] for s in sections]
+    if sum(1 for x in shown if not isinstance(x, int)) == 1 and len(shown) > 1:
+        return None
+    return _total_count(total, suppressing)

@@ -10,12 +10,12 @@ from __future__ import annotations
 import argparse
 import time
 from datetime import UTC, datetime
-from zoneinfo import ZoneInfo
 
-from service.audit.job import parse_month, previous_months, run_audit, stderr_progress
+from service.audit.job import run_audit, stderr_progress
+from service.audit.month import Month
+from service.audit.verdicts import DEFAULT_MIN_COUNT
 from service.cli.common import CliError
 from service.errors import ServiceError
-from service.policy.statuses import DEFAULT_MIN_COUNT
 from service.settings import Settings
 from service.store.db import create_db_engine, create_session_factory
 
@@ -31,11 +31,20 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
         "--month",
         help="calendar month YYYY-MM in the configured time zone (default: the previous month)",
     )
-    run.add_argument("--reference", help="reference group for gaps (default: the largest)")
+    run.add_argument(
+        "--reference",
+        help="reference group for gaps and the four-fifths comparator (default: each "
+        "version's own)",
+    )
     run.add_argument(
         "--tolerance",
         type=float,
-        help="tolerance of every check (default: each version's targets.tolerance)",
+        help="tolerance of every check, > 0 and <= 0.5 (default: each version's targets.tolerance)",
+    )
+    run.add_argument(
+        "--provisional",
+        action="store_true",
+        help="decide checks that need outcomes even if the month is not mature yet",
     )
     run.add_argument(
         "--min-count",
@@ -52,15 +61,13 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
     run.set_defaults(handler=_run)
 
 
-def last_month(time_zone: str, now: datetime | None = None) -> str:
-    local = (now or datetime.now(UTC)).astimezone(ZoneInfo(time_zone))
-    return previous_months(f"{local.year:04d}-{local.month:02d}", 1)[0]
+def last_month(time_zone: str, now: datetime | None = None) -> Month:
+    return Month.containing(now or datetime.now(UTC), time_zone).shifted(-1)
 
 
 def _run_once(args: argparse.Namespace, settings: Settings) -> None:
-    month = args.month or last_month(settings.timezone)
     try:
-        parse_month(month)
+        month = Month.parse(args.month) if args.month else last_month(settings.timezone)
     except ServiceError as exc:
         raise CliError(exc.message) from None
     factory = create_session_factory(create_db_engine(settings))
@@ -76,25 +83,30 @@ def _run_once(args: argparse.Namespace, settings: Settings) -> None:
                 reference_group=args.reference,
                 tolerance=args.tolerance,
                 min_count=args.min_count,
+                provisional=args.provisional,
                 progress=stderr_progress,
             )
         except ServiceError as exc:
             raise CliError(exc.message) from None
         session.commit()
     stderr_progress(f"done in {time.perf_counter() - started:.2f} s")
-    alerts = run.snapshot["alerts"]
-    print(f"snapshot {run.snapshot_id} of {args.policy} for {month}: {len(alerts)} alert(s)")
-    for alert in alerts:
-        print(f"  [{alert['status']}] v{alert['version']} {alert['message']}")
-    print(f"digest {run.snapshot['digest']}")
+    s = run.snapshot
+    print(
+        f"snapshot {run.snapshot_id} of {args.policy} for {month} ({s.maturity.state}): "
+        f"{len(s.alerts)} alert(s); {s.family.tests} check(s) tested, {s.family.method} at "
+        f"{s.family.level:g}"
+    )
+    for alert in s.alerts:
+        print(f"  [{alert.level}] v{alert.version} {alert.message}")
+    print(f"digest {s.digest}")
 
 
 def _run(args: argparse.Namespace) -> int:
     settings = Settings()
     if args.min_count < 1:
         raise CliError("--min-count must be at least 1")
-    if args.tolerance is not None and not 0 <= args.tolerance <= 1:
-        raise CliError("--tolerance must be between 0 and 1")
+    if args.tolerance is not None and not 0 < args.tolerance <= 0.5:
+        raise CliError("--tolerance must be greater than 0 and at most 0.5")
     if args.every is None:
         _run_once(args, settings)
         return 0

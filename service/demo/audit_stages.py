@@ -17,7 +17,6 @@ from service.demo.story import DemoContext, Stage, default_stages, print_summary
 
 FOLLOW_UP = timedelta(days=30)
 OUTCOME_BATCH = 500
-AUDIT_TOLERANCE = 0.05
 OVERRIDE_REASONS = ("patient-declined", "clinical-judgement", "already-in-programme")
 
 
@@ -84,9 +83,9 @@ def audit_month(ctx: DemoContext) -> None:
         listing = api.get(f"/v1/policies/{ctx.policy_name}/versions", ctx.tokens["author"])
         issued = _issue_month()
         ctx.say(f"[11] auditor-lindqvist runs the audit of {ctx.policy_name} for {issued}")
-        # The derived policy's tolerance is the one it was derived with on calibration data
-        # (often 0); the auditor judges realized gaps against a working tolerance of her own.
-        body = {"policy": ctx.policy_name, "month": issued, "tolerance": AUDIT_TOLERANCE}
+        # The demo's month has not ended, so it is not mature: the auditor asks for the checks
+        # that need outcomes to be decided provisionally (the report says so).
+        body = {"policy": ctx.policy_name, "month": issued, "provisional": True}
         result = api.post("/v1/audits", ctx.tokens["audit"], body)
         paths = {}
         for kind in ("html", "csv"):
@@ -98,7 +97,8 @@ def audit_month(ctx: DemoContext) -> None:
     ctx.say(
         f"     snapshot {result['snapshot_id']}: {counts['recommendations']} recommendations, "
         f"{counts['outcomes']} outcomes, versions {result['versions']} "
-        f"(of {len(listing)} stored), digest {result['digest'][:16]}"
+        f"(of {len(listing)} stored), {result['maturity']} month, digest "
+        f"{result['digest'][:16]}"
     )
     summary = alert_summary(result["alerts"])
     lines = ["", f"Audit of {issued}: {summary[0]}", *summary[1:]]
@@ -109,22 +109,22 @@ def audit_month(ctx: DemoContext) -> None:
 
 
 # The order alerts are told in: what needs action first.
-_STATUS_ORDER = ("breach", "watch", "too-few", "not-identifiable")
+_LEVEL_ORDER = ("breach", "watch")
 
 
 def alert_summary(alerts: list[dict[str, Any]], shown: int = 6) -> list[str]:
-    """A headline with the count per status, then the first ``shown`` alerts, most serious
+    """A headline with the count per level, then the first ``shown`` alerts, most serious
     first; the rest are counted and left to the report (which lists every one)."""
     if not alerts:
-        return ["no alerts"]
-    rank = {status: i for i, status in enumerate(_STATUS_ORDER)}
-    ordered = sorted(alerts, key=lambda a: rank.get(a["status"], len(rank)))
+        return ["no alerts: no check shows a breach"]
+    rank = {level: i for i, level in enumerate(_LEVEL_ORDER)}
+    ordered = sorted(alerts, key=lambda a: rank.get(a["level"], len(rank)))
     counts: dict[str, int] = {}
     for alert in ordered:
-        counts[alert["status"]] = counts.get(alert["status"], 0) + 1
+        counts[alert["level"]] = counts.get(alert["level"], 0) + 1
     head = f"{len(alerts)} alert(s): " + ", ".join(f"{n} {k}" for k, n in counts.items())
     lines = [head]
-    lines += [f"  [{a['status']}] v{a['version']} {a['message']}" for a in ordered[:shown]]
+    lines += [f"  [{a['level']}] v{a['version']} {a['message']}" for a in ordered[:shown]]
     if len(ordered) > shown:
         lines.append(f"  ... and {len(ordered) - shown} more, each listed in the report")
     return lines

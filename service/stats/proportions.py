@@ -22,7 +22,7 @@ def wilson_interval(successes: int, trials: int, z: float = Z95) -> tuple[float,
     return wilson_interval_for_rate(successes / trials, trials, z)
 
 
-def wilson_interval_for_rate(rate: float, trials: int, z: float = Z95) -> tuple[float, float]:
+def wilson_interval_for_rate(rate: float, trials: float, z: float = Z95) -> tuple[float, float]:
     """Wilson interval for an observed proportion ``rate`` out of ``trials``.
 
     For expected rates of a randomized rule (sums of probabilities, not integer counts):
@@ -44,15 +44,19 @@ def wilson_interval_for_rate(rate: float, trials: int, z: float = Z95) -> tuple[
 
 
 def newcombe_difference_interval(
-    successes1: int, trials1: int, successes2: int, trials2: int, z: float = Z95
+    successes1: float, trials1: float, successes2: float, trials2: float, z: float = Z95
 ) -> tuple[float, float]:
-    """Hybrid score interval for p1 - p2 (Newcombe 1998, method 10)."""
+    """Hybrid score interval for p1 - p2 (Newcombe 1998, method 10).
+
+    Counts may be expected counts of a randomized rule (sums of probabilities); the Wilson
+    limits are then those of the observed proportion, as in :func:`wilson_interval_for_rate`.
+    """
     if trials1 == 0 or trials2 == 0:
         return -1.0, 1.0
     p1 = successes1 / trials1
     p2 = successes2 / trials2
-    l1, u1 = wilson_interval(successes1, trials1, z)
-    l2, u2 = wilson_interval(successes2, trials2, z)
+    l1, u1 = wilson_interval_for_rate(p1, trials1, z)
+    l2, u2 = wilson_interval_for_rate(p2, trials2, z)
     d = p1 - p2
     lower = d - math.sqrt((p1 - l1) ** 2 + (u2 - p2) ** 2)
     upper = d + math.sqrt((u1 - p1) ** 2 + (p2 - l2) ** 2)

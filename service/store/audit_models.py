@@ -128,6 +128,9 @@ class AuditSnapshot(Base):
     outcomes: Mapped[int] = mapped_column(Integer)
     digest: Mapped[str] = mapped_column(String(64), unique=True)
     content: Mapped[dict[str, Any]] = mapped_column(JSON)
+    # The same run without small-cell suppression: for the audit role and the cross-month
+    # monitoring only, never published. None on snapshots written before it existed.
+    internal: Mapped[dict[str, Any] | None] = mapped_column(JSON, default=None)
 
 
 AUDIT_COVERING_INDEX = "ix_recommendations_audit"

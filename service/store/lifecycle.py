@@ -104,6 +104,26 @@ def _flush(session: Session) -> None:
         ) from None
 
 
+MAX_TOLERANCE = 0.5
+
+
+def check_auditable(document: PolicyDocument) -> None:
+    """A version that makes promises must say how far realized rates may stray: its audit
+    tests every gap against that tolerance, so it must be positive (never 0 by omission)."""
+    targets = document.targets
+    if targets is None:
+        return
+    tolerance = targets.tolerance
+    if tolerance is None or not 0 < tolerance <= MAX_TOLERANCE:
+        raise Unprocessable(
+            f"targets.tolerance is {tolerance}: a version with targets needs a tolerance "
+            f"greater than 0 and at most {MAX_TOLERANCE} (the largest gap that keeps the "
+            "promise; the audit tests every gap against it)",
+            code="tolerance_required",
+            field="targets.tolerance",
+        )
+
+
 def submit(session: Session, name: str, data: Any, author: str) -> PolicyVersion:
     """Store a new draft version of policy ``name``; its number is returned on the row."""
     document = parse_document(data)
@@ -113,6 +133,7 @@ def submit(session: Session, name: str, data: Any, author: str) -> PolicyVersion
             code="name_mismatch",
             field="name",
         )
+    check_auditable(document)
     number = repo.latest_version_number(session, name) + 1
     row = PolicyVersion(
         name=name,

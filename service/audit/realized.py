@@ -222,15 +222,6 @@ def gap(group: Rate, reference: Rate) -> Gap:
     return Gap(group.value - reference.value, low, high)
 
 
-def reference_group(sizes: dict[str, int], configured: str | None = None) -> str:
-    """The configured group when it has cases, else the largest group (ties: first by name)."""
-    if not sizes:
-        raise ValueError("no groups to choose a reference from")
-    if configured is not None and sizes.get(configured, 0) > 0:
-        return configured
-    return min(sizes, key=lambda g: (-sizes[g], g))
-
-
 def four_fifths_flag(k_group: int, n_group: int, k_max: int, n_max: int) -> bool:
     """29 CFR 1607.4(D): flag iff k_g/n_g < (4/5) k_max/n_max, in exact integer arithmetic.
 
@@ -240,45 +231,6 @@ def four_fifths_flag(k_group: int, n_group: int, k_max: int, n_max: int) -> bool
     if n_group <= 0 or n_max <= 0:
         return False
     return 5 * k_group * n_max < 4 * k_max * n_group
-
-
-def highest_rate_group(fractions: dict[str, tuple[int, int]]) -> str:
-    """The group with the highest k/n, compared exactly (ties: first by name)."""
-    best: str | None = None
-    for g in sorted(fractions):
-        k, n = fractions[g]
-        if n <= 0:
-            continue
-        if best is None:
-            best = g
-            continue
-        kb, nb = fractions[best]
-        if k * nb > kb * n:
-            best = g
-    if best is None:
-        raise ValueError("no group has any cases")
-    return best
-
-
-@dataclass(frozen=True, slots=True)
-class FourFifths:
-    ratio: float | None
-    flagged: bool
-    highest_group: str
-
-
-def four_fifths(fractions: dict[str, tuple[int, int]]) -> dict[str, FourFifths]:
-    """Ratio of each group's favourable rate to the highest one, and the exact flag."""
-    top = highest_rate_group(fractions)
-    k_max, n_max = fractions[top]
-    out: dict[str, FourFifths] = {}
-    for g, (k, n) in fractions.items():
-        if n <= 0:
-            out[g] = FourFifths(None, False, top)
-            continue
-        ratio = None if k_max == 0 else (k * n_max) / (k_max * n)
-        out[g] = FourFifths(ratio, four_fifths_flag(k, n, k_max, n_max), top)
-    return out
 
 
 @dataclass(frozen=True, slots=True)

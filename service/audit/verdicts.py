@@ -1,0 +1,446 @@
+"""Monthly verdicts: every status is the outcome of a named test, controlled over the month.
+
+A *check* compares one quantity with the band a policy version promised for it:
+
+- ``parity``: a group's rate minus the reference group's, for each rate the version's criterion
+  bounds (equal opportunity: TPR; predictive equality: FPR; equalized odds: both; demographic
+  parity: action rate); band ``[-eps, +eps]``.
+- ``four-fifths``: a group's favourable rate divided by the comparator group's, for versions
+  derived under the four-fifths criterion; band ``[0.8, inf)`` (29 CFR 1607.4(D)).
+- ``promise``: a group's realized action rate, TPR and FPR minus the rates the version promised
+  for it; band ``[-eps, +eps]``. With out-of-sample calibration counts stored in the version the
+  promise is a second sample; without them it is taken as an exact number.
+
+Each tested check has two p-values (``service.stats``): one whose rejection shows the quantity
+INSIDE its band (two one-sided tests, Schuirmann 1987) and one whose rejection shows it OUTSIDE
+(the smaller one-sided p-value at the nearer edge, doubled for the two directions; one-sided
+for four-fifths). Differences of two proportions use the Miettinen-Nurminen score test, a rate
+against a fixed number exact binomial tests, the four-fifths ratio the log (Katz) test.
+
+All checks of one policy in one month form the family. The outside p-values are adjusted
+together (Holm 1979, or Benjamini & Yekutieli 2001, as the version's audit plan says), and so
+are the inside p-values; then ``breach`` iff the adjusted outside p-value is at most the level,
+``holds`` iff the adjusted inside p-value is, and otherwise ``undecided``: neither shown.
+Checks that are not tested carry a status saying why: ``too-few`` (a denominator below the
+minimum count), ``not-identifiable`` (selective labels), ``pending`` (the month's outcomes are
+not mature yet), ``outside-promise`` (the version recorded at approval that the criterion does
+not cover this group).
+
+Everything here is pure: counts in, checks out.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, replace
+from enum import StrEnum
+
+from service.audit.realized import CellCounts, Favourable, Observability, fraction_of, identifiable
+from service.policy.document import AuditPlan, Criterion, GroupTarget, PolicyDocument
+from service.stats.differences import difference_evidence
+from service.stats.margins import MarginEvidence
+from service.stats.multiplicity import Method, adjust_p_values
+from service.stats.one_sample import rate_evidence
+from service.stats.proportions import newcombe_difference_interval, wilson_interval_for_rate
+from service.stats.ratios import katz_ratio_interval, ratio_floor_evidence
+
+FOUR_FIFTHS_FLOOR = 0.8
+DEFAULT_TOLERANCE = 0.05
+"""Used only for a stored version whose targets carry no positive tolerance (new versions are
+refused at submit); every report says when it was used."""
+DEFAULT_MIN_COUNT = 20
+"""Smallest denominator a check is tested on. Common practice, after the CDC's habit of
+flagging rates built on fewer than 20 events as unstable."""
+
+CRITERION_METRICS: dict[Criterion, tuple[str, ...]] = {
+    Criterion.MAX_UTILITY: (),
+    Criterion.SINGLE_CUT: (),
+    Criterion.DEMOGRAPHIC_PARITY: ("action_rate",),
+    Criterion.EQUAL_OPPORTUNITY: ("tpr",),
+    Criterion.PREDICTIVE_EQUALITY: ("fpr",),
+    Criterion.EQUALIZED_ODDS: ("tpr", "fpr"),
+    Criterion.FOUR_FIFTHS: (),
+}
+"""The rates whose gaps to the reference group each criterion bounds by its tolerance."""
+
+PROMISED_METRICS = ("action_rate", "tpr", "fpr")
+OUTCOME_METRICS = frozenset({"prevalence", "tpr", "fpr", "fnr", "ppv", "npv"})
+"""Rates that need outcomes: undecided (``pending``) while a month is not mature."""
+
+
+class Status(StrEnum):
+    BREACH = "breach"
+    UNDECIDED = "undecided"
+    HOLDS = "holds"
+    TOO_FEW = "too-few"
+    NOT_IDENTIFIABLE = "not-identifiable"
+    PENDING = "pending"
+    OUTSIDE_PROMISE = "outside-promise"
+
+
+class CheckKind(StrEnum):
+    PARITY = "parity"
+    FOUR_FIFTHS = "four-fifths"
+    PROMISE = "promise"
+
+
+class Procedure(StrEnum):
+    SCORE_DIFFERENCE = "score-difference"
+    EXACT_BINOMIAL = "exact-binomial"
+    LOG_RATIO = "log-ratio"
+
+
+PROCEDURES: dict[Procedure, str] = {
+    Procedure.SCORE_DIFFERENCE: (
+        "difference of two proportions: Miettinen-Nurminen score tests (Miettinen & Nurminen "
+        "1985) against the edges of the tolerance band"
+    ),
+    Procedure.EXACT_BINOMIAL: (
+        "one proportion against a fixed promised rate: exact binomial tests against the edges "
+        "of the tolerance band"
+    ),
+    Procedure.LOG_RATIO: (
+        "ratio of two proportions: log-ratio z tests with the Katz standard error (Katz, "
+        "Baptista, Azen & Pike 1978) against the four-fifths line"
+    ),
+}
+
+
+@dataclass(frozen=True, slots=True)
+class Band:
+    """The promised band of a check's quantity; ``high`` None means unbounded above."""
+
+    low: float
+    high: float | None
+
+
+@dataclass(frozen=True, slots=True)
+class Evidence:
+    procedure: Procedure
+    p_inside: float
+    p_outside: float
+    side: str
+    p_inside_adjusted: float | None = None
+    p_outside_adjusted: float | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class Check:
+    """One check of one version in one month, with its (true, unsuppressed) figures."""
+
+    version: int
+    kind: CheckKind
+    metric: str
+    group: str
+    against: str
+    band: Band
+    status: Status = Status.UNDECIDED
+    estimate: float | None = None
+    low: float | None = None
+    high: float | None = None
+    """The descriptive 95% interval of the estimate (not adjusted for multiplicity)."""
+    evidence: Evidence | None = None
+    figures_from: tuple[tuple[str, str], ...] = ()
+    """(group, count name) pairs the figures are computed from, for small-cell suppression."""
+
+    @property
+    def key(self) -> str:
+        return f"v{self.version}/{self.kind.value}/{self.metric}/{self.group}"
+
+
+@dataclass(frozen=True, slots=True)
+class VersionSettings:
+    """What one version's checks are decided against, and where each setting came from."""
+
+    tolerance: float
+    tolerance_source: str  # "auditor", "version" or "default"
+    reference_group: str | None
+    reference_source: str
+    comparator_group: str | None
+    comparator_source: str
+    plan: AuditPlan
+
+
+def resolve_settings(
+    document: PolicyDocument,
+    cells: Mapping[str, CellCounts],
+    reference_override: str | None,
+    tolerance_override: float | None,
+) -> VersionSettings:
+    """Tolerance, reference group and four-fifths comparator of one version."""
+    targets = document.targets
+    if tolerance_override is not None:
+        tolerance, t_source = tolerance_override, "auditor"
+    elif targets is not None and targets.tolerance:
+        tolerance, t_source = float(targets.tolerance), "version"
+    else:
+        tolerance, t_source = DEFAULT_TOLERANCE, "default"
+
+    calibration_n = {
+        g: t.n for g, t in (targets.groups.items() if targets else ()) if t.n is not None
+    }
+    if reference_override is not None:
+        reference, r_source = reference_override, "auditor"
+    elif targets is not None and targets.reference_group is not None:
+        reference, r_source = targets.reference_group, "version"
+    elif calibration_n:
+        reference = min(calibration_n, key=lambda g: (-calibration_n[g], g))
+        r_source = "largest calibration group"
+    elif cells:
+        reference = min(cells, key=lambda g: (-cells[g].n, g))
+        r_source = "largest group this month"
+    else:
+        reference, r_source = None, "none"
+
+    favourable = document.favourable
+    if reference_override is not None or (targets and targets.reference_group):
+        comparator, c_source = reference, r_source
+    elif targets is not None and targets.groups:
+        comparator = max(
+            sorted(targets.groups),
+            key=lambda g: _favourable_rate(targets.groups[g], favourable),
+        )
+        c_source = "highest favourable rate in calibration"
+    else:
+        comparator, c_source = None, "none"
+    return VersionSettings(
+        tolerance, t_source, reference, r_source, comparator, c_source, document.audit_plan
+    )
+
+
+def _favourable_rate(target: GroupTarget, favourable: Favourable) -> float:
+    rate = float(target.action_rate)
+    return rate if favourable == "action" else 1.0 - rate
+
+
+@dataclass(frozen=True, slots=True)
+class MonthContext:
+    min_count: int
+    decide_outcomes: bool
+    """False while the month is not mature (outcome-based checks are then ``pending``)."""
+
+
+def _counts(cell: CellCounts, metric: str, favourable: Favourable) -> tuple[int, int, str, str]:
+    num, den = fraction_of(metric, favourable)
+    values = cell.all_counts()
+    return values[num], values[den], num, den
+
+
+def _untested(
+    metric: str,
+    observed_after: Observability,
+    context: MonthContext,
+    denominators: Sequence[float],
+) -> Status | None:
+    if not identifiable(metric, observed_after):
+        return Status.NOT_IDENTIFIABLE
+    if metric in OUTCOME_METRICS and not context.decide_outcomes:
+        return Status.PENDING
+    if min(denominators) < context.min_count:
+        return Status.TOO_FEW
+    return None
+
+
+def _evidence(test: Procedure, e: MarginEvidence) -> Evidence:
+    return Evidence(test, e.p_inside, e.p_outside, e.side)
+
+
+def version_checks(
+    version: int,
+    document: PolicyDocument,
+    cells: Mapping[str, CellCounts],
+    settings: VersionSettings,
+    context: MonthContext,
+) -> list[Check]:
+    """Every check of one version, tested where it can be (statuses not yet decided)."""
+    targets = document.targets
+    if targets is None:
+        return []
+    fav, obs = document.favourable, document.outcome_observed_after
+    eps = settings.tolerance
+    checks: list[Check] = []
+    outside = {g: t.outside_promise for g, t in targets.groups.items() if t.outside_promise}
+
+    ref = settings.reference_group
+    for metric in CRITERION_METRICS[targets.criterion]:
+        for g in sorted(cells):
+            if g == ref or ref is None:
+                continue
+            band = Band(-eps, eps)
+            base = Check(version, CheckKind.PARITY, metric, g, ref, band)
+            if g in outside:
+                checks.append(replace(base, status=Status.OUTSIDE_PROMISE))
+                continue
+            k1, n1, num, den = _counts(cells[g], metric, fav)
+            if ref not in cells:
+                checks.append(replace(base, status=Status.TOO_FEW))
+                continue
+            k2, n2, _, _ = _counts(cells[ref], metric, fav)
+            status = _untested(metric, obs, context, (n1, n2))
+            figures = ((g, num), (g, den), (ref, num), (ref, den))
+            if status is not None:
+                checks.append(replace(base, status=status, figures_from=figures))
+                continue
+            low, high = newcombe_difference_interval(k1, n1, k2, n2)
+            evidence = _evidence(
+                Procedure.SCORE_DIFFERENCE, difference_evidence(k1, n1, k2, n2, eps)
+            )
+            checks.append(
+                replace(
+                    base,
+                    estimate=k1 / n1 - k2 / n2,
+                    low=low,
+                    high=high,
+                    evidence=evidence,
+                    figures_from=figures,
+                )
+            )
+
+    if targets.criterion is Criterion.FOUR_FIFTHS and settings.comparator_group is not None:
+        comp = settings.comparator_group
+        for g in sorted(cells):
+            if g == comp:
+                continue
+            band = Band(FOUR_FIFTHS_FLOOR, None)
+            base = Check(version, CheckKind.FOUR_FIFTHS, "favourable_rate", g, comp, band)
+            if g in outside:
+                checks.append(replace(base, status=Status.OUTSIDE_PROMISE))
+                continue
+            if comp not in cells:
+                checks.append(replace(base, status=Status.TOO_FEW))
+                continue
+            k1, n1, num, den = _counts(cells[g], "favourable_rate", fav)
+            k2, n2, _, _ = _counts(cells[comp], "favourable_rate", fav)
+            figures = ((g, num), (g, den), (comp, num), (comp, den))
+            status = _untested("favourable_rate", obs, context, (n1, n2))
+            if status is None and k2 == 0:
+                status = Status.TOO_FEW  # no favourable decision at all in the comparator
+            if status is not None:
+                checks.append(replace(base, status=status, figures_from=figures))
+                continue
+            low, high = katz_ratio_interval(k1, n1, k2, n2)
+            evidence = _evidence(
+                Procedure.LOG_RATIO, ratio_floor_evidence(k1, n1, k2, n2, FOUR_FIFTHS_FLOOR)
+            )
+            checks.append(
+                replace(
+                    base,
+                    estimate=(k1 / n1) / (k2 / n2),
+                    low=low,
+                    high=high,
+                    evidence=evidence,
+                    figures_from=figures,
+                )
+            )
+
+    for g in sorted(targets.groups):
+        if g not in cells:
+            continue
+        target = targets.groups[g]
+        for metric in PROMISED_METRICS:
+            promised = float(getattr(target, metric))
+            band = Band(promised - eps, promised + eps)
+            base = Check(version, CheckKind.PROMISE, metric, g, "promised", band)
+            k1, n1, num, den = _counts(cells[g], metric, fav)
+            own = ((g, num), (g, den))
+            calibration = _calibration_fraction(target, metric)
+            denominators = (n1,) if calibration is None else (n1, calibration[1])
+            status = _untested(metric, obs, context, denominators)
+            if status is not None:
+                checks.append(replace(base, status=status, figures_from=own))
+                continue
+            if calibration is None:
+                low, high = wilson_interval_for_rate(k1 / n1, n1)
+                evidence = _evidence(Procedure.EXACT_BINOMIAL, rate_evidence(k1, n1, promised, eps))
+                checks.append(
+                    replace(
+                        base,
+                        estimate=k1 / n1,
+                        low=low,
+                        high=high,
+                        evidence=evidence,
+                        figures_from=own,
+                    )
+                )
+                continue
+            kc, nc = calibration
+            d_low, d_high = newcombe_difference_interval(k1, n1, kc, nc)
+            evidence = _evidence(
+                Procedure.SCORE_DIFFERENCE, difference_evidence(k1, n1, kc, nc, eps)
+            )
+            # The estimate is the realized rate; its interval is the promise plus the Newcombe
+            # interval of (realized - promised), so both samples' uncertainty shows.
+            checks.append(
+                replace(
+                    base,
+                    band=Band(kc / nc - eps, kc / nc + eps),
+                    estimate=k1 / n1,
+                    low=kc / nc + d_low,
+                    high=kc / nc + d_high,
+                    evidence=evidence,
+                    figures_from=figures,
+                )
+            )
+    return checks
+
+
+def _calibration_fraction(target: GroupTarget, metric: str) -> tuple[float, float] | None:
+    """(count, denominator) of ``metric`` in the version's out-of-sample calibration counts."""
+    c = target.out_of_sample
+    if c is None:
+        return None
+    if metric == "action_rate":
+        k, n = c.tp + c.fp, float(c.n)
+    elif metric == "tpr":
+        k, n = c.tp, float(c.positives)
+    elif metric == "fpr":
+        k, n = c.fp, float(c.n - c.positives)
+    else:
+        raise ValueError(f"no calibration fraction for {metric!r}")
+    return min(k, n), n  # sums of probabilities may pass n by rounding
+
+
+@dataclass(frozen=True, slots=True)
+class Family:
+    method: Method
+    level: float
+    tests: int
+
+
+def strictest_plan(plans: Sequence[AuditPlan]) -> AuditPlan:
+    """One plan for a month several versions decided in: the lowest level, Holm if any version
+    asks for it (family-wise control is the stronger promise), the longest maturity."""
+    if not plans:
+        return AuditPlan()
+    return AuditPlan(
+        level=min(p.level for p in plans),
+        multiplicity="holm"
+        if any(p.multiplicity == "holm" for p in plans)
+        else "benjamini-yekutieli",
+        maturity_share=max(p.maturity_share for p in plans),
+        maturity_days=max(p.maturity_days for p in plans),
+    )
+
+
+def decide(checks: Sequence[Check], plan: AuditPlan) -> tuple[list[Check], Family]:
+    """Adjust the family's p-values and give every tested check its status."""
+    tested = [i for i, c in enumerate(checks) if c.evidence is not None]
+    method: Method = plan.multiplicity
+    outside = adjust_p_values([_ev(checks[i]).p_outside for i in tested], method)
+    inside = adjust_p_values([_ev(checks[i]).p_inside for i in tested], method)
+    out = list(checks)
+    for j, i in enumerate(tested):
+        ev = replace(_ev(checks[i]), p_outside_adjusted=outside[j], p_inside_adjusted=inside[j])
+        if outside[j] <= plan.level:
+            status = Status.BREACH
+        elif inside[j] <= plan.level:
+            status = Status.HOLDS
+        else:
+            status = Status.UNDECIDED
+        out[i] = replace(checks[i], evidence=ev, status=status)
+    return out, Family(method, plan.level, len(tested))
+
+
+def _ev(check: Check) -> Evidence:
+    assert check.evidence is not None
+    return check.evidence

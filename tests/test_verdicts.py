@@ -1,0 +1,276 @@
+"""Monthly verdicts: each status comes from a named test, adjusted over the month's family.
+
+The p-values are recomputed here with general-purpose reference implementations (statsmodels,
+scipy), independently of ``service.stats``, and the statuses are checked against them.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import pytest
+from scipy.stats import binomtest
+from statsmodels.stats.multitest import multipletests
+from statsmodels.stats.proportion import test_proportions_2indep, tost_proportions_2indep
+
+from service.audit.realized import CellCounts
+from service.audit.verdicts import (
+    DEFAULT_TOLERANCE,
+    Check,
+    CheckKind,
+    MonthContext,
+    Procedure,
+    Status,
+    decide,
+    resolve_settings,
+    strictest_plan,
+    version_checks,
+)
+from service.policy.document import AuditPlan, PolicyDocument
+
+EPS = 0.05
+DECIDE = MonthContext(min_count=20, decide_outcomes=True)
+
+
+def document(criterion: str = "equal-opportunity", **targets: Any) -> PolicyDocument:
+    cut = {"steps": [{"from": 0.2, "probability": 1.0}]}
+    groups = {
+        "a": {"n": 5000, "action_rate": 0.3, "tpr": 0.7, "fpr": 0.2},
+        "b": {"n": 2000, "action_rate": 0.3, "tpr": 0.7, "fpr": 0.2},
+        "c": {"n": 300, "action_rate": 0.35, "tpr": 0.7, "fpr": 0.2},
+    }
+    return PolicyDocument.model_validate(
+        {
+            "name": "p",
+            "score_meaning": "P(y = 1)",
+            "action_label": "act",
+            "no_action_label": "do not act",
+            "favourable": "action",
+            "costs": {"false_positive": 1, "false_negative": 4},
+            "groups": {"attributes": ["g"], "known": ["a", "b", "c"]},
+            "rules": {"a": cut, "b": cut, "c": cut},
+            "targets": {"criterion": criterion, "tolerance": EPS, "groups": groups, **targets},
+        }
+    )
+
+
+def cells(**by_group: tuple[int, int, int, int, int, int]) -> dict[str, CellCounts]:
+    """(n, actions, observed, positives, tp, fp) per group."""
+    return {
+        g: CellCounts(n=n, actions=a, observed=o, positives=p, tp=tp, fp=fp)
+        for g, (n, a, o, p, tp, fp) in by_group.items()
+    }
+
+
+BASE = cells(
+    a=(4000, 1200, 4000, 800, 560, 640),
+    b=(1500, 450, 1500, 300, 207, 243),
+    c=(300, 105, 300, 60, 41, 64),
+)
+
+
+def run(doc: PolicyDocument, cs: dict[str, CellCounts], context: MonthContext = DECIDE, **kw: Any):
+    settings = resolve_settings(doc, cs, kw.get("reference"), kw.get("tolerance"))
+    checks = version_checks(1, doc, cs, settings, context)
+    return decide(checks, strictest_plan([settings.plan]))
+
+
+def find(checks: list[Check], kind: CheckKind, metric: str, group: str) -> Check:
+    (c,) = [x for x in checks if (x.kind, x.metric, x.group) == (kind, metric, group)]
+    return c
+
+
+def test_parity_p_values_are_the_score_tests_of_statsmodels() -> None:
+    checks, family = run(document(), BASE)
+    c = find(checks, CheckKind.PARITY, "tpr", "b")
+    assert c.against == "a"  # the largest calibration group
+    assert c.evidence is not None and c.evidence.procedure is Procedure.SCORE_DIFFERENCE
+    k1, n1, k2, n2 = 207, 300, 560, 800
+    # statsmodels: Miettinen-Nurminen score test (method="score", correction=True).
+    up = test_proportions_2indep(
+        k1, n1, k2, n2, value=EPS, method="score", compare="diff", alternative="larger",
+        correction=True,
+    ).pvalue  # fmt: skip
+    down = test_proportions_2indep(
+        k1, n1, k2, n2, value=-EPS, method="score", compare="diff", alternative="smaller",
+        correction=True,
+    ).pvalue  # fmt: skip
+    assert c.evidence.p_outside == pytest.approx(min(1.0, 2 * min(up, down)), rel=1e-9)
+    tost = tost_proportions_2indep(
+        k1, n1, k2, n2, low=-EPS, upp=EPS, method="score", compare="diff", correction=True
+    )
+    assert c.evidence.p_inside == pytest.approx(tost[0], rel=1e-9)
+    assert c.estimate == pytest.approx(k1 / n1 - k2 / n2)
+
+
+def test_the_family_is_adjusted_by_holm_over_every_tested_check() -> None:
+    checks, family = run(document(), BASE)
+    tested = [c for c in checks if c.evidence is not None]
+    assert family.tests == len(tested) == 2 + 9  # two parity gaps, nine promises
+    raw_out = [c.evidence.p_outside for c in tested]  # type: ignore[union-attr]
+    raw_in = [c.evidence.p_inside for c in tested]  # type: ignore[union-attr]
+    # statsmodels multipletests(method="holm") (Holm 1979).
+    want_out = multipletests(raw_out, method="holm")[1]
+    want_in = multipletests(raw_in, method="holm")[1]
+    for c, wo, wi in zip(tested, want_out, want_in, strict=True):
+        assert c.evidence is not None
+        assert c.evidence.p_outside_adjusted == pytest.approx(wo, rel=1e-12)
+        assert c.evidence.p_inside_adjusted == pytest.approx(wi, rel=1e-12)
+        if wo <= 0.05:
+            assert c.status is Status.BREACH
+        elif wi <= 0.05:
+            assert c.status is Status.HOLDS
+        else:
+            assert c.status is Status.UNDECIDED
+
+
+def test_benjamini_yekutieli_when_the_plan_asks_for_it() -> None:
+    doc = document().model_copy(update={"audit": AuditPlan(multiplicity="benjamini-yekutieli")})
+    checks, family = run(doc, BASE)
+    assert family.method == "benjamini-yekutieli"
+    tested = [c for c in checks if c.evidence is not None]
+    raw = [c.evidence.p_outside for c in tested]  # type: ignore[union-attr]
+    want = multipletests(raw, method="fdr_by")[1]  # statsmodels, Benjamini & Yekutieli 2001
+    got = [c.evidence.p_outside_adjusted for c in tested]  # type: ignore[union-attr]
+    assert got == pytest.approx(list(want), rel=1e-12)
+
+
+def test_a_large_real_gap_is_a_breach_a_tiny_one_holds_a_noisy_one_is_undecided() -> None:
+    cs = cells(
+        a=(20000, 6000, 20000, 4000, 2800, 3200),
+        b=(20000, 6000, 20000, 4000, 2000, 3200),  # TPR 0.50 vs 0.70: far beyond 0.05
+        c=(20000, 6000, 20000, 4000, 2810, 3200),  # TPR 0.7025: well inside
+    )
+    checks, _ = run(document(), cs)
+    assert find(checks, CheckKind.PARITY, "tpr", "b").status is Status.BREACH
+    assert find(checks, CheckKind.PARITY, "tpr", "c").status is Status.HOLDS
+    noisy = cells(a=(400, 120, 400, 80, 56, 64), b=(400, 120, 400, 80, 50, 64))
+    checks, _ = run(document(), noisy)
+    # TPR 0.625 vs 0.70 on 80 positives each: neither shown.
+    assert find(checks, CheckKind.PARITY, "tpr", "b").status is Status.UNDECIDED
+
+
+def test_four_fifths_uses_the_calibration_comparator_not_this_months_maximum() -> None:
+    doc = document("four-fifths")
+    # Group c had the highest favourable rate in calibration (0.35); this month b happens to
+    # have the highest realized one. The comparator stays c.
+    cs = cells(
+        a=(4000, 1000, 4000, 800, 500, 500),
+        b=(1500, 600, 1500, 300, 200, 400),
+        c=(300, 100, 300, 60, 40, 60),
+    )
+    checks, _ = run(doc, cs)
+    ff = [c for c in checks if c.kind is CheckKind.FOUR_FIFTHS]
+    assert {c.against for c in ff} == {"c"} and {c.group for c in ff} == {"a", "b"}
+    a = find(checks, CheckKind.FOUR_FIFTHS, "favourable_rate", "a")
+    assert a.evidence is not None and a.evidence.procedure is Procedure.LOG_RATIO
+    # statsmodels: log-ratio test (Katz standard error) of H0: ratio >= 0.8.
+    want = test_proportions_2indep(
+        1000, 4000, 100, 300, value=0.8, method="log", compare="ratio", alternative="smaller"
+    ).pvalue
+    assert a.evidence.p_outside == pytest.approx(want, rel=1e-9)
+    assert a.estimate == pytest.approx((1000 / 4000) / (100 / 300))  # 0.75: below the line
+    # ... but its interval reaches 0.8, so the rule's point flag alone is not a breach.
+    assert a.high is not None and a.high > 0.8
+    assert a.status is not Status.BREACH
+
+
+def test_a_configured_reference_is_both_gap_reference_and_comparator() -> None:
+    doc = document("four-fifths", reference_group="b")
+    settings = resolve_settings(doc, BASE, None, None)
+    assert (settings.reference_group, settings.comparator_group) == ("b", "b")
+    assert settings.reference_source == "version"
+    override = resolve_settings(doc, BASE, "c", None)
+    assert (override.reference_group, override.comparator_group) == ("c", "c")
+
+
+def test_promises_without_calibration_counts_use_exact_binomial_tests() -> None:
+    checks, _ = run(document(), BASE)
+    c = find(checks, CheckKind.PROMISE, "tpr", "b")
+    assert c.evidence is not None and c.evidence.procedure is Procedure.EXACT_BINOMIAL
+    # scipy binomtest: exact one-sided tests at the band's edges 0.65 and 0.75.
+    above = binomtest(207, 300, 0.75, alternative="greater").pvalue
+    below = binomtest(207, 300, 0.65, alternative="less").pvalue
+    assert c.evidence.p_outside == pytest.approx(min(1.0, 2 * min(above, below)), rel=1e-9)
+    inside = max(
+        binomtest(207, 300, 0.75, alternative="less").pvalue,
+        binomtest(207, 300, 0.65, alternative="greater").pvalue,
+    )
+    assert c.evidence.p_inside == pytest.approx(inside, rel=1e-9)
+
+
+def test_promises_with_out_of_sample_counts_are_a_second_sample() -> None:
+    base = document()
+    assert base.targets is not None
+    groups = dict(base.targets.groups)
+    groups["b"] = groups["b"].model_copy(
+        update={"out_of_sample": {"n": 2000, "positives": 400, "tp": 281.5, "fp": 320.25}}
+    )
+    doc = PolicyDocument.model_validate(
+        {**base.model_dump(mode="json", by_alias=True, exclude_none=True),
+         "targets": {**base.targets.model_dump(mode="json", exclude_none=True),
+                     "groups": {g: t.model_dump(mode="json", exclude_none=True)
+                                for g, t in groups.items()}}}
+    )  # fmt: skip
+    checks, _ = run(doc, BASE)
+    c = find(checks, CheckKind.PROMISE, "tpr", "b")
+    assert c.evidence is not None and c.evidence.procedure is Procedure.SCORE_DIFFERENCE
+    # The band is centred on the calibration rate 281.5 / 400, not on the stored 0.7.
+    assert c.band.low == pytest.approx(281.5 / 400 - EPS)
+    up = test_proportions_2indep(
+        207, 300, 281.5, 400, value=EPS, method="score", compare="diff", alternative="larger",
+        correction=True,
+    ).pvalue  # fmt: skip
+    down = test_proportions_2indep(
+        207, 300, 281.5, 400, value=-EPS, method="score", compare="diff", alternative="smaller",
+        correction=True,
+    ).pvalue  # fmt: skip
+    assert c.evidence.p_outside == pytest.approx(min(1.0, 2 * min(up, down)), rel=1e-9)
+
+
+def test_untested_checks_say_why_and_stay_out_of_the_family() -> None:
+    small = cells(a=(4000, 1200, 4000, 800, 560, 640), b=(50, 15, 50, 10, 7, 8))
+    checks, family = run(document(), small)
+    assert find(checks, CheckKind.PARITY, "tpr", "b").status is Status.TOO_FEW
+    assert find(checks, CheckKind.PROMISE, "action_rate", "b").status is not Status.TOO_FEW
+    pending, _ = run(document(), BASE, MonthContext(min_count=20, decide_outcomes=False))
+    assert find(pending, CheckKind.PARITY, "tpr", "b").status is Status.PENDING
+    assert find(pending, CheckKind.PROMISE, "tpr", "a").status is Status.PENDING
+    # The action rate needs no outcome: decided even in an immature month.
+    assert find(pending, CheckKind.PROMISE, "action_rate", "a").evidence is not None
+    doc = document().model_copy(update={"outcome_observed_after": "action"})
+    selective, _ = run(doc, BASE)
+    assert find(selective, CheckKind.PARITY, "tpr", "b").status is Status.NOT_IDENTIFIABLE
+    assert family.tests == sum(1 for c in checks if c.evidence is not None)
+
+
+def test_groups_recorded_outside_the_promise_are_exempt_from_the_criterion() -> None:
+    base = document()
+    assert base.targets is not None
+    data = base.model_dump(mode="json", by_alias=True, exclude_none=True)
+    data["targets"]["groups"]["c"]["outside_promise"] = "its parent rule misses TPR by 0.09"
+    checks, _ = run(PolicyDocument.model_validate(data), BASE)
+    assert find(checks, CheckKind.PARITY, "tpr", "c").status is Status.OUTSIDE_PROMISE
+    # Its own promised rates are still checked.
+    assert find(checks, CheckKind.PROMISE, "tpr", "c").evidence is not None
+
+
+def test_tolerance_sources() -> None:
+    doc = document()
+    assert resolve_settings(doc, BASE, None, None).tolerance == EPS
+    assert resolve_settings(doc, BASE, None, 0.2).tolerance_source == "auditor"
+    data = doc.model_dump(mode="json", by_alias=True, exclude_none=True)
+    data["targets"]["tolerance"] = 0.0  # a version stored before tolerances were required
+    legacy = resolve_settings(PolicyDocument.model_validate(data), BASE, None, None)
+    assert (legacy.tolerance, legacy.tolerance_source) == (DEFAULT_TOLERANCE, "default")
+
+
+def test_the_strictest_plan_governs_a_month_with_several_versions() -> None:
+    plan = strictest_plan(
+        [
+            AuditPlan(level=0.1, multiplicity="benjamini-yekutieli", maturity_days=30),
+            AuditPlan(level=0.05, multiplicity="holm", maturity_share=0.8),
+        ]
+    )
+    assert (plan.level, plan.multiplicity) == (0.05, "holm")
+    assert (plan.maturity_share, plan.maturity_days) == (0.9, 60)
