@@ -38,7 +38,7 @@ action). In mode "action" the p = 1 zone is all on O and the p = 0 zone all on H
    there are hidden cases); and when the outcome is not proportional to the weight the ratio
    has the smaller variance (Hajek 1971, comment in Godambe & Sprott, Foundations of
    Statistical Inference, p. 236; Sarndal, Swensson & Wretman 1992, Model Assisted Survey
-   Sampling, section 5.7 -- both from memory). Its bias is of order 1/(observed band cases).
+   Sampling -- both from memory). Its bias is of order 1/(observed band cases).
 
 3. Bounds (cases whose outcome is unknown and has no weight): the certain zone on H (p = 0 in
    mode "action", p = 1 in mode "no-action"), the band's hidden cases when no band case was
