@@ -117,7 +117,7 @@ def test_binomial_step_distribution_matches_scipy() -> None:
 
 
 def test_risk_adjusted_llr_sums_the_per_case_terms() -> None:
-    # Steiner et al. 2000, eq. (2): W_i = y_i ln R - ln(1 - p_i + R p_i), summed here case by case.
+    # Steiner et al. 2000: W_i = y_i ln R - ln(1 - p_i + R p_i), summed here case by case.
     rng = np.random.default_rng(3)
     p = rng.uniform(0.01, 0.6, size=50)
     y = (rng.random(50) < p).astype(float)
