@@ -33,6 +33,7 @@ def score_test_difference(
     """Miettinen-Nurminen score test of H0: p1 - p2 <= value ("larger") or >= value
     ("smaller").
 
+    Requires 0 <= k <= n, n > 0, n1 + n2 > 1 (for N / (N - 1)) and -1 < value < 1.
     When the restricted variance is zero (only possible for ``value == 0`` with no successes
     or no failures at all, where the observed difference is exactly 0) the data carry no
     evidence against the null: statistic 0 and p-value 1.
