@@ -170,6 +170,8 @@ def test_roles(client: TestClient, make_key: Callable[..., str]) -> None:
                 assert r.status_code == 403 and r.json()["error"]["code"] == "forbidden", where
     audit = tokens["audit"]
     assert client.get(f"/v1/reports/{POLICY}/2026-10", headers=audit).status_code == 404
+    # A month without decisions is refused, and no snapshot is stored for it.
     r = client.post("/v1/audits", json={"policy": POLICY, "month": "2026-10"}, headers=audit)
-    assert r.status_code == 201 and r.json()["row_counts"]["recommendations"] == 0
+    assert r.status_code == 422 and r.json()["error"]["code"] == "empty_month"
+    assert client.get(f"/v1/reports/{POLICY}", headers=audit).json()["months"] == []
     assert client.get(f"/v1/reports/{POLICY}/2026-10.pdf", headers=audit).status_code == 404

@@ -149,7 +149,17 @@ def test_submit_refuses_invalid_documents(client: TestClient, tokens: dict[str, 
     assert "rules" in (r.json()["error"]["field"] or "")
     r = client.post("/v1/policies/other/versions", json=make_policy(), headers=admin)
     assert r.status_code == 422 and r.json()["error"]["code"] == "name_mismatch"
+    # A version that makes promises must say how far realized rates may stray.
+    targets = {"criterion": "equal-opportunity", "groups": {}}
+    for tolerance in (None, 0.0, 0.6):
+        doc = make_policy(targets={**targets, "tolerance": tolerance})
+        r = client.post(f"{P}/versions", json=doc, headers=admin)
+        assert r.status_code == 422, tolerance
+        assert r.json()["error"]["code"] == "tolerance_required"
+        assert r.json()["error"]["field"] == "targets.tolerance"
     assert client.get(f"{P}/versions", headers=admin).status_code == 404
+    doc = make_policy(targets={**targets, "tolerance": 0.05})
+    assert client.post(f"{P}/versions", json=doc, headers=admin).status_code == 201
 
 
 def test_diff_reads_rule_by_rule(

@@ -15,9 +15,10 @@ from fastapi.testclient import TestClient
 from sqlalchemy.orm import Session, sessionmaker
 from statsmodels.stats.proportion import proportion_confint
 
-from service.audit.job import month_bounds, run_audit
-from service.audit.snapshot import digest
+from service.audit.job import run_audit
+from service.audit.month import Month
 from service.audit.realized import RATE_FRACTIONS
+from service.audit.snapshot_model import Snapshot
 from service.stats.proportions import wilson_interval
 from service.store.models import Recommendation
 from tests.audit_helpers import POLICY, audit_policy, put_live
@@ -143,7 +144,7 @@ def test_report_equals_direct_computation(
     put_live(client, make_key, shadow=_shadow_doc())
     rows = _replay(client, bearer(make_key("scoring")), 900, seed=41)
     month = rows[0]["issued_at"][:7]
-    start, end = month_bounds(month, "UTC")
+    start, end = Month.parse(month).bounds("UTC")
     in_month = [
         r for r in rows if start <= datetime.fromisoformat(r["issued_at"]) < end
     ]  # a run across midnight at month end splits the cohort
@@ -155,7 +156,9 @@ def test_report_equals_direct_computation(
     r = client.get(f"/v1/reports/{POLICY}/{month}", headers=audit)
     assert r.status_code == 200
     snap = r.json()
-    assert snap["digest"] == digest(snap) == r.headers["X-Evenhand-Digest"]
+    typed = Snapshot.model_validate(snap)
+    assert snap["digest"] == typed.computed_digest() == r.headers["X-Evenhand-Digest"]
+    assert snap["view"] == "published"
     (version,) = snap["versions"]
     assert version["version"] == 1
     groups = {g["group"]: g for g in version["groups"]}
@@ -188,17 +191,28 @@ def test_report_equals_direct_computation(
                 proportion_confint(k, n, method="wilson"), abs=1e-12
             )
 
-    # The true counts the statuses use, not only the published ones.
+    # The internal view holds the true counts the statuses use, not only the published ones.
+    r = client.get(f"/v1/reports/{POLICY}/{month}?view=internal", headers=audit)
+    assert r.status_code == 200 and r.headers["X-Evenhand-View"] == "internal"
+    internal = r.json()
+    assert internal["view"] == "internal"
+    for g in internal["versions"][0]["groups"]:
+        assert g["counts"] == direct[g["group"]], g["group"]
+        # Expected cost under the rule's probabilities on the same rows: c_FP = 1 for each
+        # observed negative times P(action), c_FN = 4 for each observed positive times
+        # P(no action) (audit_policy's costs), per case with an outcome.
+        seen = [x for x in in_month if x["group"] == g["group"] and x["y"] is not None]
+        expected = sum(
+            x["probability"] if x["y"] == 0 else 4 * (1 - x["probability"]) for x in seen
+        )
+        assert g["cost_per_case"]["expected"] == pytest.approx(expected / len(seen), abs=1e-12)
     with session_factory() as session:
-        run = run_audit(session, POLICY, month)
+        run = run_audit(session, POLICY, Month.parse(month))
         session.rollback()
         shadow_rows = session.query(
             Recommendation.recommendation_id, Recommendation.shadow_action
         ).all()
-    for name, cell in run.cells[1].items():
-        assert {k: v for k, v in cell.all_counts().items()} == direct[name]
-        dr = [r for r in in_month if r["group"] == name]
-        assert cell.expected_actions == pytest.approx(sum(r["probability"] for r in dr), abs=1e-9)
+    assert run.result.internal.row_counts["recommendations"] == len(in_month)
 
     # Shadow version 2 on the same rows.
     shadow_action = dict(shadow_rows)

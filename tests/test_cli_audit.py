@@ -31,13 +31,17 @@ def test_audit_and_report_commands(
 
     assert main(["audit", "run", "--policy", POLICY, "--month", month]) == 0
     out, err = capsys.readouterr()
-    assert f"of {POLICY} for {month}" in out and "digest" in out
+    assert f"of {POLICY} for {month} (provisional)" in out and "digest" in out
+    assert "check(s) tested, holm at 0.05" in out
     assert "counted" in err and "done in" in err  # progress on stderr
 
     assert main(["report", "list", "--policy", POLICY]) == 0
     assert month in capsys.readouterr().out
     assert main(["report", "show", "--policy", POLICY, "--month", month]) == 0
-    assert "recommendations" in capsys.readouterr().out
+    out = capsys.readouterr().out
+    assert "recommendations" in out and "month provisional: the month has not ended" in out
+    assert main(["report", "show", "--policy", POLICY, "--month", month, "--internal"]) == 0
+    assert "INTERNAL VIEW" in capsys.readouterr().out
 
     target = tmp_path / "r.csv"
     argv = ["report", "export", "--policy", POLICY, "--month", month, "--format", "csv"]
@@ -49,3 +53,8 @@ def test_audit_and_report_commands(
     assert "no audit" in capsys.readouterr().err
     assert main(["audit", "run", "--policy", POLICY, "--month", "2026-13"]) == 2
     assert main(["audit", "run", "--policy", "nope", "--month", month]) == 2
+    assert main(["audit", "run", "--policy", POLICY, "--month", "2001-01"]) == 2
+    assert "nothing to audit" in capsys.readouterr().err
+    argv = ["audit", "run", "--policy", POLICY, "--month", month, "--tolerance", "0"]
+    assert main(argv) == 2
+    assert "greater than 0" in capsys.readouterr().err

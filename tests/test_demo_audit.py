@@ -10,6 +10,7 @@ import pytest
 from sqlalchemy import create_engine, func, select
 from sqlalchemy.orm import Session
 
+from service.audit.month import Month
 from service.audit.reports import get_snapshot
 from service.demo.audit_stages import alert_summary, full_stages
 from service.demo.story import DemoContext, run_demo
@@ -29,28 +30,30 @@ def test_demo_ends_with_a_report(tmp_path: Path, capsys: pytest.CaptureFixture[s
     month = df.month.iloc[0]
     engine = create_engine(ctx.database_url)
     with Session(engine) as session:
-        snapshot = get_snapshot(session, ctx.policy_name, month)
+        snapshot = get_snapshot(session, ctx.policy_name, Month.parse(month))
         outcomes = session.scalar(select(func.count()).select_from(Outcome))
     engine.dispose()
-    # Every recommendation of the demo was issued in the audited month.
-    assert snapshot["row_counts"]["recommendations"] == len(ctx.sent) == 80
-    assert snapshot["row_counts"]["outcomes"] == outcomes
+    # Every recommendation of the demo was issued in the audited month, which has not ended:
+    # its outcome checks are decided provisionally, and the report says so.
+    assert snapshot.row_counts["recommendations"] == len(ctx.sent) == 80
+    assert snapshot.row_counts["outcomes"] == outcomes
+    assert snapshot.maturity.outcome_checks == "decided provisionally"
     assert 0 < outcomes < 80  # some patients are lost to follow-up
 
 
 def test_the_summary_tells_the_most_serious_alerts_and_counts_the_rest() -> None:
     alerts = [
-        {"status": "too-few", "version": 1, "message": "a"},
-        {"status": "watch", "version": 1, "message": "b"},
-        {"status": "breach", "version": 2, "message": "c"},
-        {"status": "watch", "version": 2, "message": "d"},
+        {"level": "watch", "version": 1, "message": "a"},
+        {"level": "breach", "version": 1, "message": "b"},
+        {"level": "breach", "version": 2, "message": "c"},
+        {"level": "watch", "version": 2, "message": "d"},
     ]
     lines = alert_summary(alerts, shown=2)
     assert lines == [
-        "4 alert(s): 1 breach, 2 watch, 1 too-few",
+        "4 alert(s): 2 breach, 2 watch",
+        "  [breach] v1 b",
         "  [breach] v2 c",
-        "  [watch] v1 b",
         "  ... and 2 more, each listed in the report",
     ]
-    assert alert_summary([]) == ["no alerts"]
+    assert alert_summary([]) == ["no alerts: no check shows a breach"]
     assert len(alert_summary(alerts)) == 5  # all four fit under the default

@@ -37,7 +37,9 @@ def test_arithmetic() -> None:
     assert str(Month.containing(instant, "UTC")) == "2026-11"
 
 
-@pytest.mark.parametrize("text", ["2026-13", "2026-00", "26-10", "2026-1", "0000-01", "9999-12", ""])
+@pytest.mark.parametrize(
+    "text", ["2026-13", "2026-00", "26-10", "2026-1", "0000-01", "9999-12", ""]
+)
 def test_bad_months_are_a_clear_422(text: str) -> None:
     with pytest.raises(Unprocessable) as exc:
         Month.parse(text)

@@ -10,12 +10,10 @@ from statsmodels.stats.proportion import confint_proportions_2indep, proportion_
 from service.audit.realized import (
     CellCounts,
     cost_per_case,
-    four_fifths,
     four_fifths_flag,
     gap,
     identifiable,
     rates,
-    reference_group,
 )
 
 
@@ -80,11 +78,8 @@ def test_gap_interval_matches_statsmodels_newcombe() -> None:
 def test_four_fifths_uniform_guidelines_example() -> None:
     # Uniform Guidelines Questions and Answers (1979), Q&A 12 (secondary): whites 48 of 80
     # hired (60%), Blacks 12 of 40 (30%): ratio 0.50, adverse impact.
-    out = four_fifths({"white": (48, 80), "black": (12, 40)})
-    assert out["black"].ratio == pytest.approx(0.5)
-    assert out["black"].flagged
-    assert not out["white"].flagged
-    assert out["black"].highest_group == "white"
+    assert four_fifths_flag(12, 40, 48, 80)
+    assert not four_fifths_flag(48, 80, 48, 80)
 
 
 @pytest.mark.parametrize(
@@ -149,13 +144,6 @@ def test_costs_realized_and_expected() -> None:
     assert cost.realized == pytest.approx((fp + 4 * fn) / n)
     assert cost.expected == pytest.approx((p[y == 0].sum() + 4 * (1 - p[y == 1]).sum()) / n)
     assert cost.promised == 0.6
-
-
-def test_reference_group_is_largest_unless_configured() -> None:
-    sizes = {"a": 10, "b": 30, "c": 30}
-    assert reference_group(sizes) == "b"
-    assert reference_group(sizes, "a") == "a"
-    assert reference_group(sizes, "missing") == "b"
 
 
 def test_inconsistent_counts_are_refused() -> None:

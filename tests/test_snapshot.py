@@ -1,44 +1,27 @@
-"""Statuses and the snapshot built from counts: alerts, suppression, digest."""
+"""The snapshots built from counts: published and internal views, suppression, digest."""
 
 from __future__ import annotations
 
+import hashlib
+import json
 from datetime import UTC, datetime
 from typing import Any
 
 import pytest
 
+from service.audit.month import Month
+from service.audit.realized import CellCounts, ShadowCounts
 from service.audit.snapshot import (
     CALIBRATION_CONFLICT,
     AuditInput,
+    AuditResult,
     VersionCounts,
-    build_snapshot,
-    digest,
+    build,
 )
+from service.audit.snapshot_model import CheckRow, Snapshot
 from service.policy.document import PolicyDocument
-from service.audit.realized import CellCounts, ShadowCounts
-from service.policy.statuses import Status, classify, four_fifths_status
-from service.stats.proportions import newcombe_difference_interval
 
-
-@pytest.mark.parametrize(
-    ("point", "low", "high", "status"),
-    [
-        (0.01, -0.02, 0.04, Status.HOLDS),
-        (0.05, -0.05, 0.05, Status.HOLDS),  # the tolerance itself is within
-        (0.10, 0.06, 0.14, Status.BREACH),
-        (-0.10, -0.14, -0.06, Status.BREACH),
-        (0.07, 0.01, 0.13, Status.WATCH),
-        (0.02, -0.04, 0.08, Status.UNSETTLED),
-    ],
-)
-def test_classify(point: float, low: float, high: float, status: Status) -> None:
-    assert classify(point, low, high, 0.05) is status
-
-
-def test_four_fifths_status() -> None:
-    assert four_fifths_status(False, -0.3) is Status.HOLDS
-    assert four_fifths_status(True, -0.01) is Status.BREACH
-    assert four_fifths_status(True, 0.02) is Status.WATCH
+NOW = datetime(2027, 1, 15, tzinfo=UTC)  # October 2026 is mature by then (60 days)
 
 
 def policy(criterion: str = "equal-opportunity", observed_after: str = "both") -> PolicyDocument:
@@ -58,116 +41,159 @@ def policy(criterion: str = "equal-opportunity", observed_after: str = "both") -
                 "criterion": criterion,
                 "tolerance": 0.05,
                 "expected_cost": 0.3,
-                "groups": {"a": {"action_rate": 0.3, "tpr": 0.7, "fpr": 0.2}},
+                "groups": {
+                    "a": {"n": 900, "prevalence": 0.2, "action_rate": 0.3, "tpr": 0.7, "fpr": 0.2},
+                    "b": {"n": 400, "action_rate": 0.4, "tpr": 0.55, "fpr": 0.3},
+                },
             },
         }
     )
 
 
 CELLS = {
-    "a": CellCounts(n=1000, actions=300, observed=900, positives=200, tp=140, fp=150),
-    "b": CellCounts(n=500, actions=200, observed=450, positives=100, tp=55, fp=140),
+    "a": CellCounts(n=10000, actions=3000, observed=9000, positives=2000, tp=1400, fp=1500),
+    "b": CellCounts(n=5000, actions=2000, observed=4500, positives=1000, tp=550, fp=1400),
     "c": CellCounts(n=30, actions=8, observed=30, positives=9, tp=5, fp=3),
 }
 
 
-def snapshot(cells: dict[str, CellCounts] = CELLS, **kw: Any) -> Any:
+def result(cells: dict[str, CellCounts] = CELLS, **kw: Any) -> AuditResult:
     doc = kw.pop("doc", policy())
-    return build_snapshot(
+    now = kw.pop("now", NOW)
+    month = Month.parse(kw.pop("month", "2026-10"))
+    start, end = month.bounds("UTC")
+    return build(
         AuditInput(
             policy="fernhollow",
-            month="2026-10",
+            month=month,
             time_zone="UTC",
-            cohort_from=datetime(2026, 10, 1, tzinfo=UTC),
-            cohort_until=datetime(2026, 11, 1, tzinfo=UTC),
-            created_at=datetime(2026, 11, 2, tzinfo=UTC),
+            cohort_from=start,
+            cohort_until=end,
+            created_at=now,
             code_version="test",
-            versions=[VersionCounts(1, doc, cells, kw.pop("shadows", {}))],
+            versions=[VersionCounts(1, doc, cells, kw.pop("shadows", {}), "h" * 64)],
             **kw,
-        )
+        ),
+        now,
     )
 
 
-def check(s: Any, kind: str, group: str, metric: str) -> dict[str, Any]:
+def snapshot(**kw: Any) -> Snapshot:
+    return result(**kw).published
+
+
+def check(s: Snapshot, kind: str, group: str, metric: str) -> CheckRow:
     found = [
-        c
-        for c in s["versions"][0]["checks"]
-        if (c["check"], c["group"], c["metric"]) == (kind, group, metric)
+        c for c in s.versions[0].checks if (c.check, c.group, c.metric) == (kind, group, metric)
     ]
     assert len(found) == 1
     return found[0]
 
 
-def test_parity_check_uses_newcombe_gap_to_the_largest_group() -> None:
+def test_small_cells_are_suppressed_in_the_published_view_only() -> None:
+    r = result()
+    c_pub = next(g for g in r.published.versions[0].groups if g.group == "c")
+    assert c_pub.counts["tp"] == "<11"
+    assert c_pub.counts["tn"] is None  # 30 - ... would give the small counts back
+    assert c_pub.rates["tpr"].withheld == "small-cell" and c_pub.rates["tpr"].value is None
+    c_int = next(g for g in r.internal.versions[0].groups if g.group == "c")
+    assert c_int.counts["tp"] == 5 and c_int.counts["tn"] == 18
+    assert c_int.rates["tpr"].value == pytest.approx(5 / 9)
+    assert (r.published.view, r.internal.view) == ("published", "internal")
+    # The statuses are the same in both views: they are decided once, on the true counts.
+    assert [c.status for c in r.published.versions[0].checks] == [
+        c.status for c in r.internal.versions[0].checks
+    ]
+
+
+def test_a_check_on_hidden_counts_keeps_its_status_but_not_its_figures() -> None:
     s = snapshot()
-    v = s["versions"][0]
-    assert v["reference_group"] == "a"
+    c = check(s, "promise", "a", "action_rate")
+    assert c.evidence is not None and c.estimate.value is not None
+    # c's TPR has 9 positives: below the minimum count.
+    small = check(s, "parity", "c", "tpr")
+    assert small.status == "too-few" and small.evidence is None
+    assert "below 20" in small.message
+
+
+def test_published_checks_carry_raw_and_adjusted_p_values_and_name_the_test() -> None:
+    s = snapshot()
     c = check(s, "parity", "b", "tpr")
-    lo, hi = newcombe_difference_interval(55, 100, 140, 200)
-    assert (c["value"], c["low"], c["high"]) == pytest.approx((0.55 - 0.7, lo, hi))
-    assert c["status"] == classify(0.55 - 0.7, lo, hi, 0.05)
+    assert c.evidence is not None
+    assert c.evidence.procedure == "score-difference"
+    assert c.evidence.p_outside <= c.evidence.p_outside_adjusted
+    assert c.evidence.p_inside <= c.evidence.p_inside_adjusted
+    assert f"{c.evidence.p_outside_adjusted:.2g}" in c.message or c.status != "breach"
+    assert "Holm (1979)" in s.family.description and "Schuirmann 1987" in s.family.description
+    assert s.family.tests == sum(1 for v in s.versions for x in v.checks if x.evidence)
 
 
-def test_small_cells_are_suppressed_but_statuses_use_true_values() -> None:
+def test_alerts_are_exactly_the_breaches() -> None:
     s = snapshot()
-    c_group = next(g for g in s["versions"][0]["groups"] if g["group"] == "c")
-    assert c_group["counts"]["tp"] == "<11"
-    assert c_group["counts"]["tn"] is None  # 30 - ... would give the small counts back
-    assert c_group["rates"]["tpr"]["withheld"] == "small-cell"
-    assert c_group["rates"]["tpr"]["value"] is None
-    # c has 30 cases: the four-fifths check is decided on its true 8/30 against b's 200/500.
-    ff = check(s, "four-fifths", "c", "four_fifths_ratio")
-    assert ff["status"] in {"watch", "breach"} and ff["flagged"] is True
-    assert ff["ratio"] is None
-    # 9 positives: below the minimum count, so the TPR check is "too few".
-    assert check(s, "parity", "c", "tpr")["status"] == "too-few"
-
-
-def test_alerts_are_sorted_by_severity() -> None:
-    s = snapshot()
-    order = [a["status"] for a in s["alerts"]]
-    rank = {"breach": 0, "watch": 1, "too-few": 2, "not-identifiable": 3}
-    assert order == sorted(order, key=rank.__getitem__)
-    assert "holds" not in order
+    breaches = [c for c in s.versions[0].checks if c.status == "breach"]
+    assert breaches, "b's TPR of 0.55 against a's 0.70 is a breach of a 0.05 tolerance"
+    assert [a.message for a in s.alerts] == [c.message for c in breaches]
+    assert all(a.level == "breach" for a in s.alerts)
 
 
 def test_selective_labels_give_not_identifiable_checks() -> None:
     s = snapshot(doc=policy(observed_after="action"))
-    assert check(s, "parity", "b", "tpr")["status"] == "not-identifiable"
-    assert check(s, "promise", "a", "fpr")["status"] == "not-identifiable"
-    a = s["versions"][0]["groups"][0]
-    assert a["rates"]["tpr"]["withheld"] == "not-identifiable"
-    assert CALIBRATION_CONFLICT not in s["cautions"]
-    assert CALIBRATION_CONFLICT in snapshot()["cautions"]
+    assert check(s, "parity", "b", "tpr").status == "not-identifiable"
+    assert check(s, "promise", "a", "fpr").status == "not-identifiable"
+    a = s.versions[0].groups[0]
+    assert a.rates["tpr"].withheld == "not-identifiable"
+    assert CALIBRATION_CONFLICT not in s.cautions
+    assert CALIBRATION_CONFLICT in snapshot().cautions
 
 
-def test_digest_covers_the_content() -> None:
+def test_an_immature_month_leaves_outcome_checks_pending_unless_asked() -> None:
+    early = datetime(2026, 11, 10, tzinfo=UTC)
+    # 13,530 of 15,030 decisions have an outcome: 90.02%, mature by coverage.
+    assert snapshot(now=early).maturity.state == "mature"
+    few = {g: CellCounts(n=c.n, actions=c.actions) for g, c in CELLS.items()}
+    s = snapshot(cells=few, now=early)
+    assert s.maturity.state == "provisional" and s.maturity.outcome_checks == "pending"
+    assert check(s, "parity", "b", "tpr").status == "pending"
+    assert check(s, "promise", "a", "action_rate").evidence is not None
+    s = snapshot(now=datetime(2026, 10, 20, tzinfo=UTC), provisional=True)
+    assert s.maturity.reason == "the month has not ended"
+    assert s.maturity.outcome_checks == "decided provisionally"
+    assert check(s, "parity", "b", "tpr").evidence is not None
+
+
+def test_digest_is_the_sha256_of_the_canonical_content() -> None:
     s = snapshot()
-    assert s["digest"] == digest(s)
-    s2 = dict(s, month="2026-11")
-    assert digest(s2) != s["digest"]
+    content = s.content()
+    digest = content.pop("digest")
+    canonical = json.dumps(
+        content, sort_keys=True, separators=(",", ":"), ensure_ascii=False, allow_nan=False
+    ).encode("utf-8")
+    assert digest == hashlib.sha256(canonical).hexdigest()
+    again = Snapshot.model_validate(s.content())
+    assert again == s and again.computed_digest() == digest
+    assert s.model_copy(update={"month": "2026-11"}).computed_digest() != digest
 
 
 def test_shadow_rates() -> None:
     shadow = {2: {"a": ShadowCounts(1000, 320, 40, 900, 200, 150, 160)}}
-    s = snapshot(shadows=shadow)
-    sg = s["versions"][0]["shadows"][0]["groups"][0]
-    assert sg["counts"]["differs"] == 40
-    assert sg["rates"]["tpr"]["value"] == pytest.approx(0.75)
-    assert sg["rates"]["differ_rate"]["value"] == pytest.approx(0.04)
+    sg = snapshot(shadows=shadow).versions[0].shadows[0].groups[0]
+    assert sg.counts["differs"] == 40
+    assert sg.rates["tpr"].value == pytest.approx(0.75)
+    assert sg.rates["differ_rate"].value == pytest.approx(0.04)
 
 
-def test_trend_takes_earlier_months() -> None:
-    earlier = snapshot()
-    earlier["month"] = "2026-09"
-    s = snapshot(history=[earlier])
-    months = {p["month"] for p in s["trend"]}
-    assert months == {"2026-09", "2026-10"}
+def test_promised_cost_is_the_groups_own() -> None:
+    groups = {g.group: g for g in snapshot().versions[0].groups}
+    # a: c_FP (1 - p) FPR + c_FN p (1 - TPR) = 0.8 x 0.2 + 4 x 0.2 x 0.3 = 0.4.
+    assert groups["a"].cost_per_case.promised == pytest.approx(0.4)
+    assert groups["b"].cost_per_case.promised is None  # no promised prevalence
+    assert groups["c"].cost_per_case.promised is None  # no targets for c
 
 
-def test_auditor_tolerance_overrides_the_version() -> None:
-    assert check(snapshot(), "parity", "b", "tpr")["status"] == "watch"  # version: 0.05
-    s = snapshot(tolerance=0.3)
-    assert s["versions"][0]["tolerance"] == 0.3
-    assert s["versions"][0]["policy_tolerance"] == 0.05
-    assert check(s, "parity", "b", "tpr")["status"] == "holds"
+def test_auditor_settings_are_recorded() -> None:
+    s = snapshot(tolerance=0.3, reference_group="b")
+    v = s.versions[0]
+    assert (v.tolerance, v.tolerance_source) == (0.3, "auditor")
+    assert (v.reference_group, v.reference_source) == ("b", "auditor")
+    assert check(s, "parity", "a", "tpr").against == "b"
+    assert s.settings.tolerance == 0.3 and s.settings.reference_group == "b"

@@ -1,0 +1,269 @@
+"""Evidence across months: cumulative-sum charts, pooled gaps and trends, per version.
+
+One month at a time cannot see a slow drift: a gap of twice the tolerance in a mid-size group
+is rarely significant in any single month once the month's family of checks is adjusted. A
+cumulative sum of log-likelihood ratios sees it within months (Page 1954).
+
+For each version, group and rate the version's criterion bounds, two one-sided Bernoulli CUSUM
+charts (Reynolds & Stoumbos 1999) run over the group's cases, month by month: the "above"
+chart weighs a gap of ``+2 eps`` against ``+eps`` (the edge of the promise), the "below" chart
+``-2 eps`` against ``-eps``, with the reference group's realized rate of the same month as the
+base (the in-control probability of a case moves with it, as a case's risk does in Steiner et
+al. 2000). Under the four-fifths criterion one chart weighs a ratio of ``0.8 - 2 eps`` against
+0.8. So a chart can only drift upward when the gap is beyond the tolerance: a policy that keeps
+its promise, even at the edge of it, raises false signals at the designed rate only.
+
+Control limits: every chart of a version gets the limit ``h`` whose probability of a false
+signal within :data:`HORIZON` months is at most ``level / K`` at the edge of the promise,
+``K`` the number of charts of the version (Bonferroni), computed with the Markov chain of Brook
+& Evans (1972) at the group's mean monthly volume. So the chance that any chart of a version
+signals falsely within a year is at most the audit plan's level.
+
+Months whose outcomes are not mature are left out of charts of outcome-based rates. The pooled
+gap over the charted months (Mantel & Haenszel, with Sato's variance) and a weighted trend test
+of the monthly gaps go with each pair of charts as descriptive figures.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+
+from service.audit.month import Month
+from service.audit.realized import CellCounts, Favourable, fraction_of
+from service.audit.verdicts import (
+    CRITERION_METRICS,
+    FOUR_FIFTHS_FLOOR,
+    OUTCOME_METRICS,
+    CheckKind,
+    VersionSettings,
+)
+from service.policy.document import Criterion, PolicyDocument
+from service.stats.cusum import (
+    binomial_llr,
+    binomial_step_distribution,
+    control_limit,
+    cusum_path,
+)
+from service.stats.pooling import PooledDifference, mantel_haenszel_difference
+from service.stats.trend import Trend, weighted_trend
+
+HORIZON = 12
+"""Months over which each version's false-signal probability is bounded by the level."""
+WINDOW = 24
+"""Months of history the charts look back over (the latest snapshot of each)."""
+STATES = 100
+"""Grid points of the Markov chain (0.1-0.3% from the exact run length; stats.cusum)."""
+_EDGE = 1e-4
+"""Design probabilities are kept inside [_EDGE, 1 - _EDGE]."""
+
+
+@dataclass(frozen=True, slots=True)
+class MonthCounts:
+    """One month of one version: its cells, and whether its outcomes were mature."""
+
+    month: Month
+    mature: bool
+    cells: Mapping[str, CellCounts]
+
+
+@dataclass(frozen=True, slots=True)
+class ChartSide:
+    side: str  # "above" or "below"
+    in_control: float
+    out_of_control: float
+    """The gap (or ratio) the chart's in-control and out-of-control models assume."""
+    limit: float
+    path: tuple[float, ...]
+    signal: bool
+    first_signal: str | None
+
+    @property
+    def statistic(self) -> float:
+        return self.path[-1] if self.path else 0.0
+
+
+@dataclass(frozen=True, slots=True)
+class Monitor:
+    """The charts of one (version, check, rate, group) over the months that count."""
+
+    version: int
+    kind: CheckKind
+    metric: str
+    group: str
+    against: str
+    months: tuple[str, ...]
+    sides: tuple[ChartSide, ...]
+    pooled: PooledDifference | None
+    trend: Trend | None
+    figures_from: tuple[tuple[str, str], ...]
+
+    @property
+    def signal(self) -> bool:
+        return any(s.signal for s in self.sides)
+
+
+@dataclass(frozen=True, slots=True)
+class _Series:
+    """Per month: (k, n) of the group and (k, n) of the reference, for months with both."""
+
+    months: tuple[str, ...]
+    group: tuple[tuple[int, int], ...]
+    reference: tuple[tuple[int, int], ...]
+
+
+def _series(
+    history: Sequence[MonthCounts], g: str, ref: str, metric: str, fav: Favourable
+) -> _Series:
+    months: list[str] = []
+    group: list[tuple[int, int]] = []
+    reference: list[tuple[int, int]] = []
+    for m in history:
+        if metric in OUTCOME_METRICS and not m.mature:
+            continue
+        if g not in m.cells or ref not in m.cells:
+            continue
+        num, den = fraction_of(metric, fav)
+        kg, ng = m.cells[g].all_counts()[num], m.cells[g].all_counts()[den]
+        kr, nr = m.cells[ref].all_counts()[num], m.cells[ref].all_counts()[den]
+        if ng == 0 or nr == 0:
+            continue
+        months.append(str(m.month))
+        group.append((kg, ng))
+        reference.append((kr, nr))
+    return _Series(tuple(months), tuple(group), tuple(reference))
+
+
+def _clip(p: float) -> float:
+    return min(1.0 - _EDGE, max(_EDGE, p))
+
+
+@dataclass(frozen=True, slots=True)
+class _Design:
+    """How one chart side turns the reference rate ``r`` into its two models."""
+
+    side: str
+    in_control: float
+    out_of_control: float
+    ratio: bool
+
+    def rates(self, r: float) -> tuple[float, float] | None:
+        if self.ratio:
+            p0, p1 = self.in_control * r, self.out_of_control * r
+        else:
+            p0, p1 = r + self.in_control, r + self.out_of_control
+        p0, p1 = _clip(p0), _clip(p1)
+        return None if p0 == p1 else (p0, p1)
+
+
+def _designs(kind: CheckKind, eps: float) -> tuple[_Design, ...]:
+    if kind is CheckKind.FOUR_FIFTHS:
+        return (_Design("below", FOUR_FIFTHS_FLOOR, FOUR_FIFTHS_FLOOR - 2 * eps, True),)
+    return (_Design("above", eps, 2 * eps, False), _Design("below", -eps, -2 * eps, False))
+
+
+def _side(design: _Design, series: _Series, false_alarm: float) -> ChartSide | None:
+    increments: list[float] = []
+    for (kg, ng), (kr, nr) in zip(series.group, series.reference, strict=True):
+        rates = design.rates(kr / nr)
+        increments.append(0.0 if rates is None else binomial_llr(kg, ng, *rates))
+    total_n = sum(n for _, n in series.group)
+    mean_n = max(1, round(total_n / len(series.group)))
+    mean_r = sum(k for k, _ in series.reference) / sum(n for _, n in series.reference)
+    rates = design.rates(mean_r)
+    if rates is None:
+        return None
+    p0, p1 = rates
+    step = binomial_step_distribution(mean_n, p0, p0, p1)
+    try:
+        limit = control_limit([step], HORIZON, false_alarm, STATES)
+    except ValueError:  # no increment can be positive: the chart could never signal
+        return None
+    path = tuple(cusum_path(increments))
+    first = next((m for m, s in zip(series.months, path, strict=True) if s >= limit), None)
+    return ChartSide(
+        design.side,
+        design.in_control,
+        design.out_of_control,
+        limit,
+        path,
+        path[-1] >= limit,
+        first,
+    )
+
+
+def _pooled_and_trend(series: _Series) -> tuple[PooledDifference | None, Trend | None]:
+    strata = [
+        (kg, ng, kr, nr) for (kg, ng), (kr, nr) in zip(series.group, series.reference, strict=True)
+    ]
+    pooled = mantel_haenszel_difference(strata)
+    if len(strata) < 3:
+        return pooled, None
+    estimates, variances = [], []
+    for kg, ng, kr, nr in strata:
+        estimates.append(kg / ng - kr / nr)
+        # Variances with half a case added to each cell, so a month at 0% or 100% still
+        # has a positive one (common practice).
+        pg, pr = (kg + 0.5) / (ng + 1), (kr + 0.5) / (nr + 1)
+        variances.append(pg * (1 - pg) / (ng + 1) + pr * (1 - pr) / (nr + 1))
+    try:
+        trend = weighted_trend(list(range(len(strata))), estimates, variances)
+    except ValueError:
+        trend = None
+    return pooled, trend
+
+
+def version_monitors(
+    version: int,
+    document: PolicyDocument,
+    settings: VersionSettings,
+    history: Sequence[MonthCounts],
+    level: float,
+) -> list[Monitor]:
+    """The charts of one version over ``history`` (oldest first, this month last)."""
+    targets = document.targets
+    if targets is None or not history:
+        return []
+    fav = document.favourable
+    outside = {g for g, t in targets.groups.items() if t.outside_promise}
+    groups = sorted({g for m in history for g in m.cells} - outside)
+    specs: list[tuple[CheckKind, str, str, str]] = []
+    ref = settings.reference_group
+    if ref is not None:
+        for metric in CRITERION_METRICS[targets.criterion]:
+            specs += [(CheckKind.PARITY, metric, g, ref) for g in groups if g != ref]
+    comp = settings.comparator_group
+    if targets.criterion is Criterion.FOUR_FIFTHS and comp is not None:
+        specs += [(CheckKind.FOUR_FIFTHS, "favourable_rate", g, comp) for g in groups if g != comp]
+    sides_per_spec = {kind: len(_designs(kind, settings.tolerance)) for kind in CheckKind}
+    charts = sum(sides_per_spec[kind] for kind, *_ in specs)
+    if charts == 0:
+        return []
+    false_alarm = level / charts
+    monitors: list[Monitor] = []
+    for kind, metric, g, against in specs:
+        series = _series(history, g, against, metric, fav)
+        if not series.months:
+            continue
+        sides = tuple(
+            s
+            for d in _designs(kind, settings.tolerance)
+            if (s := _side(d, series, false_alarm)) is not None
+        )
+        pooled, trend = _pooled_and_trend(series)
+        num, den = fraction_of(metric, fav)
+        monitors.append(
+            Monitor(
+                version,
+                kind,
+                metric,
+                g,
+                against,
+                series.months,
+                sides,
+                pooled,
+                trend,
+                ((g, num), (g, den), (against, num), (against, den)),
+            )
+        )
+    return monitors
