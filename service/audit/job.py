@@ -18,12 +18,17 @@ from sqlalchemy.orm import Session
 
 from service import __version__
 from service.audit.counting import Progress, cells_from_tallies, count_month, quiet
+from service.audit.monitoring import WINDOW, MonthCounts
 from service.audit.month import Month
-from service.audit.snapshot import AuditInput, AuditResult, VersionCounts, build
-from service.audit.snapshot_model import Snapshot
+from service.audit.realized import CellCounts, ScoreSums
+from service.audit.score_sums import count_score_sums
+from service.audit.snapshot import AuditInput, AuditResult, build
+from service.audit.snapshot_model import SNAPSHOT_FORMAT, ScoreSumsRow, Snapshot
 from service.audit.verdicts import DEFAULT_MIN_COUNT
+from service.audit.version_counts import VersionCounts
 from service.errors import NotFound, Unprocessable
 from service.policy.document import PolicyDocument
+from service.stats.calibration import PowerSums
 from service.store.audit_models import AuditSnapshot
 from service.store.db import begin_read_only
 from service.store.models import PolicyVersion
@@ -114,10 +119,24 @@ def run_audit(
     documents = _load_documents(session, policy)
     seen = {g for cells, _ in per_version.values() for g in cells}
     _check_reference(reference_group, documents, seen)
-    versions = [
-        VersionCounts(v, documents[v][0], cells, shadows, documents[v][1])
-        for v, (cells, shadows) in sorted(per_version.items())
-    ]
+    sums = count_score_sums(session, policy, start, end)
+    progress("  counted score sums and randomization zones")
+    versions = []
+    for v, (cells, shadows) in sorted(per_version.items()):
+        mode = documents[v][0].outcome_observed_after
+        selective = {g: sums.selective((v, g), mode) for g in cells}
+        versions.append(
+            VersionCounts(
+                v,
+                documents[v][0],
+                cells,
+                shadows,
+                documents[v][1],
+                {g: sums.scores[(v, g)] for g in cells if (v, g) in sums.scores},
+                {g: c for g, c in selective.items() if c is not None},
+            )
+        )
+    history = month_history(session, policy, month, {v.version for v in versions})
     created = now
     result = build(
         AuditInput(
@@ -133,6 +152,7 @@ def run_audit(
             tolerance=tolerance,
             min_count=min_count,
             provisional=provisional,
+            history=history,
         ),
         now,
     )
@@ -165,6 +185,65 @@ def run_audit(
     return AuditRun(row.id, result)
 
 
-def snapshot_of(content: dict[str, Any]) -> Snapshot:
-    """A stored snapshot's content as the typed model (current format only)."""
-    return Snapshot.model_validate(content)
+def month_history(
+    session: Session, policy: str, month: Month, versions: set[int]
+) -> dict[int, list[MonthCounts]]:
+    """The counts of the earlier months (up to ``WINDOW - 1`` of them), oldest first, per
+    version, from the internal view of the latest snapshot of each month. Months without a
+    current-format snapshot are skipped: the charts continue over the months that were
+    audited."""
+    earlier = [str(m) for m in reversed(month.previous(WINDOW - 1))]
+    rows = session.execute(
+        select(AuditSnapshot.month, AuditSnapshot.internal)
+        .where(AuditSnapshot.policy == policy, AuditSnapshot.month.in_(earlier))
+        .order_by(AuditSnapshot.month, AuditSnapshot.created_at, AuditSnapshot.id)
+    )
+    latest: dict[str, dict[str, Any]] = {}
+    for m, internal in rows:
+        if internal is not None and internal.get("format") == SNAPSHOT_FORMAT:
+            latest[m] = internal
+    history: dict[int, list[MonthCounts]] = {}
+    for m in sorted(latest):
+        snapshot = Snapshot.model_validate(latest[m])
+        mature = snapshot.maturity.state == "mature"
+        for section in snapshot.versions:
+            if section.version not in versions:
+                continue
+            cells: dict[str, CellCounts] = {}
+            scores: dict[str, ScoreSums] = {}
+            for g in section.groups:
+                cells[g.group] = _cell_of(g.counts)
+                if g.score_sums is not None:
+                    scores[g.group] = _score_sums_of(g.score_sums)
+            history.setdefault(section.version, []).append(
+                MonthCounts(Month.parse(m), mature, cells, scores)
+            )
+    return history
+
+
+def _cell_of(counts: dict[str, Any]) -> CellCounts:
+    return CellCounts(
+        **{name: int(counts[name]) for name in _CELL_FIELDS},
+    )
+
+
+_CELL_FIELDS = ("n", "actions", "observed", "positives", "tp", "fp", "finals", "overrides")
+
+
+def _score_sums_of(row: ScoreSumsRow) -> ScoreSums:
+    return ScoreSums(
+        power=PowerSums(
+            n=row.n,
+            sum_y=row.sum_y,
+            sum_p=row.sum_p,
+            sum_p2=row.sum_p2,
+            sum_p3=row.sum_p3,
+            sum_p4=row.sum_p4,
+            sum_yp=row.sum_yp,
+        ),
+        log_double=row.log_double,
+        log_half=row.log_half,
+        bin_counts=list(row.bin_counts),
+        bin_positives=list(row.bin_positives),
+        bin_score_sums=list(row.bin_score_sums),
+    )

@@ -19,18 +19,28 @@ signal within :data:`HORIZON` months is at most ``level / K`` at the edge of the
 & Evans (1972) at the group's mean monthly volume. So the chance that any chart of a version
 signals falsely within a year is at most the audit plan's level.
 
+Where the score is a probability (score range [0, 1]), two risk-adjusted Bernoulli CUSUM
+charts per group (Steiner, Cook, Farewell & Treasure 2000) weigh the outcomes against the
+scores themselves: odds of the outcome doubled (above) or halved (below) against the odds the
+score states. They watch the model's calibration drifting within a group, the most common
+reason for a rate to drift; their limits come from the same chain, with the month's increment
+distribution computed from the group's score bins, and they count among the version's charts.
+
 Months whose outcomes are not mature are left out of charts of outcome-based rates. The pooled
 gap over the charted months (Mantel & Haenszel, with Sato's variance) and a weighted trend test
-of the monthly gaps go with each pair of charts as descriptive figures.
+of the monthly gaps go with each pair of gap charts as descriptive figures.
 """
 
 from __future__ import annotations
 
+import math
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
+
+import numpy as np
 
 from service.audit.month import Month
-from service.audit.realized import CellCounts, Favourable, fraction_of
+from service.audit.realized import CellCounts, Favourable, ScoreSums, fraction_of
 from service.audit.verdicts import (
     CRITERION_METRICS,
     FOUR_FIFTHS_FLOOR,
@@ -40,12 +50,17 @@ from service.audit.verdicts import (
 )
 from service.policy.document import Criterion, PolicyDocument
 from service.stats.cusum import (
+    StepDistribution,
     binomial_llr,
     binomial_step_distribution,
     control_limit,
     cusum_path,
+    risk_adjusted_llr,
+    risk_adjusted_step_distribution,
 )
 from service.stats.pooling import PooledDifference, mantel_haenszel_difference
+from service.stats.proportions import Z95, newcombe_difference_interval
+from service.stats.ratios import katz_ratio_interval
 from service.stats.trend import Trend, weighted_trend
 
 HORIZON = 12
@@ -60,11 +75,13 @@ _EDGE = 1e-4
 
 @dataclass(frozen=True, slots=True)
 class MonthCounts:
-    """One month of one version: its cells, and whether its outcomes were mature."""
+    """One month of one version: its cells, whether its outcomes were mature, and the score
+    sums of each group's cases with an outcome (for the risk-adjusted charts)."""
 
     month: Month
     mature: bool
     cells: Mapping[str, CellCounts]
+    scores: Mapping[str, ScoreSums] = field(default_factory=dict)
 
 
 @dataclass(frozen=True, slots=True)
@@ -84,6 +101,16 @@ class ChartSide:
 
 
 @dataclass(frozen=True, slots=True)
+class MonthEstimate:
+    """The charted quantity in one month with its 95% interval (descriptive)."""
+
+    month: str
+    value: float
+    low: float
+    high: float
+
+
+@dataclass(frozen=True, slots=True)
 class Monitor:
     """The charts of one (version, check, rate, group) over the months that count."""
 
@@ -94,6 +121,7 @@ class Monitor:
     against: str
     months: tuple[str, ...]
     sides: tuple[ChartSide, ...]
+    estimates: tuple[MonthEstimate, ...]
     pooled: PooledDifference | None
     trend: Trend | None
     figures_from: tuple[tuple[str, str], ...]
@@ -162,34 +190,59 @@ def _designs(kind: CheckKind, eps: float) -> tuple[_Design, ...]:
     return (_Design("above", eps, 2 * eps, False), _Design("below", -eps, -2 * eps, False))
 
 
+def _limit(step: StepDistribution, false_alarm: float) -> float | None:
+    try:
+        return control_limit([step], HORIZON, false_alarm, STATES)
+    except ValueError:  # no increment can be positive: the chart could never signal
+        return None
+
+
+def _chart(
+    side: str,
+    in_control: float,
+    out_of_control: float,
+    increments: Sequence[float],
+    months: Sequence[str],
+    limit: float,
+) -> ChartSide:
+    path = tuple(cusum_path(increments))
+    first = next((m for m, v in zip(months, path, strict=True) if v >= limit), None)
+    return ChartSide(side, in_control, out_of_control, limit, path, path[-1] >= limit, first)
+
+
 def _side(design: _Design, series: _Series, false_alarm: float) -> ChartSide | None:
     increments: list[float] = []
     for (kg, ng), (kr, nr) in zip(series.group, series.reference, strict=True):
         rates = design.rates(kr / nr)
         increments.append(0.0 if rates is None else binomial_llr(kg, ng, *rates))
-    total_n = sum(n for _, n in series.group)
-    mean_n = max(1, round(total_n / len(series.group)))
+    mean_n = max(1, round(sum(n for _, n in series.group) / len(series.group)))
     mean_r = sum(k for k, _ in series.reference) / sum(n for _, n in series.reference)
     rates = design.rates(mean_r)
     if rates is None:
         return None
     p0, p1 = rates
-    step = binomial_step_distribution(mean_n, p0, p0, p1)
-    try:
-        limit = control_limit([step], HORIZON, false_alarm, STATES)
-    except ValueError:  # no increment can be positive: the chart could never signal
+    limit = _limit(binomial_step_distribution(mean_n, p0, p0, p1), false_alarm)
+    if limit is None:
         return None
-    path = tuple(cusum_path(increments))
-    first = next((m for m, s in zip(series.months, path, strict=True) if s >= limit), None)
-    return ChartSide(
-        design.side,
-        design.in_control,
-        design.out_of_control,
-        limit,
-        path,
-        path[-1] >= limit,
-        first,
+    return _chart(
+        design.side, design.in_control, design.out_of_control, increments, series.months, limit
     )
+
+
+def _estimates(kind: CheckKind, series: _Series) -> tuple[MonthEstimate, ...]:
+    out = []
+    for month, (kg, ng), (kr, nr) in zip(
+        series.months, series.group, series.reference, strict=True
+    ):
+        if kind is CheckKind.FOUR_FIFTHS:
+            if kr == 0:
+                continue
+            low, high = katz_ratio_interval(kg, ng, kr, nr)
+            out.append(MonthEstimate(month, (kg / ng) / (kr / nr), low, high))
+        else:
+            low, high = newcombe_difference_interval(kg, ng, kr, nr)
+            out.append(MonthEstimate(month, kg / ng - kr / nr, low, high))
+    return tuple(out)
 
 
 def _pooled_and_trend(series: _Series) -> tuple[PooledDifference | None, Trend | None]:
@@ -213,6 +266,58 @@ def _pooled_and_trend(series: _Series) -> tuple[PooledDifference | None, Trend |
     return pooled, trend
 
 
+_ODDS = (("above", 2.0), ("below", 0.5))
+"""The risk-adjusted charts: odds of the outcome doubled or halved against the score's."""
+
+
+def _outcome_monitor(
+    version: int, g: str, history: Sequence[MonthCounts], false_alarm: float
+) -> Monitor | None:
+    used = [(str(m.month), m.scores[g]) for m in history if m.mature and g in m.scores]
+    used = [(month, ss) for month, ss in used if ss.power.n > 0]
+    if not used:
+        return None
+    months = tuple(month for month, _ in used)
+    counts = np.sum([ss.bin_counts for _, ss in used], axis=0)
+    sums = np.sum([ss.bin_score_sums for _, ss in used], axis=0)
+    filled = counts > 0
+    risks = sums[filled] / counts[filled]
+    per_month = np.maximum(np.rint(counts[filled] / len(used)), 0).astype(np.int64)
+    if per_month.sum() == 0:
+        per_month[np.argmax(counts[filled])] = 1
+    sides = []
+    for side, odds in _ODDS:
+        terms = [ss.log_double if odds == 2.0 else ss.log_half for _, ss in used]
+        increments = [
+            risk_adjusted_llr(ss.power.sum_y, term, odds)
+            for (_, ss), term in zip(used, terms, strict=True)
+        ]
+        limit = _limit(risk_adjusted_step_distribution(risks, per_month, odds), false_alarm)
+        if limit is not None:
+            sides.append(_chart(side, 1.0, odds, increments, months, limit))
+    estimates = []
+    for month, ss in used:
+        p = ss.power
+        # Observed minus expected outcome rate, with a normal interval from the variance the
+        # scores imply (sum of p(1 - p)): descriptive.
+        half = Z95 * math.sqrt(max(p.sum_p - p.sum_p2, 0.0)) / p.n
+        value = (p.sum_y - p.sum_p) / p.n
+        estimates.append(MonthEstimate(month, value, value - half, value + half))
+    return Monitor(
+        version,
+        CheckKind.CALIBRATION,
+        "outcome_vs_score",
+        g,
+        "score",
+        months,
+        tuple(sides),
+        tuple(estimates),
+        None,
+        None,
+        ((g, "observed"), (g, "positives"), (g, "negatives")),
+    )
+
+
 def version_monitors(
     version: int,
     document: PolicyDocument,
@@ -226,7 +331,8 @@ def version_monitors(
         return []
     fav = document.favourable
     outside = {g for g, t in targets.groups.items() if t.outside_promise}
-    groups = sorted({g for m in history for g in m.cells} - outside)
+    seen = sorted({g for m in history for g in m.cells})
+    groups = [g for g in seen if g not in outside]
     specs: list[tuple[CheckKind, str, str, str]] = []
     ref = settings.reference_group
     if ref is not None:
@@ -235,8 +341,10 @@ def version_monitors(
     comp = settings.comparator_group
     if targets.criterion is Criterion.FOUR_FIFTHS and comp is not None:
         specs += [(CheckKind.FOUR_FIFTHS, "favourable_rate", g, comp) for g in groups if g != comp]
-    sides_per_spec = {kind: len(_designs(kind, settings.tolerance)) for kind in CheckKind}
-    charts = sum(sides_per_spec[kind] for kind, *_ in specs)
+    probability_scores = tuple(document.score_range) == (0.0, 1.0)
+    scored = [g for g in seen if probability_scores and any(g in m.scores for m in history)]
+    charts = sum(len(_designs(kind, settings.tolerance)) for kind, *_ in specs)
+    charts += len(_ODDS) * len(scored)
     if charts == 0:
         return []
     false_alarm = level / charts
@@ -261,9 +369,14 @@ def version_monitors(
                 against,
                 series.months,
                 sides,
+                _estimates(kind, series),
                 pooled,
                 trend,
                 ((g, num), (g, den), (against, num), (against, den)),
             )
         )
+    for g in scored:
+        monitor = _outcome_monitor(version, g, history, false_alarm)
+        if monitor is not None:
+            monitors.append(monitor)
     return monitors

@@ -12,9 +12,10 @@ identifiable from the data at all, so they are reported as such rather than as n
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Literal
 
+from service.stats.calibration import PowerSums
 from service.stats.proportions import newcombe_difference_interval, wilson_interval
 
 Observability = Literal["both", "action", "no-action"]
@@ -329,3 +330,21 @@ def shadow_rates(counts: ShadowCounts, observed_after: Observability) -> dict[st
             low, high = wilson_interval(k, n)
             out[metric] = Rate(k, n, k / n, low, high)
     return out
+
+
+BINS = 10
+"""Equal-width score bins over [0, 1] of the reliability table."""
+
+
+@dataclass
+class ScoreSums:
+    """Sums over one (version, group)'s cases with an outcome and a score in [0, 1]."""
+
+    power: PowerSums = field(default_factory=PowerSums)
+    log_double: float = 0.0
+    """sum of ln(1 + s): the risk-adjusted chart's term for an odds ratio of 2."""
+    log_half: float = 0.0
+    """sum of ln(1 - s / 2): the term for an odds ratio of 1/2."""
+    bin_counts: list[int] = field(default_factory=lambda: [0] * BINS)
+    bin_positives: list[int] = field(default_factory=lambda: [0] * BINS)
+    bin_score_sums: list[float] = field(default_factory=lambda: [0.0] * BINS)

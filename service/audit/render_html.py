@@ -14,8 +14,8 @@ from typing import TYPE_CHECKING, Any, cast
 from jinja2 import Environment, PackageLoader, Undefined, select_autoescape
 from markupsafe import Markup
 
+from service.audit.check_rows import METRIC_LABELS
 from service.audit.realized import GAP_METRICS, RATE_METRICS
-from service.audit.snapshot import METRIC_LABELS
 from service.audit.snapshot_model import Estimate, Snapshot, VersionSection
 
 if TYPE_CHECKING:

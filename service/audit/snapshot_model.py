@@ -28,6 +28,7 @@ StatusName = Literal[
     "breach", "undecided", "holds", "too-few", "not-identifiable", "pending", "outside-promise"
 ]
 CheckName = Literal["parity", "four-fifths", "promise"]
+ChartName = Literal["parity", "four-fifths", "calibration"]
 
 
 class _Model(BaseModel):
@@ -59,6 +60,36 @@ class CostFigures(_Model):
     withheld: Withheld | None = None
 
 
+class PartialRate(_Model):
+    """A rate under selective labels: identified, estimated by inverse-probability weighting
+    over the randomized band, or worst/best-case bounds."""
+
+    kind: Literal["identified", "weighted", "bounds", "none"]
+    value: float | None
+    low: float | None
+    high: float | None
+    note: str
+    withheld: Withheld | None = None
+
+
+class ScoreSumsRow(_Model):
+    """Sums over the group's cases with an outcome (internal view only): the input of the
+    calibration tests and the risk-adjusted charts of later months."""
+
+    n: int
+    sum_y: float
+    sum_p: float
+    sum_p2: float
+    sum_p3: float
+    sum_p4: float
+    sum_yp: float
+    log_double: float
+    log_half: float
+    bin_counts: list[int]
+    bin_positives: list[int]
+    bin_score_sums: list[float]
+
+
 class GroupRow(_Model):
     group: str
     reference: bool
@@ -70,6 +101,8 @@ class GroupRow(_Model):
     four_fifths: FourFifthsFigures | None
     cost_per_case: CostFigures
     promised: dict[str, float] | None
+    partial_rates: dict[str, PartialRate] | None = None
+    score_sums: ScoreSumsRow | None = None
 
 
 class ShadowGroup(_Model):
@@ -112,6 +145,71 @@ class CheckRow(_Model):
     message: str
 
 
+class PValueRow(_Model):
+    statistic: float
+    p_value: float
+    p_adjusted: float
+
+
+class ReliabilityRow(_Model):
+    low: float
+    high: float
+    n: PublishedCount
+    mean_score: float | None
+    observed: Estimate
+
+
+class CalibrationRow(_Model):
+    """Calibration of the score within one group this month."""
+
+    group: str
+    status: Literal["departs", "no-evidence", "pending", "too-few"]
+    mean_score: float | None
+    observed_rate: float | None
+    spiegelhalter: PValueRow | None
+    observed_expected: PValueRow | None
+    reliability: list[ReliabilityRow]
+    withheld: Withheld | None = None
+
+
+class ChartSideRow(_Model):
+    side: Literal["above", "below"]
+    in_control: float
+    out_of_control: float
+    limit: float
+    statistic: float | None
+    path: list[float] | None
+    signal: bool
+    first_signal: str | None
+
+
+class MonthEstimateRow(_Model):
+    month: str
+    estimate: Estimate
+
+
+class TrendRow(_Model):
+    slope: float
+    standard_error: float
+    p_value: float
+    points: int
+
+
+class MonitorRow(_Model):
+    key: str
+    check: ChartName
+    metric: str
+    group: str
+    against: str
+    months: list[str]
+    sides: list[ChartSideRow]
+    estimates: list[MonthEstimateRow]
+    pooled: Estimate | None
+    trend: TrendRow | None
+    signal: bool
+    message: str
+
+
 class Costs(_Model):
     false_positive: float
     false_negative: float
@@ -137,6 +235,10 @@ class VersionSection(_Model):
     groups: list[GroupRow]
     shadows: list[ShadowSection]
     checks: list[CheckRow]
+    calibration: list[CalibrationRow] = []
+    calibration_family: str | None = None
+    monitoring: list[MonitorRow] = []
+    monitoring_design: str | None = None
 
 
 class MaturitySection(_Model):
@@ -160,7 +262,7 @@ class FamilySection(_Model):
 class AlertRow(_Model):
     level: Literal["breach", "watch"]
     version: int
-    check: CheckName
+    check: CheckName | ChartName
     metric: str
     group: str
     against: str

@@ -82,6 +82,7 @@ class CheckKind(StrEnum):
     PARITY = "parity"
     FOUR_FIFTHS = "four-fifths"
     PROMISE = "promise"
+    CALIBRATION = "calibration"
 
 
 class Procedure(StrEnum):

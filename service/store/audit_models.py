@@ -43,6 +43,7 @@ class _CohortCopy:
     action: Mapped[bool] = mapped_column(Boolean)
     probability: Mapped[float] = mapped_column(Double)
     shadow_action: Mapped[bool | None] = mapped_column(Boolean, default=None)
+    score: Mapped[float] = mapped_column(Double)
 
 
 COHORT_COLUMNS = ("policy", "version", "group", "shadow_version", "issued_at")

@@ -73,6 +73,7 @@ COPIED = (
     "action",
     "probability",
     "shadow_action",
+    "score",
 )
 
 
