@@ -380,20 +380,26 @@ def cut_mixture(hull: Hull, point: LpPoint) -> list[tuple[float, float]]:
     the point is A or B itself, and the rule is a single band.
     """
     gain = hull.tpr - hull.fpr
-    peak = int(np.argmax(gain))
-    level = float(np.clip(point.tpr - point.fpr, 0.0, gain[peak]))
+    # The gain rises strictly, may stay level along one segment of slope 1 (the whole hull
+    # when it is the chance diagonal: a group whose scores take one value), then falls
+    # strictly. A is sought left of the first maximum, B right of the last one, so a level
+    # segment is spanned by the pair (A, B) instead of being collapsed to its left end.
+    first_peak = int(np.argmax(gain))
     last = len(gain) - 1
-    if peak == 0:
+    last_peak = last - int(np.argmax(gain[::-1]))
+    level = float(np.clip(point.tpr - point.fpr, 0.0, gain[first_peak]))
+    if first_peak == 0:
         ka, frac_a, fa = 0, 0.0, float(hull.fpr[0])
     else:
-        ka = int(np.clip(np.searchsorted(gain[: peak + 1], level, side="left") - 1, 0, peak - 1))
+        rising = gain[: first_peak + 1]
+        ka = int(np.clip(np.searchsorted(rising, level, side="left") - 1, 0, first_peak - 1))
         frac_a, fa, _ = _on_line(hull, gain, ka, level)
-    if peak == last:
+    if last_peak == last:
         kb, frac_b, fb = last - 1, 1.0, float(hull.fpr[last])
     else:
-        falling = gain[peak:][::-1]
+        falling = gain[last_peak:][::-1]
         j = int(np.clip(np.searchsorted(falling, level, side="left") - 1, 0, len(falling) - 2))
-        kb = peak + len(falling) - 2 - j
+        kb = last_peak + len(falling) - 2 - j
         frac_b, fb, _ = _on_line(hull, gain, kb, level)
     beta = 1.0 if fb - fa <= 1e-15 else float(np.clip((fb - point.fpr) / (fb - fa), 0.0, 1.0))
     mixture: dict[float, float] = {}
