@@ -244,6 +244,19 @@ def test_four_fifths_worked_example_adverse_impact_is_removed() -> None:
     assert ff.expected_cost > solve(prepared, Criterion.MAX_UTILITY).expected_cost
 
 
+def test_four_fifths_tolerance_does_not_loosen_the_line() -> None:
+    # The tolerance bounds realized-vs-promised gaps; the 0.8 line itself has no slack, and
+    # with a reference group the comparator is that group (same worked example as above).
+    s, y, g = _blocks({"w": (48, 24, 32, 4), "b": (12, 6, 28, 4)})
+    prepared = prepare(make_data(s, y, g), DeriveSettings(1.0, 4.0))
+    for tolerance in (0.0, 0.1, 0.5):
+        rates = _favourable_rates(solve(prepared, Criterion.FOUR_FIFTHS, tolerance))
+        assert rates["b"] / rates["w"] == pytest.approx(0.8, abs=1e-9)
+    rates = _favourable_rates(solve(prepared, Criterion.FOUR_FIFTHS, 0.1, reference_group="b"))
+    assert rates["w"] >= 0.8 * rates["b"] - 1e-9  # 'w' is held to 0.8 x 'b', not vice versa
+    assert rates == pytest.approx({"w": 0.6, "b": 0.3})  # max-utility already meets that
+
+
 def test_four_fifths_strictly_less_than_080_is_the_threshold() -> None:
     # 29 CFR 1607.4(D) (from memory): a rate "less than four-fifths" of the highest is
     # evidence of adverse impact. Rates 60% / 45% / 48% / 51% give ratios 0.75 (adverse
