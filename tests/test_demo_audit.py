@@ -21,7 +21,7 @@ from service.store.audit_models import Outcome
 def test_demo_ends_with_a_report(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     ctx = run_demo(DemoContext(output_dir=tmp_path / "demo-output", cases=80), full_stages())
     out = capsys.readouterr().out
-    assert "Audit of " in out and "alert(s)" in out
+    assert "Audit of " in out and ("alert(s)" in out or "no alerts" in out)
     (html,) = (tmp_path / "demo-output").glob("report-*.html")
     (csv,) = (tmp_path / "demo-output").glob("report-*.csv")
     assert str(html.resolve()) in out
