@@ -9,7 +9,7 @@ from contextlib import asynccontextmanager
 import anyio.to_thread
 from fastapi import FastAPI
 
-from service.api import health, log, outcomes, policies, recommendations, reports
+from service.api import health, log, outcomes, policies, recommendations, reports, warnings
 from service.api.deps import KeyCache
 from service.api.errors import install_error_handlers
 from service.api.limits import BodySizeLimit
@@ -76,5 +76,6 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.include_router(log.router)
     app.include_router(outcomes.router)
     app.include_router(reports.router)
+    app.include_router(warnings.router)
     app.add_middleware(BodySizeLimit, max_bytes=settings.max_body_bytes)
     return app

@@ -39,6 +39,8 @@ ACCESS: dict[tuple[str, str], str] = {
     ("POST", "/v1/audits"): "audit",
     ("GET", "/v1/reports/{policy}"): "audit",
     ("GET", "/v1/reports/{policy}/{month_file}"): "audit",
+    ("GET", "/v1/reports/{policy}/history"): "audit",
+    ("GET", "/v1/warnings/{policy}"): "audit",
     ("POST", "/v1/outcomes"): "scoring",
     ("POST", "/v1/outcomes/batch"): "scoring",
     ("POST", "/v1/recommendations/{recommendation_id}/final"): "scoring",

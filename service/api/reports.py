@@ -17,6 +17,7 @@ from pydantic import BaseModel, ConfigDict, Field
 
 from service.api.deps import AppSettings, AuditKey, DbSession
 from service.api.errors import error_responses
+from service.audit.history import history_csv, history_rows, load_snapshots
 from service.audit.job import run_audit
 from service.audit.month import Month
 from service.audit.render_csv import to_csv
@@ -106,6 +107,52 @@ def post_audit(
 def get_reports(policy: str, session: DbSession, _key: AuditKey) -> dict[str, Any]:
     begin_read_only(session)
     return list_reports(session, policy)
+
+
+@router.get(
+    "/v1/reports/{policy}/history",
+    summary="The cross-month view: one row per month x version x group x check",
+    response_model=None,
+    responses={
+        200: {
+            "content": {"application/json": {}, "text/csv": {}},
+            "description": "Rows from the latest snapshot of each month",
+        }
+    },
+)
+def get_history(
+    policy: str,
+    session: DbSession,
+    _key: AuditKey,
+    first: Annotated[str, Query(alias="from", pattern=r"^\d{4}-\d{2}$", examples=["2026-01"])],
+    last: Annotated[str, Query(alias="to", pattern=r"^\d{4}-\d{2}$", examples=["2026-12"])],
+    format: Annotated[Literal["json", "csv"], Query(description="json or csv")] = "json",
+    view: Annotated[
+        Literal["published", "internal"],
+        Query(description="published (small cells suppressed) or internal (every count)"),
+    ] = "published",
+) -> Response:
+    begin_read_only(session)
+    snapshots = load_snapshots(
+        session, policy, Month.parse(first, "from"), Month.parse(last, "to"), view
+    )
+    rows = history_rows(snapshots)
+    headers: dict[str, str] = {"X-Evenhand-View": view}
+    if format == "csv":
+        name = f"{policy}-{first}-{last}-history{'' if view == 'published' else '-internal'}.csv"
+        headers["Content-Disposition"] = f'attachment; filename="{name}"'
+        return Response(history_csv(rows), media_type="text/csv", headers=headers)
+    body = {
+        "policy": policy,
+        "from": first,
+        "to": last,
+        "view": view,
+        "months": [s.month for s in snapshots],
+        "rows": [r.model_dump(mode="json") for r in rows],
+    }
+    return Response(
+        json.dumps(body, ensure_ascii=False), media_type="application/json", headers=headers
+    )
 
 
 @router.get(

@@ -16,7 +16,7 @@ from markupsafe import Markup
 
 from service.audit.check_rows import METRIC_LABELS
 from service.audit.realized import GAP_METRICS, RATE_METRICS
-from service.audit.snapshot_model import Estimate, Snapshot, VersionSection
+from service.audit.snapshot_model import Estimate, MonitorRow, Snapshot, VersionSection
 
 if TYPE_CHECKING:
     from matplotlib.figure import Figure
@@ -149,6 +149,91 @@ def _roc_figure(version: VersionSection) -> Figure | None:
     return fig
 
 
+def _reliability_figure(version: VersionSection) -> Figure | None:
+    """Observed outcome rate against mean score per bin, one panel per group."""
+    rows = [
+        c for c in version.calibration if any(b.observed.value is not None for b in c.reliability)
+    ]
+    if not rows:
+        return None
+    cols = min(3, len(rows))
+    nrows = math.ceil(len(rows) / cols)
+    fig, axes = _figure(7.6, 2.3 * nrows, nrows, cols)
+    for ax in axes.flat[len(rows) :]:
+        ax.set_visible(False)
+    for ax, c in zip(axes.flat, rows, strict=False):
+        ax.plot([0, 1], [0, 1], color="#bbb", linewidth=0.8, linestyle=":")
+        for b in c.reliability:
+            e = b.observed
+            if e.value is None or b.mean_score is None:
+                continue
+            ax.errorbar(
+                [b.mean_score],
+                [e.value],
+                yerr=_err(e),
+                fmt="o",
+                color=_colour(0),
+                capsize=2,
+                markersize=3,
+            )
+        ax.set_xlim(0, 1)
+        ax.set_ylim(0, 1)
+        ax.set_title(f"{c.group} ({c.status})", fontsize=8, loc="left")
+        ax.set_xlabel("mean score in bin", fontsize=7)
+        ax.set_ylabel("observed rate", fontsize=7)
+    fig.tight_layout()
+    return fig
+
+
+def _monitor_figure(m: MonitorRow) -> Figure | None:
+    """The monthly estimates with their intervals, and the charts' statistics with limits."""
+    shown = [e for e in m.estimates if e.estimate.value is not None]
+    has_path = any(s.path for s in m.sides)
+    if not shown and not has_path:
+        return None
+    fig, axes = _figure(7.6, 2.0, 1, 2)
+    left, right = axes[0][0], axes[0][1]
+    months = m.months
+    xs = [months.index(e.month) for e in shown]
+    ys = [e.estimate.value for e in shown]
+    lo = [e.estimate.low for e in shown]
+    hi = [e.estimate.high for e in shown]
+    if shown:
+        left.fill_between(xs, lo, hi, color=_colour(0), alpha=0.15, linewidth=0)
+        left.plot(xs, ys, marker="o", markersize=3, color=_colour(0))
+    left.axhline(0 if m.check != "four-fifths" else 0.8, color="#999", linewidth=0.8)
+    left.set_title("estimate by month (95% interval)", fontsize=8, loc="left")
+    for i, side in enumerate(m.sides):
+        if side.path is None:
+            continue
+        colour = _colour(i + 1)
+        right.plot(
+            range(len(side.path)),
+            side.path,
+            marker="o",
+            markersize=3,
+            color=colour,
+            label=f"{side.side} chart",
+        )
+        right.axhline(side.limit, color=colour, linewidth=0.8, linestyle="--")
+    right.set_title("chart statistics; dashed: limits", fontsize=8, loc="left")
+    for ax in (left, right):
+        ax.set_xticks(range(len(months)), [x[2:] for x in months], rotation=60, fontsize=6)
+        ax.grid(axis="y", color="#eee", linewidth=0.6)
+    if has_path:
+        right.legend(fontsize=6, frameon=False)
+    fig.tight_layout()
+    return fig
+
+
+def reliability_chart(version: VersionSection) -> str | None:
+    return _draw(_reliability_figure, version)
+
+
+def monitor_chart(monitor: MonitorRow) -> str | None:
+    return _draw(_monitor_figure, monitor)
+
+
 def rates_chart(version: VersionSection) -> str | None:
     """One panel per rate: each group's point and Wilson 95% interval."""
     return _draw(_rates_figure, version)
@@ -213,7 +298,15 @@ _ENV.globals["labels"] = METRIC_LABELS
 
 
 def to_html(snapshot: Snapshot) -> str:
-    charts = {v.version: {"rates": rates_chart(v), "roc": roc_chart(v)} for v in snapshot.versions}
+    charts = {
+        v.version: {
+            "rates": rates_chart(v),
+            "roc": roc_chart(v),
+            "reliability": reliability_chart(v),
+            "monitors": {m.key: monitor_chart(m) for m in v.monitoring},
+        }
+        for v in snapshot.versions
+    }
     undecided: dict[tuple[int, str], int] = {}
     for v in snapshot.versions:
         for c in v.checks:

@@ -24,9 +24,23 @@ def _command_modules() -> list[ModuleType]:
         report,
         schema,
         serve,
+        warnings,
     )
 
-    return [serve, migrate, keys, policy, log, demo, demo_data, derive, schema, audit, report]
+    return [
+        serve,
+        migrate,
+        keys,
+        policy,
+        log,
+        demo,
+        demo_data,
+        derive,
+        schema,
+        audit,
+        report,
+        warnings,
+    ]
 
 
 def build_parser() -> argparse.ArgumentParser:

@@ -7,6 +7,7 @@ import json
 import sys
 from pathlib import Path
 
+from service.audit.history import history_csv, history_rows, load_snapshots
 from service.audit.month import Month
 from service.audit.render_csv import to_csv
 from service.audit.render_html import to_html
@@ -56,6 +57,21 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
         help="the internal view: every count (not for publication)",
     )
     export.set_defaults(handler=_export)
+
+    history = sub.add_parser(
+        "history",
+        help="the cross-month view: one row per month x version x group x check",
+    )
+    history.add_argument("--policy", required=True)
+    history.add_argument("--from", dest="first", required=True, help="first month YYYY-MM")
+    history.add_argument("--to", dest="last", required=True, help="last month YYYY-MM")
+    history.add_argument("--format", choices=("table", "csv", "json"), default="table")
+    history.add_argument(
+        "--internal",
+        action="store_true",
+        help="the internal view: every count (not for publication)",
+    )
+    history.set_defaults(handler=_history)
 
 
 def _load(args: argparse.Namespace) -> Snapshot:
@@ -123,4 +139,48 @@ def _export(args: argparse.Namespace) -> int:
     print(f"rendering {args.format} ...", file=sys.stderr)
     path.write_text(text, encoding="utf-8")
     print(path)
+    return 0
+
+
+def _history(args: argparse.Namespace) -> int:
+    view: View = "internal" if args.internal else "published"
+    try:
+        first, last = Month.parse(args.first, "from"), Month.parse(args.last, "to")
+        factory = create_session_factory(create_db_engine(Settings()))
+        with factory() as session:
+            snapshots = load_snapshots(session, args.policy, first, last, view)
+    except ServiceError as exc:
+        raise CliError(exc.message) from None
+    rows = history_rows(snapshots)
+    if args.format == "csv":
+        sys.stdout.write(history_csv(rows))
+        return 0
+    if args.format == "json":
+        print(json.dumps([r.model_dump(mode="json") for r in rows], indent=2, ensure_ascii=False))
+        return 0
+    if not rows:
+        print(f"no audited months of {args.policy!r} between {first} and {last}")
+        return 0
+    if view == "internal":
+        print("INTERNAL VIEW: small cells are not suppressed; do not publish")
+    print(
+        f"{'month':<7}  {'v':>2}  {'check':<11}  {'rate':<16}  {'group':<20}  "
+        f"{'status':<16}  {'estimate':>24}  chart"
+    )
+    for r in rows:
+        e = r.estimate
+        figure: str
+        if e.value is None or e.low is None or e.high is None:
+            figure = e.withheld or "-"
+        else:
+            figure = f"{e.value:+.3f} [{e.low:+.3f}, {e.high:+.3f}]"
+        chart = "-"
+        if r.chart is not None:
+            chart = (
+                "SIGNAL since " + (r.chart.first_signal or "?") if r.chart.signal else "in control"
+            )
+        print(
+            f"{r.month:<7}  {r.version:>2}  {r.check:<11}  {r.metric:<16}  {r.group:<20}  "
+            f"{r.status:<16}  {figure:>24}  {chart}"
+        )
     return 0
