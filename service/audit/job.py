@@ -119,12 +119,13 @@ def run_audit(
     documents = _load_documents(session, policy)
     seen = {g for cells, _ in per_version.values() for g in cells}
     _check_reference(reference_group, documents, seen)
-    sums = count_score_sums(session, policy, start, end)
+    selective = {v for v in per_version if documents[v][0].outcome_observed_after != "both"}
+    sums = count_score_sums(session, policy, start, end, selective)
     progress("  counted score sums and randomization zones")
     versions = []
     for v, (cells, shadows) in sorted(per_version.items()):
         mode = documents[v][0].outcome_observed_after
-        selective = {g: sums.selective((v, g), mode) for g in cells}
+        zones = {g: sums.selective((v, g), mode) for g in cells}
         versions.append(
             VersionCounts(
                 v,
@@ -133,7 +134,7 @@ def run_audit(
                 shadows,
                 documents[v][1],
                 {g: sums.scores[(v, g)] for g in cells if (v, g) in sums.scores},
-                {g: c for g, c in selective.items() if c is not None},
+                {g: c for g, c in zones.items() if c is not None},
             )
         )
     history = month_history(session, policy, month, {v.version for v in versions})

@@ -50,9 +50,11 @@ from service.audit.verdicts import (
 )
 from service.policy.document import Criterion, PolicyDocument
 from service.stats.cusum import (
+    CONTROL_LIMIT_FLOOR,
     StepDistribution,
     binomial_llr,
     binomial_step_distribution,
+    coarsened,
     control_limit,
     cusum_path,
     risk_adjusted_llr,
@@ -69,6 +71,8 @@ WINDOW = 24
 """Months of history the charts look back over (the latest snapshot of each)."""
 STATES = 100
 """Grid points of the Markov chain (0.1-0.3% from the exact run length; stats.cusum)."""
+STEP_POINTS = 401
+"""Support points a month's increment distribution is coarsened to (mean kept exactly)."""
 _EDGE = 1e-4
 """Design probabilities are kept inside [_EDGE, 1 - _EDGE]."""
 
@@ -190,11 +194,14 @@ def _designs(kind: CheckKind, eps: float) -> tuple[_Design, ...]:
     return (_Design("above", eps, 2 * eps, False), _Design("below", -eps, -2 * eps, False))
 
 
-def _limit(step: StepDistribution, false_alarm: float) -> float | None:
+def _limit(step: StepDistribution, false_alarm: float) -> float:
     try:
-        return control_limit([step], HORIZON, false_alarm, STATES)
-    except ValueError:  # no increment can be positive: the chart could never signal
-        return None
+        return control_limit([coarsened(step, STEP_POINTS)], HORIZON, false_alarm, STATES)
+    except ValueError:
+        # In control, no month's increment can be positive (a large volume: the evidence of
+        # any one month is decisive). Any positive limit then meets the bound; the smallest
+        # signals on the first month whose data favour the out-of-control model.
+        return CONTROL_LIMIT_FLOOR
 
 
 def _chart(
@@ -222,8 +229,6 @@ def _side(design: _Design, series: _Series, false_alarm: float) -> ChartSide | N
         return None
     p0, p1 = rates
     limit = _limit(binomial_step_distribution(mean_n, p0, p0, p1), false_alarm)
-    if limit is None:
-        return None
     return _chart(
         design.side, design.in_control, design.out_of_control, increments, series.months, limit
     )
@@ -293,8 +298,7 @@ def _outcome_monitor(
             for (_, ss), term in zip(used, terms, strict=True)
         ]
         limit = _limit(risk_adjusted_step_distribution(risks, per_month, odds), false_alarm)
-        if limit is not None:
-            sides.append(_chart(side, 1.0, odds, increments, months, limit))
+        sides.append(_chart(side, 1.0, odds, increments, months, limit))
     estimates = []
     for month, ss in used:
         p = ss.power

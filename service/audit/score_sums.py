@@ -88,26 +88,25 @@ class OutcomeSums:
         return self.zones.get(key, _Zones()).selective(mode)
 
 
-def count_score_sums(session: Session, policy: str, start: datetime, end: datetime) -> OutcomeSums:
-    """Score sums and zone tallies of every (version, group) of the month."""
+def count_score_sums(
+    session: Session, policy: str, start: datetime, end: datetime, zones_of: set[int]
+) -> OutcomeSums:
+    """Score sums of every (version, group) of the month, and zone tallies of the versions in
+    ``zones_of`` (those whose outcomes are seen only after some decisions)."""
     o = Outcome.__table__.c
     s = o.score
     unit = _in_unit(s)
-    zone = _zone(o.probability)
-    band = zone == 1
+    in_month = (o.policy == policy, o.issued_at >= start, o.issued_at < end)
 
     def unit_sum(expr: Any) -> Any:
         return func.sum(case((unit, expr), else_=None))
 
-    outcome_rows = session.execute(
+    score_rows = session.execute(
         select(
             o.version,
             o.group,
             o.outcome,
-            o.action,
-            zone.label("zone"),
             _bin(s).label("bin"),
-            func.count().label("rows"),
             func.count(case((unit, 1), else_=None)).label("unit_rows"),
             unit_sum(s).label("s1"),
             unit_sum(s * s).label("s2"),
@@ -115,31 +114,17 @@ def count_score_sums(session: Session, policy: str, start: datetime, end: dateti
             unit_sum(s * s * s * s).label("s4"),
             unit_sum(func.ln(1.0 + s)).label("log_double"),
             unit_sum(func.ln(1.0 - 0.5 * s)).label("log_half"),
-            func.sum(case((and_(band, o.probability > 0.0), 1.0 / o.probability))).label("inv_p"),
-            func.sum(case((and_(band, o.probability < 1.0), 1.0 / (1.0 - o.probability)))).label(
-                "inv_q"
-            ),
         )
-        .where(o.policy == policy, o.issued_at >= start, o.issued_at < end)
-        .group_by(
-            o.version, o.group, o.outcome, o.action, literal_column("zone"), literal_column("bin")
-        )
+        .where(*in_month)
+        .group_by(o.version, o.group, o.outcome, literal_column("bin"))
     )
     scores: dict[CellKey, ScoreSums] = {}
-    zones: dict[CellKey, _Zones] = {}
-    for row in outcome_rows:
-        key = (int(row.version), str(row.group))
-        y, acted, z = int(row.outcome), bool(row.action), int(row.zone)
-        zt = zones.setdefault(key, _Zones())
-        zt.observed[(z, acted, y)] = zt.observed.get((z, acted, y), 0) + int(row.rows)
-        if row.inv_p is not None:
-            zt.inverse_p[(acted, y)] = zt.inverse_p.get((acted, y), 0.0) + float(row.inv_p)
-        if row.inv_q is not None:
-            zt.inverse_q[(acted, y)] = zt.inverse_q.get((acted, y), 0.0) + float(row.inv_q)
+    for row in score_rows:
         n = int(row.unit_rows)
         if not n:
             continue
-        ss = scores.setdefault(key, ScoreSums())
+        y = int(row.outcome)
+        ss = scores.setdefault((int(row.version), str(row.group)), ScoreSums())
         s1 = float(row.s1)
         ss.power = ss.power + PowerSums(
             n=n,
@@ -156,16 +141,65 @@ def count_score_sums(session: Session, policy: str, start: datetime, end: dateti
         ss.bin_counts[b] += n
         ss.bin_positives[b] += n * y
         ss.bin_score_sums[b] += s1
+    zones: dict[CellKey, _Zones] = {}
+    if zones_of:
+        _count_zones(session, policy, start, end, sorted(zones_of), zones)
+    return OutcomeSums(scores, zones)
 
+
+def _count_zones(
+    session: Session,
+    policy: str,
+    start: datetime,
+    end: datetime,
+    versions: list[int],
+    zones: dict[CellKey, _Zones],
+) -> None:
+    o = Outcome.__table__.c
+    zone = _zone(o.probability)
+    band = zone == 1
+    for row in session.execute(
+        select(
+            o.version,
+            o.group,
+            o.outcome,
+            o.action,
+            zone.label("zone"),
+            func.count().label("rows"),
+            func.sum(case((and_(band, o.probability > 0.0), 1.0 / o.probability))).label("inv_p"),
+            func.sum(case((and_(band, o.probability < 1.0), 1.0 / (1.0 - o.probability)))).label(
+                "inv_q"
+            ),
+        )
+        .where(
+            o.policy == policy,
+            o.version.in_(versions),
+            o.issued_at >= start,
+            o.issued_at < end,
+        )
+        .group_by(o.version, o.group, o.outcome, o.action, literal_column("zone"))
+    ):
+        key = (int(row.version), str(row.group))
+        y, acted, z = int(row.outcome), bool(row.action), int(row.zone)
+        zt = zones.setdefault(key, _Zones())
+        zt.observed[(z, acted, y)] = zt.observed.get((z, acted, y), 0) + int(row.rows)
+        if row.inv_p is not None:
+            zt.inverse_p[(acted, y)] = zt.inverse_p.get((acted, y), 0.0) + float(row.inv_p)
+        if row.inv_q is not None:
+            zt.inverse_q[(acted, y)] = zt.inverse_q.get((acted, y), 0.0) + float(row.inv_q)
     r = Recommendation.__table__.c
     rzone = _zone(r.probability)
     for row in session.execute(
         select(r.version, r.group, r.action, rzone.label("zone"), func.count().label("rows"))
-        .where(r.policy == policy, r.issued_at >= start, r.issued_at < end)
+        .where(
+            r.policy == policy,
+            r.version.in_(versions),
+            r.issued_at >= start,
+            r.issued_at < end,
+        )
         .group_by(r.version, r.group, r.action, literal_column("zone"))
     ):
         zt = zones.setdefault((int(row.version), str(row.group)), _Zones())
         zt.cases[int(row.zone)] += int(row.rows)
         if int(row.zone) == 1 and row.action:
             zt.band_actions += int(row.rows)
-    return OutcomeSums(scores, zones)

@@ -184,6 +184,37 @@ def risk_adjusted_step_distribution(
     return StepDistribution(y * np.log(odds_ratio) - constant, probabilities)
 
 
+def coarsened(step: StepDistribution, points: int) -> StepDistribution:
+    """``step`` on at most ``points`` equally spaced values, each value's probability shared
+    between its two neighbouring grid values in proportion to closeness.
+
+    The mean is kept exactly; the variance grows by at most ``(spacing / 2)^2``. A monthly
+    increment of thousands of cases has as many support values, while the chart's chain only
+    needs its shape: coarsening keeps the cost of a control limit independent of the volume.
+    """
+    if points < 2:
+        raise ValueError(f"need at least 2 points, got {points}")
+    if step.values.size <= points:
+        return step
+    # Values with negligible probability are dropped first (as the chain drops them), so the
+    # grid spans only the increments that can happen.
+    keep = step.probabilities >= NEGLIGIBLE_PROBABILITY
+    values, weights = step.values[keep], step.probabilities[keep]
+    if values.size <= points:
+        return StepDistribution(values, weights / weights.sum())
+    low, high = float(values.min()), float(values.max())
+    grid = np.linspace(low, high, points)
+    position = (values - low) / (grid[1] - grid[0])
+    lower = np.minimum(position.astype(np.int64), points - 2)
+    fraction = np.clip(position - lower, 0.0, 1.0)
+    probabilities = np.bincount(
+        np.concatenate([lower, lower + 1]),
+        weights=np.concatenate([weights * (1.0 - fraction), weights * fraction]),
+        minlength=points,
+    )
+    return StepDistribution(grid, probabilities / probabilities.sum())
+
+
 def cusum_path(increments: Sequence[float], start: float = 0.0) -> list[float]:
     """``S_t = max(0, S_{t-1} + W_t)`` for ``t = 1..T`` from ``S_0 = start``.
 

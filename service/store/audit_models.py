@@ -63,6 +63,7 @@ class Outcome(_CohortCopy, Base):
             "action",
             "probability",
             "shadow_action",
+            "score",
         ),
     )
 

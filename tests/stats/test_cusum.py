@@ -19,6 +19,7 @@ from service.stats.cusum import (
     average_run_length,
     binomial_llr,
     binomial_step_distribution,
+    coarsened,
     control_limit,
     cusum_path,
     risk_adjusted_llr,
@@ -358,3 +359,27 @@ def test_bad_input_is_refused() -> None:
         control_limit([never], 12, 0.05)
     with pytest.raises(ValueError):
         run_length_cdf(0.0, [never], 12)
+
+
+def test_coarsening_keeps_the_mean_and_the_false_alarm_bound() -> None:
+    # A month of 20,000 cases: 20,001 support values, of which those with probability above
+    # 1e-15 are put on 401 points. The mean of what is kept is exact, the variance grows by
+    # at most a quarter spacing squared, and the limit found on the coarse distribution still
+    # meets the false-alarm bound when the full distribution runs through the same chain.
+    step = binomial_step_distribution(20_000, 0.6, 0.6, 0.62)
+    small = coarsened(step, 401)
+    assert small.values.size == 401
+    kept = step.probabilities >= 1e-15
+    w = step.probabilities[kept] / step.probabilities[kept].sum()
+    mean = float(step.values[kept] @ w)
+    assert float(small.values @ small.probabilities) == pytest.approx(mean, rel=1e-9)
+    var = float((step.values[kept] - mean) ** 2 @ w)
+    spacing = float(small.values[1] - small.values[0])
+    small_var = float((small.values - mean) ** 2 @ small.probabilities)
+    assert var * (1 - 1e-9) <= small_var <= var + spacing**2 / 4 + 1e-12
+    for n, p0, p1 in ((20_000, 0.6, 0.62), (900, 0.75, 0.8)):
+        full = binomial_step_distribution(n, p0, p0, p1)
+        h = control_limit([coarsened(full, 401)], 12, 0.01, 100)
+        assert run_length_cdf(h, [full], 12, 100)[-1] <= 0.01 * 1.02
+        assert h == pytest.approx(control_limit([full], 12, 0.01, 100), rel=0.15)
+    assert coarsened(binomial_step_distribution(30, 0.5, 0.5, 0.6), 401).values.size == 31
