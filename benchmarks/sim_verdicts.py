@@ -255,7 +255,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         g = t.group
         results["power"].append({"cases": cases, "volume": volume, "months": n, **g})
         print(
-            f"| {cases:,} | {volume:,} | {pos_g:.0f} | {pos_r:.0f} | {g['tested'] / n:.2f} | "
+            f"| {cases:,} | {volume:,} | {pos_g:.0f} | {pos_r:,.0f} | {g['tested'] / n:.2f} | "
             f"{wilson(g['holm'], n)} | {wilson(g['by'], n)} | {g['unadjusted'] / n:.3f} | "
             f"{g['any_holm'] / n:.3f} |",
             flush=True,
@@ -266,8 +266,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     for r in control:
         print(
             f"- {r['volume']:,} decisions/month, {r['promises']} promises: "
-            f"{r['old_rule'] / r['months']:.1%} of months alerted (new rule, any breach by "
-            f"Holm: {r['breach_holm'] / r['months']:.1%})"
+            f"{r['old_rule'] / r['months']:.2%} of months alerted (new rule, any breach by "
+            f"Holm: {r['breach_holm'] / r['months']:.2%})"
         )
     elapsed = time.perf_counter() - started
     results["seconds"] = elapsed
