@@ -29,7 +29,7 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from service.policy.derive import CalibrationData, DeriveSettings, prepare, solve  # noqa: E402
+from service.policy.derive import solve  # noqa: E402
 from service.policy.document import (  # noqa: E402
     Criterion,
     PolicyDocument,
@@ -42,6 +42,7 @@ from service.policy.rules import (  # noqa: E402
     keyed_draws,
     rule_probabilities,
 )
+from service.policy.units import CalibrationData, DeriveSettings, prepare  # noqa: E402
 from tests.policy.reference_lp import reference_cost  # noqa: E402
 
 SOME = (Criterion.MAX_UTILITY, Criterion.EQUAL_OPPORTUNITY, Criterion.EQUALIZED_ODDS)

@@ -10,8 +10,8 @@ import numpy as np
 import numpy.typing as npt
 
 from service.cli.common import CliError
-from service.policy.derive import CalibrationData
 from service.policy.document import GROUP_SEPARATOR
+from service.policy.units import CalibrationData
 
 
 def load_calibration(

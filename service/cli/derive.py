@@ -1,6 +1,7 @@
 """``evenhand derive``: fit a policy to calibration data under one criterion.
 
-Reads the CSV, derives the rules (service.policy.derive), compares every criterion, and
+Reads the CSV, derives the rules on every row (service.policy.derive), cross-fits every
+criterion for honest promises and the price-of-parity table (service.policy.crossfit), and
 writes the policy document, the JSON report and optionally an HTML page. Nothing is written
 unless everything succeeded.
 """
@@ -19,26 +20,24 @@ from pydantic import ValidationError
 
 from service.cli.calibration_csv import load_calibration
 from service.cli.common import CliError
+from service.cli.derive_text import console_table
 from service.cli.output import check_targets, write_all
-from service.policy.derive import (
-    FRONTIER_TOLERANCES,
-    DeriveError,
-    DeriveSettings,
-    PolicyIdentity,
-    build_document,
+from service.policy.crossfit import (
+    DEFAULT_FOLDS,
+    DEFAULT_FOLDS_SEED,
+    assign_folds,
     compare,
-    frontier,
-    prepare,
-    solve,
+    promise_warnings,
 )
+from service.policy.derive import FRONTIER_TOLERANCES, frontier, solve
+from service.policy.derive_document import PolicyIdentity, build_document
 from service.policy.derive_report import build_report
 from service.policy.document import Criterion, document_json
-from service.policy.holdout import holdout_rates, stratified_split, subset
-from service.policy.roc import roc_curve
+from service.policy.units import DeriveError, DeriveSettings, prepare
 
 _SLUG = re.compile(r"^[a-z0-9][a-z0-9._-]{0,63}$")
 DEFAULT_MIN_GROUP_SIZE = 50
-DEFAULT_HOLDOUT_SEED = 20261201
+MAX_TOLERANCE = 0.5
 
 
 def _check_non_negative(option: str, value: float) -> None:
@@ -51,7 +50,8 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
         "derive",
         help="derive a policy from calibration data under a parity criterion",
         description="Fit per-group rules to calibration data (score, outcome, group columns) "
-        "minimising expected cost under a criterion; compare every criterion.",
+        "minimising expected cost under a criterion; promise cross-fitted rates; compare "
+        "every criterion.",
     )
     p.add_argument("csv", type=Path, help="calibration data (CSV with a header row)")
     p.add_argument("--score", required=True, help="column with the score in [0, 1]")
@@ -62,9 +62,33 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     p.add_argument("--criterion", required=True, choices=[c.value for c in Criterion])
     p.add_argument("--cost-fp", required=True, type=float, help="cost of acting when y=0")
     p.add_argument("--cost-fn", required=True, type=float, help="cost of not acting at y=1")
-    p.add_argument("--tolerance", type=float, default=0.0, help="bound on every pairwise gap (0)")
-    p.add_argument("--holdout", type=float, help="fraction held out to check the rates (0..1)")
-    p.add_argument("--holdout-seed", type=int, default=DEFAULT_HOLDOUT_SEED)
+    p.add_argument(
+        "--tolerance",
+        required=True,
+        type=float,
+        help=f"largest gap that keeps the promise, in (0, {MAX_TOLERANCE}]: between groups "
+        "(gap criteria) and between realized and promised rates",
+    )
+    p.add_argument(
+        "--reference-group",
+        help="group key (values joined by '|') gaps are taken against and the four-fifths "
+        "comparator (default: the highest favourable rate)",
+    )
+    p.add_argument(
+        "--capacity", type=float, help="largest overall action rate, in (0, 1] (default: none)"
+    )
+    p.add_argument(
+        "--folds",
+        type=int,
+        default=DEFAULT_FOLDS,
+        help=f"cross-fitting folds for the promised rates, >= 2 ({DEFAULT_FOLDS})",
+    )
+    p.add_argument(
+        "--folds-seed",
+        type=int,
+        default=DEFAULT_FOLDS_SEED,
+        help=f"seed of the stratified fold split ({DEFAULT_FOLDS_SEED})",
+    )
     p.add_argument(
         "--min-group-size",
         type=int,
@@ -75,8 +99,8 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
         "--fallback",
         choices=["none", "parent", "default"],
         default="none",
-        help="for small groups: the parent group's rule, one default rule fitted on the "
-        "pooled small groups, or none (small groups are an error)",
+        help="for small groups and groups with one outcome class: the parent group's rule, "
+        "one default rule fitted on the pooled groups that use it, or none (an error)",
     )
     p.add_argument(
         "--unknown-groups",
@@ -100,7 +124,7 @@ def _progress(message: str) -> None:
     print(message, file=sys.stderr, flush=True)
 
 
-def run(args: argparse.Namespace) -> int:
+def _check_args(args: argparse.Namespace) -> None:
     name = args.name or args.out.stem
     if not _SLUG.match(name):
         raise CliError(f"--name {name!r}: use lowercase letters, digits, '.', '_' or '-'")
@@ -111,20 +135,37 @@ def run(args: argparse.Namespace) -> int:
         raise CliError("--group: each column may be named only once")
     _check_non_negative("--cost-fp", args.cost_fp)
     _check_non_negative("--cost-fn", args.cost_fn)
-    # Every criterion is met at the chance diagonal, so only a negative tolerance is infeasible.
-    if not (math.isfinite(args.tolerance) and args.tolerance >= 0):
-        raise CliError(f"--tolerance {args.tolerance}: infeasible, must be a finite number >= 0")
     if args.cost_fp == 0 and args.cost_fn == 0:
         raise CliError("--cost-fp and --cost-fn cannot both be 0")
-    if args.holdout is not None and not 0.0 < args.holdout < 1.0:
-        raise CliError(f"--holdout {args.holdout}: must be between 0 and 1")
+    if not (math.isfinite(args.tolerance) and 0 < args.tolerance <= MAX_TOLERANCE):
+        raise CliError(
+            f"--tolerance {args.tolerance}: must be > 0 and <= {MAX_TOLERANCE} (the largest "
+            "gap, between groups and between realized and promised rates, that keeps the "
+            "promise)"
+        )
+    if args.capacity is not None and not (math.isfinite(args.capacity) and 0 < args.capacity <= 1):
+        raise CliError(f"--capacity {args.capacity}: must be > 0 and <= 1")
+    if args.folds < 2:
+        raise CliError(f"--folds {args.folds}: must be at least 2")
     if args.min_group_size < 1:
         raise CliError("--min-group-size must be at least 1")
+
+
+def run(args: argparse.Namespace) -> int:
+    _check_args(args)
     outputs = [args.out, args.report] + ([args.html] if args.html else [])
     check_targets(outputs)
 
     _progress(f"reading {args.csv} ...")
     data = load_calibration(args.csv, args.score, args.outcome, args.group)
+    ref = args.reference_group
+    if ref is not None and ref not in data.group_keys:
+        raise CliError(
+            f"--reference-group {ref!r} is not a group in the data "
+            f"(groups: {', '.join(data.group_keys)})"
+        )
+    if args.folds > len(data.scores):
+        raise CliError(f"--folds {args.folds}: more folds than rows ({len(data.scores)})")
     criterion = Criterion(args.criterion)
     settings = DeriveSettings(
         cost_fp=args.cost_fp,
@@ -134,37 +175,51 @@ def run(args: argparse.Namespace) -> int:
         fallback=args.fallback,
     )
     identity = PolicyIdentity(
-        name=name,
+        name=args.name or args.out.stem,
         description=args.description,
         score_meaning=args.score_meaning or f"estimated P({args.outcome} = 1)",
         action_label=args.action_label,
         no_action_label=args.no_action_label,
         unknown_groups=args.unknown_groups,
     )
+    options: dict[str, Any] = {"capacity": args.capacity, "reference_group": ref}
     try:
-        fit = data
-        held = None
-        if args.holdout is not None:
-            fit_rows, held_rows = stratified_split(data, args.holdout, args.holdout_seed)
-            fit, held = subset(data, fit_rows), subset(data, held_rows)
-        _progress(f"deriving on {len(fit.scores)} rows in {len(fit.group_keys)} groups ...")
-        prepared = prepare(fit, settings)
-        solution = solve(prepared, criterion, args.tolerance)
-        policy = build_document(prepared, solution, identity)
-        _progress("comparing every criterion and the frontier ...")
-        comparison = compare(prepared, args.tolerance)
-        front = frontier(prepared, criterion, FRONTIER_TOLERANCES)
-        holdout = None
-        if held is not None:
-            rates, cost = holdout_rates(policy, held)
-            holdout = (rates, cost, args.holdout, args.holdout_seed)
+        _progress(f"deriving on {len(data.scores)} rows in {len(data.group_keys)} groups ...")
+        prepared = prepare(data, settings)
+        solution = solve(prepared, criterion, args.tolerance, **options)
+        _progress(f"cross-fitting every criterion on {args.folds} folds ...")
+        folds = assign_folds(data, args.folds, args.folds_seed)
+        comparison = compare(prepared, args.tolerance, folds, args.folds, **options)
+        chosen = next(r for r in comparison if r.criterion is criterion)
+        if chosen.cross_fitted is None:
+            raise DeriveError(chosen.note)
+        cross = chosen.cross_fitted
+        policy = build_document(prepared, solution, cross, identity)
+        front = frontier(prepared, criterion, FRONTIER_TOLERANCES, **options)
     except DeriveError as exc:
         raise CliError(exc.message) from None
     except ValidationError as exc:
         first = exc.errors()[0]
         where = ".".join(str(p) for p in first["loc"])
         raise CliError(f"the derived policy is invalid at {where}: {first['msg']}") from None
-    report = build_report(prepared, solution, policy, comparison, front, holdout)
+    warnings = [
+        f"group {key!r} is outside the {criterion.value} promise: it {reason} "
+        "(recorded as targets.groups[...].outside_promise)"
+        for key, reason in solution.outside_promise.items()
+    ]
+    warnings += promise_warnings(
+        cross, args.tolerance, settings.favourable, ref, solution.outside_promise
+    )
+    report = build_report(
+        prepared,
+        solution,
+        policy,
+        comparison,
+        front,
+        cross=cross,
+        folds_seed=args.folds_seed,
+        warnings=warnings,
+    )
 
     files: dict[Path, bytes] = {
         args.out: _json_bytes(document_json(policy)),
@@ -173,70 +228,16 @@ def run(args: argparse.Namespace) -> int:
     if args.html:
         from service.reports.derive_html import render_derive_html
 
-        curves = {
-            key: roc_curve(fit.scores[rows], fit.outcomes[rows])
-            for key, rows in zip(fit.group_keys, prepared.group_rows, strict=True)
-        }
-        files[args.html] = render_derive_html(report, curves).encode("utf-8")
+        files[args.html] = render_derive_html(
+            report, dict(zip(data.group_keys, prepared.curves, strict=True))
+        ).encode("utf-8")
     write_all(files)
     print(console_table(report))
+    for warning in warnings:
+        _progress(f"warning: {warning}")
     _progress("wrote " + ", ".join(str(p) for p in files))
     return 0
 
 
 def _json_bytes(value: Any) -> bytes:
     return (json.dumps(value, indent=2, ensure_ascii=False, allow_nan=False) + "\n").encode()
-
-
-def _fmt(value: float | None, digits: int = 3) -> str:
-    return "-" if value is None else f"{value:.{digits}f}"
-
-
-def console_table(report: dict[str, Any]) -> str:
-    """The report as plain text tables for the terminal."""
-    lines = [
-        f"Policy {report['policy']}: {report['criterion']} (tolerance {report['tolerance']:g}), "
-        f"c_FP = {report['costs']['false_positive']:g}, "
-        f"c_FN = {report['costs']['false_negative']:g}, {report['rows']} rows",
-        "",
-    ]
-    width = max(len("group"), *(len(k) for k in report["groups"]))
-    lines.append(
-        f"{'group':<{width}}  {'n':>7}  {'prev':>5}  {'action':>6}  {'TPR':>5}  {'FPR':>5}  "
-        f"{'PPV':>5}  rule"
-    )
-    for key, g in report["groups"].items():
-        lines.append(
-            f"{key:<{width}}  {g['n']:>7}  {_fmt(g['prevalence'])}  {_fmt(g['action_rate']):>6}"
-            f"  {_fmt(g['tpr'])}  {_fmt(g['fpr'])}  {_fmt(g['ppv'])}  {g['rule']}"
-        )
-    lines += ["", f"expected cost per case: {report['expected_cost']:.4f}", ""]
-    lines.append(f"{'criterion':<20}  {'cost/case':>9}  {'price':>8}")
-    for row in report["comparison"]:
-        mark = " <" if row["criterion"] == report["criterion"] else ""
-        cost = _fmt(row["expected_cost"], 4)
-        price = "-" if row["price"] is None else f"{row['price']:+.4f}"
-        lines.append(f"{row['criterion']:<20}  {cost:>9}  {price:>8}{mark}")
-    points = report["frontier"]["points"]
-    lines += [
-        "",
-        f"frontier ({report['frontier']['criterion']}): "
-        + ", ".join(f"{p['tolerance']:g} -> {_fmt(p['expected_cost'], 4)}" for p in points),
-    ]
-    for note in report["fallbacks"]:
-        lines.append(f"fallback: {note}")
-    if "holdout" in report:
-        h = report["holdout"]
-        lines += [
-            "",
-            f"holdout ({h['rows']} rows, {h['fraction']:g}): expected cost "
-            f"{h['expected_cost']:.4f}; Wilson 95% intervals",
-        ]
-        for key, g in h["groups"].items():
-            parts = []
-            for metric in ("action_rate", "tpr", "fpr"):
-                r = g[metric]
-                parts.append(f"{metric} {_fmt(r['value'])} [{_fmt(r['low'])}, {_fmt(r['high'])}]")
-            lines.append(f"  {key:<{width}}  n {g['n']:>6}  " + "  ".join(parts))
-    lines += ["", "Advisory only; see the cautions in the report."]
-    return "\n".join(lines)

@@ -4,6 +4,9 @@ A rule gives every row a probability p_i of the action. The expected counts are 
 those probabilities, never the result of sampling: E[TP] = sum of p_i over rows with y = 1,
 E[FP] = sum of p_i over rows with y = 0, and E[FN], E[TN] their complements. All functions
 are vectorised over rows and, in :func:`expected_counts_by_group`, over groups too.
+:func:`rule_bands` gets the same sums from a population's ROC curve instead of its rows: a
+step rule is constant between its steps, so each sum is (probability of a band) x (rows
+scored in that band), and the rows per band are differences of the curve's counts.
 """
 
 from __future__ import annotations
@@ -12,6 +15,9 @@ from dataclasses import dataclass
 
 import numpy as np
 import numpy.typing as npt
+
+from service.policy.document import Rule
+from service.policy.roc import RocCurve, counts_at
 
 FloatArray = npt.NDArray[np.float64]
 
@@ -148,3 +154,50 @@ def chouldechova_fpr(prevalence: float, ppv: float, fnr: float) -> float:
     calibration-like parity and error-rate parity cannot both hold.
     """
     return prevalence / (1.0 - prevalence) * (1.0 - ppv) / ppv * (1.0 - fnr)
+
+
+@dataclass(frozen=True)
+class RuleBands:
+    """A step rule on one population: per band of the rule (below the first step, then each
+    step), the probability of the action and the positives and negatives scored there."""
+
+    probability: FloatArray
+    positives: FloatArray
+    negatives: FloatArray
+
+    def counts(self) -> ExpectedCounts:
+        tp = float(self.probability @ self.positives)
+        fp = float(self.probability @ self.negatives)
+
+        def one(x: float) -> FloatArray:
+            return np.array([x], dtype=np.float64)
+
+        return ExpectedCounts(
+            one(tp),
+            one(fp),
+            one(float(self.positives.sum()) - tp),
+            one(float(self.negatives.sum()) - fp),
+        )
+
+    def cost_sums(self, cost_fp: float, cost_fn: float) -> tuple[float, float]:
+        """Sum and sum of squares over rows of each row's expected cost, c_FP p (y = 0) or
+        c_FN (1 - p) (y = 1): what a normal interval for the mean cost per case needs."""
+        neg_cost = cost_fp * self.probability
+        pos_cost = cost_fn * (1.0 - self.probability)
+        total = float(neg_cost @ self.negatives + pos_cost @ self.positives)
+        squares = float((neg_cost**2) @ self.negatives + (pos_cost**2) @ self.positives)
+        return total, squares
+
+
+def rule_bands(rule: Rule, curve: RocCurve) -> RuleBands:
+    """The bands of ``rule`` on the population whose ROC is ``curve``, exactly."""
+    starts = np.array([s.start for s in rule.steps], dtype=np.float64)
+    tp_at, fp_at = counts_at(curve, starts)
+    zero = np.zeros(1, dtype=np.int64)
+    pos_above = np.concatenate([[curve.positives], tp_at, zero])
+    neg_above = np.concatenate([[curve.negatives], fp_at, zero])
+    return RuleBands(
+        probability=np.array([0.0] + [s.probability for s in rule.steps], dtype=np.float64),
+        positives=(pos_above[:-1] - pos_above[1:]).astype(np.float64),
+        negatives=(neg_above[:-1] - neg_above[1:]).astype(np.float64),
+    )

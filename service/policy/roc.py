@@ -40,10 +40,17 @@ class RocCurve:
 
 def roc_curve(scores: FloatArray, outcomes: npt.NDArray[np.integer]) -> RocCurve:
     """ROC over all distinct cuts, from never (0, 0) down to the lowest score (1, 1)."""
-    # The order among equal scores does not matter: each run of ties closes one cut.
     order = np.argsort(scores)[::-1]
-    s = scores[order]
-    y = outcomes[order].astype(bool)
+    return roc_from_sorted(scores[order], outcomes[order])
+
+
+def roc_from_sorted(scores: FloatArray, outcomes: npt.NDArray[np.integer]) -> RocCurve:
+    """:func:`roc_curve` of rows already sorted by descending score (no sort: one pass).
+
+    The order among equal scores does not matter: each run of ties closes one cut.
+    """
+    s = scores
+    y = outcomes.astype(bool)
     tp = np.cumsum(y, dtype=np.int64)
     fp = np.cumsum(~y, dtype=np.int64)
     # The last row of each run of equal scores closes one cut.
@@ -56,6 +63,17 @@ def roc_curve(scores: FloatArray, outcomes: npt.NDArray[np.integer]) -> RocCurve
         positives=int(tp[-1]) if len(s) else 0,
         negatives=int(fp[-1]) if len(s) else 0,
     )
+
+
+def counts_at(curve: RocCurve, cuts: npt.ArrayLike) -> tuple[IntArray, IntArray]:
+    """(positives, negatives) scored at or above each cut, read off the curve exactly.
+
+    ``curve.cuts`` falls from ``inf``; the count at a cut c is the curve's count at the
+    lowest distinct score >= c (0 when no score reaches c).
+    """
+    c = np.asarray(cuts, dtype=np.float64)
+    j = np.searchsorted(-curve.cuts, -c, side="right") - 1
+    return curve.tp[j], curve.fp[j]
 
 
 def upper_hull(curve: RocCurve) -> npt.NDArray[np.intp]:

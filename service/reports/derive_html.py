@@ -47,8 +47,9 @@ def roc_svg(report: dict[str, Any], curves: dict[str, RocCurve]) -> str:
         hull = upper_hull(curve)
         ax.plot(curve.fpr[hull], curve.tpr[hull], color="#1f4e79", lw=1.2, label="hull")
         ax.plot([0, 1], [0, 1], color="#cccccc", lw=0.8, ls="--")
-        g = report["groups"][key]
-        ax.plot([g["fpr"]], [g["tpr"]], "o", color="#c0392b", label="operating point")
+        g = report["groups"][key]["in_sample"]
+        if g["fpr"] is not None and g["tpr"] is not None:
+            ax.plot([g["fpr"]], [g["tpr"]], "o", color="#c0392b", label="operating point")
         ax.set_title(key, fontsize=9)
         ax.set_xlim(0, 1)
         ax.set_ylim(0, 1)
@@ -71,12 +72,13 @@ def frontier_svg(report: dict[str, Any]) -> str:
         "o-",
         color="#1f4e79",
     )
-    base = next(r for r in report["comparison"] if r["criterion"] == "max-utility")
-    if base["expected_cost"] is not None:
-        ax.axhline(base["expected_cost"], color="#7f8c8d", ls="--", lw=1, label="max-utility")
+    rows = report["price_of_parity"]["rows"]
+    base = next(r for r in rows if r["criterion"] == "max-utility")
+    if base["in_sample_cost"] is not None:
+        ax.axhline(base["in_sample_cost"], color="#7f8c8d", ls="--", lw=1, label="max-utility")
         ax.legend(fontsize=8)
     ax.set_xlabel("tolerance on every pairwise gap", fontsize=8)
-    ax.set_ylabel("expected cost per case", fontsize=8)
+    ax.set_ylabel("in-sample cost per case", fontsize=8)
     ax.set_title(report["frontier"]["criterion"], fontsize=9)
     ax.tick_params(labelsize=7)
     fig.tight_layout()

@@ -1,4 +1,4 @@
-"""``evenhand derive`` end to end: outputs, report keys, holdout intervals, bad inputs."""
+"""``evenhand derive`` end to end: outputs, report keys, cross-fitted intervals, bad inputs."""
 
 from __future__ import annotations
 
@@ -37,6 +37,8 @@ def _argv(csv: Path, out_dir: Path, *extra: str) -> list[str]:
         "1",
         "--cost-fn",
         "4",
+        "--tolerance",
+        "0.05",
         "--out",
         str(out_dir / "policy.json"),
         "--report",
@@ -50,34 +52,104 @@ def _argv(csv: Path, out_dir: Path, *extra: str) -> list[str]:
 def test_derive_writes_policy_report_and_page(
     demo_csv: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:
-    assert main(_argv(demo_csv, tmp_path, "--name", "fh-test", "--holdout", "0.25")) == 0
+    assert main(_argv(demo_csv, tmp_path, "--name", "fh-test")) == 0
     policy = PolicyDocument.model_validate_json((tmp_path / "policy.json").read_text())
     assert policy.name == "fh-test" and policy.favourable == "action"
     report = json.loads((tmp_path / "report.json").read_text())
     assert report["policy_hash"] == content_hash(policy)
-    for key in ("criterion", "tolerance", "expected_cost", "groups", "comparison", "frontier"):
-        assert key in report
     assert set(report["groups"]) == {"millbrook", "quarry-hill", "saltmarsh"}
-    for g in report["groups"].values():
-        assert set(g) >= {"n", "prevalence", "action_rate", "tpr", "fpr", "ppv"}
-    # equal opportunity at tolerance 0: the promised TPRs agree
-    tprs = [g["tpr"] for g in report["groups"].values()]
-    assert max(tprs) - min(tprs) < 1e-9
-    assert policy.targets is not None
+    targets = policy.targets
+    assert targets is not None
+    assert (targets.tolerance, targets.folds, targets.capacity) == (0.05, 5, None)
+    assert report["folds"] == {
+        "k": 5,
+        "seed": 20261201,
+        "stratified_by": ["group", "outcome"],
+        "notes": [],
+    }
+    # Continuous scores: nine decile edges; each group's bins hold all its rows.
+    assert targets.score_edges is not None and len(targets.score_edges) == 9
     for key, g in report["groups"].items():
-        assert policy.targets.groups[key].tpr == g["tpr"]
-    assert next(r["criterion"] for r in report["comparison"]) == "max-utility"
+        target = targets.groups[key]
+        counts = target.out_of_sample
+        assert counts is not None and target.score_counts is not None
+        assert counts.n == g["n"] == target.n == sum(target.score_counts)
+        # The promise is the ratio of the cross-fitted counts, and the report shows it.
+        assert target.tpr == pytest.approx(counts.tp / counts.positives, rel=1e-12)
+        assert target.fpr == pytest.approx(counts.fp / (counts.n - counts.positives), rel=1e-12)
+        assert target.action_rate == pytest.approx((counts.tp + counts.fp) / counts.n, rel=1e-12)
+        assert g["promised"]["tpr"]["value"] == pytest.approx(target.tpr, rel=1e-12)
+        assert target.outside_promise is None
+    # In sample, equal opportunity at tolerance 0.05 holds exactly.
+    tprs = [g["in_sample"]["tpr"] for g in report["groups"].values()]
+    assert max(tprs) - min(tprs) <= 0.05 + 1e-9
+    assert targets.expected_cost == pytest.approx(report["expected_cost"])
+    rows = report["price_of_parity"]["rows"]
+    assert rows[0]["criterion"] == "max-utility" and rows[0]["price"] == 0.0
+    assert [r["criterion"] for r in rows if r["chosen"]] == ["equal-opportunity"]
+    chosen = next(r for r in rows if r["chosen"])
+    assert chosen["cross_fitted_cost"] == pytest.approx(report["expected_cost"])
+    assert chosen["cross_fitted_low"] < chosen["cross_fitted_cost"] < chosen["cross_fitted_high"]
+    assert chosen["price"] == pytest.approx(
+        chosen["cross_fitted_cost"] - rows[0]["cross_fitted_cost"]
+    )
     assert [p["tolerance"] for p in report["frontier"]["points"]] == [0, 0.01, 0.02, 0.05, 0.1]
-    # Holdout intervals: Wilson 95% as computed by statsmodels proportion_confint
-    # (Seabold & Perktold 2010), method "wilson", on the held-out rate and row count.
-    held = report["holdout"]["groups"]["saltmarsh"]["action_rate"]
-    low, high = proportion_confint(held["value"] * held["trials"], held["trials"], method="wilson")
-    assert (held["low"], held["high"]) == pytest.approx((low, high), abs=1e-12)
+    # Cross-fitted intervals: Wilson 95% as computed by statsmodels proportion_confint
+    # (Seabold & Perktold 2010), method "wilson", on the cross-fitted rate and its trials.
+    for metric in ("action_rate", "tpr", "fpr"):
+        r = chosen["groups"]["saltmarsh"][metric]
+        low, high = proportion_confint(r["value"] * r["trials"], r["trials"], method="wilson")
+        assert (r["low"], r["high"]) == pytest.approx((low, high), abs=1e-12)
     page = (tmp_path / "report.html").read_text()
     assert page.count("<svg") == 2 and "42 U.S.C. 2000e-2(l)" in page
+    assert "Price of parity" in page and "common practice" in page
     assert not re.search(r"(src|href)=\"(https?:)?//", page)  # self-contained: nothing fetched
     table = capsys.readouterr().out
-    assert "equal-opportunity" in table and "saltmarsh" in table and "price" in table
+    assert "equal-opportunity" in table and "saltmarsh" in table and "price of parity" in table
+    assert "5-fold cross-fitted" in table
+
+
+def test_reference_group_capacity_and_folds_are_recorded(demo_csv: Path, tmp_path: Path) -> None:
+    extra = ["--criterion", "four-fifths", "--reference-group", "quarry-hill"]
+    extra += ["--capacity", "0.2", "--folds", "3", "--folds-seed", "7"]
+    assert main(_argv(demo_csv, tmp_path, *extra)) == 0
+    policy = PolicyDocument.model_validate_json((tmp_path / "policy.json").read_text())
+    assert policy.targets is not None
+    assert policy.targets.reference_group == "quarry-hill"
+    assert (policy.targets.capacity, policy.targets.folds) == (0.2, 3)
+    report = json.loads((tmp_path / "report.json").read_text())
+    assert report["folds"]["seed"] == 7
+    assert report["workload"]["in_sample"] <= 0.2 + 1e-9
+    for row in report["price_of_parity"]["rows"]:
+        assert row["workload_in_sample"] <= 0.2 + 1e-9
+    # Four-fifths against the reference, with no slack: every in-sample ratio >= 0.8.
+    rates = {k: g["in_sample"]["action_rate"] for k, g in report["groups"].items()}
+    assert min(rates.values()) >= 0.8 * rates["quarry-hill"] - 1e-9
+
+
+def test_a_fallback_group_missing_the_criterion_is_warned_about_and_recorded(
+    demo_csv: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    extra = ["--group", "language", "--min-group-size", "300", "--fallback", "parent"]
+    extra += ["--tolerance", "0.02"]
+    assert main(_argv(demo_csv, tmp_path, *extra)) == 0
+    policy = PolicyDocument.model_validate_json((tmp_path / "policy.json").read_text())
+    assert policy.targets is not None
+    outside = {k: g.outside_promise for k, g in policy.targets.groups.items() if g.outside_promise}
+    assert outside, "the scenario should have a fallback group outside the promise"
+    err = capsys.readouterr().err
+    report = json.loads((tmp_path / "report.json").read_text())
+    for key, reason in outside.items():
+        assert policy.targets.groups[key] is not None
+        assert report["groups"][key]["outside_promise"] == reason
+        assert f"warning: group {key!r} is outside the equal-opportunity promise" in err
+        assert "parent rule" in reason and "beyond the tolerance 0.02" in reason
+    units = {u["rule"]: u for u in report["units"]}
+    parents = [u for u in units.values() if u["kind"] == "parent"]
+    assert parents
+    for unit in parents:
+        fitted, governed = set(unit["fitted_on"]["groups"]), set(unit["governs"]["groups"])
+        assert governed < fitted  # fitted on the whole parent population
 
 
 def _write(tmp_path: Path, text: str) -> Path:
@@ -109,7 +181,34 @@ GOOD_ROWS = "".join(f"0.{i % 9 + 1},{i % 2},{'ab'[i // 20]}\n" for i in range(40
             ["--min-group-size", "10"],
             "group 'c' has 2 rows, below --min-group-size 10",
         ),
-        (GOOD_HEADER + GOOD_ROWS, ["--tolerance", "-0.1"], "--tolerance -0.1: infeasible"),
+        (GOOD_HEADER + GOOD_ROWS, ["--tolerance", "-0.1"], "--tolerance -0.1: must be > 0"),
+        (GOOD_HEADER + GOOD_ROWS, ["--tolerance", "0"], "--tolerance 0.0: must be > 0"),
+        (GOOD_HEADER + GOOD_ROWS, ["--tolerance", "0.6"], "and <= 0.5"),
+        (GOOD_HEADER + GOOD_ROWS, ["--tolerance", "nan"], "--tolerance nan: must be > 0"),
+        (GOOD_HEADER + GOOD_ROWS, ["--capacity", "0"], "--capacity 0.0: must be > 0"),
+        (GOOD_HEADER + GOOD_ROWS, ["--capacity", "1.5"], "and <= 1"),
+        (GOOD_HEADER + GOOD_ROWS, ["--folds", "1"], "--folds 1: must be at least 2"),
+        (GOOD_HEADER + GOOD_ROWS, ["--folds", "41"], "--folds 41: more folds than rows (40)"),
+        (
+            GOOD_HEADER + GOOD_ROWS,
+            ["--reference-group", "z"],
+            "--reference-group 'z' is not a group in the data (groups: a, b)",
+        ),
+        (
+            GOOD_HEADER + GOOD_ROWS + "0.3,1,c\n0.4,0,c\n",
+            ["--reference-group", "c", "--min-group-size", "10", "--fallback", "default"],
+            "reference group 'c' uses the fallback rule 'default'",
+        ),
+        (
+            GOOD_HEADER + GOOD_ROWS + "0.3,0,c\n0.4,0,c\n",
+            ["--fallback", "default"],
+            "default rule (for groups c) has no positive outcomes to fit on",
+        ),
+        (
+            GOOD_HEADER + GOOD_ROWS.replace(",1,a", ",0,a", 9),
+            ["--folds", "20"],
+            "of 20, fitted on the other folds: group 'a' has no positive outcomes (y = 1)",
+        ),
         (GOOD_HEADER + "0.5,1,a,extra\n", [], "line 2: 4 fields, the header has 3"),
     ],
 )
@@ -129,6 +228,14 @@ def test_bad_input_is_one_line_exit_2_and_writes_nothing(
     assert code == 2
     assert last.startswith("evenhand: error: ") and message in last, err
     assert list(out_dir.iterdir()) == []  # no output, no temporary file left behind
+
+
+def test_tolerance_is_required(demo_csv: Path, tmp_path: Path) -> None:
+    argv = _argv(demo_csv, tmp_path)
+    i = argv.index("--tolerance")
+    with pytest.raises(SystemExit) as exc:
+        main(argv[:i] + argv[i + 2 :])
+    assert exc.value.code == 2
 
 
 def test_missing_output_directory_is_refused_before_reading(

@@ -31,8 +31,16 @@ def reference_cost(
     cost_fp: float,
     cost_fn: float,
     favourable: str = "action",
+    capacity: float | None = None,
+    reference: object | None = None,
 ) -> float:
-    """Minimal expected cost per case under ``criterion`` (pairwise constraints)."""
+    """Minimal expected cost per case under ``criterion`` (pairwise constraints).
+
+    Four-fifths: every group's favourable rate >= 0.8 x every other group's (so >= 0.8 x the
+    highest), or >= 0.8 x the ``reference`` group's when one is named; no slack. Capacity:
+    the overall action rate, sum over groups of (n_g / N) x action rate_g, at most
+    ``capacity``.
+    """
     if criterion == "single-cut":
         groups = np.zeros(len(scores), dtype=int)
         criterion = "max-utility"
@@ -77,19 +85,20 @@ def reference_cost(
         "equalized-odds": ["tpr", "fpr"],
     }
     if criterion == "four-fifths":
+        comparators = range(len(blocks)) if reference is None else [labels.index(reference)]
         for i in range(len(blocks)):
-            for j in range(len(blocks)):
+            for j in comparators:
                 if i == j:
                     continue
                 ri, rj = rate_row(i, "action"), rate_row(j, "action")
                 if favourable == "action":
-                    # r_i >= 0.8 r_j - eps  <=>  0.8 r_j - r_i <= eps
+                    # r_i >= 0.8 r_j  <=>  0.8 r_j - r_i <= 0
                     a_ub.append(0.8 * rj - ri)
-                    b_ub.append(tolerance)
+                    b_ub.append(0.0)
                 else:
-                    # (1 - q_i) >= 0.8 (1 - q_j) - eps  <=>  q_i - 0.8 q_j <= 0.2 + eps
+                    # (1 - q_i) >= 0.8 (1 - q_j)  <=>  q_i - 0.8 q_j <= 0.2
                     a_ub.append(ri - 0.8 * rj)
-                    b_ub.append(0.2 + tolerance)
+                    b_ub.append(0.2)
     else:
         for kind in kinds[criterion]:
             for i in range(len(blocks)):
@@ -97,6 +106,10 @@ def reference_cost(
                     if i != j:
                         a_ub.append(rate_row(i, kind) - rate_row(j, kind))
                         b_ub.append(tolerance)
+    if capacity is not None:
+        overall = sum(rate_row(i, "action") * (blocks[i][2] / n_total) for i in range(len(blocks)))
+        a_ub.append(sparse.csr_matrix(overall))
+        b_ub.append(capacity)
     a_eq = sparse.csr_matrix(
         (np.ones(n_vars), (np.repeat(np.arange(len(blocks)), sizes), np.arange(n_vars))),
         shape=(len(blocks), n_vars),

@@ -87,7 +87,8 @@ def test_rejects_probabilities_outside_unit_interval() -> None:
 
 def test_wilson_for_expected_rates_matches_statsmodels() -> None:
     # Reference: statsmodels proportion_confint(method="wilson") (Seabold & Perktold 2010),
-    # which accepts a non-integer count: the holdout applies Wilson (1927) to expected rates.
+    # which accepts a non-integer count: the derive report applies Wilson (1927) to expected
+    # (cross-fitted) rates.
     from statsmodels.stats.proportion import proportion_confint
 
     from service.stats.proportions import wilson_interval_for_rate

@@ -8,7 +8,7 @@ import numpy as np
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from service.policy.derive import CalibrationData, DeriveSettings, prepare, solve
+from service.policy.derive import solve
 from service.policy.document import (
     Costs,
     Criterion,
@@ -18,6 +18,7 @@ from service.policy.document import (
     Step,
 )
 from service.policy.rules import evaluate, evaluate_batch, rule_probabilities
+from service.policy.units import CalibrationData, DeriveSettings, prepare
 
 unit = st.floats(0.0, 1.0, allow_nan=False)
 

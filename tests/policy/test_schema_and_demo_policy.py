@@ -19,7 +19,7 @@ ROOT = Path(__file__).resolve().parents[2]
 DEMO_DATA = "demo-data --rows 20000 --seed 20261201 --out {csv}"
 DEMO_DERIVE = (
     "derive {csv} --score score --outcome readmitted --group community --group language "
-    "--criterion equal-opportunity --cost-fp 1 --cost-fn 4 --min-group-size 800 "
+    "--criterion equal-opportunity --cost-fp 1 --cost-fn 4 --tolerance 0.05 --min-group-size 800 "
     "--fallback parent --favourable action --name fernhollow-follow-up "
     '--description "Fernhollow Community Health (fictional): offer a nurse follow-up visit '
     'after discharge to patients at high risk of readmission." '
@@ -48,7 +48,12 @@ def _close(a: Any, b: Any) -> bool:
 
 def test_demo_policy_is_reproducible_from_the_documented_commands(tmp_path: Path) -> None:
     docs = (ROOT / "docs" / "derive.md").read_text(encoding="utf-8")
-    for arg in ("--min-group-size 800", "--fallback parent", "--criterion equal-opportunity"):
+    for arg in (
+        "--min-group-size 800",
+        "--fallback parent",
+        "--criterion equal-opportunity",
+        "--tolerance 0.05",
+    ):
         assert arg in docs
     csv, out, report = tmp_path / "d.csv", tmp_path / "p.json", tmp_path / "r.json"
     assert main(shlex.split(DEMO_DATA.format(csv=csv))) == 0
