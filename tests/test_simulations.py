@@ -97,3 +97,25 @@ def test_sim_monitoring_reports_false_alarms_the_matched_level_and_detection(
             assert len(row[name]) == row["runs"]
             assert all(v is None or 1 <= v <= row["cap"] for v in row[name])
     assert "run time" in text and "seed" in text
+
+
+def test_sim_promises_reports_promise_errors_per_rate_and_group_and_the_true_gaps(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    figures, text = run("sim_promises", tmp_path, capsys)
+    groups = {f"{c}|{lang}" for c in ("quarry-hill", "millbrook", "saltmarsh")
+              for lang in ("en", "es", "other")}  # fmt: skip
+    for rate in ("tpr", "fpr", "action_rate"):
+        start = text.index(f"## Promised minus true {rate},")
+        rows = table_rows(text[start:], "| group | share |")
+        assert {r[0] for r in rows} == groups
+        assert all(len(r) == 11 for r in rows)
+    assert len(figures["errors"]) == 27
+    for row in figures["errors"]:
+        for kind in ("in_sample", "cross_fitted"):
+            s = row[kind]
+            assert s["p10"] <= s["median"] <= s["p90"] and s["mean_low"] <= s["mean_high"]
+    gaps = table_rows(text, "| gap | groups |")
+    assert len(gaps) == len(figures["gaps"]) == 5
+    assert all(r[-1].endswith(f"/{figures['samples']}") for r in gaps)
+    assert "run time" in text and "seed" in text
