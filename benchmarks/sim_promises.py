@@ -14,10 +14,12 @@ Each derived policy's TRUE rates come from ``--truth-rows`` fresh rows of the sa
 (seeds from 1,000,000,000 up, disjoint from the calibration seeds, drawn once and shared by every
 policy): a group's true TPR is the mean of P(action | score) over its positives, and so on.
 Reported per group and rate: promised minus true over the samples (mean with a 95% interval,
-median, 10th and 90th percentiles, standard deviation), and the true TPR gaps between the
-groups the promise covers.
+median, 10th and 90th percentiles, standard deviation), beside the standard error the audit's
+two-sample test gives a cross-fitted promise (a proportion over its out-of-sample
+denominator; root mean square over the samples), and the true TPR gaps between the groups the
+promise covers.
 
-    .venv/bin/python benchmarks/sim_promises.py [--seed N] [--samples 200]
+    .venv/bin/python benchmarks/sim_promises.py [--seed N] [--samples 500]
         [--truth-rows 10000000] [--quick] [--json out.json]
 """
 
@@ -139,6 +141,9 @@ def truth_populations(rows: int) -> tuple[dict[str, Population], dict[str, float
 class Derived:
     in_sample: dict[str, dict[str, float]]
     cross_fitted: dict[str, dict[str, float]]
+    binomial_sd: dict[str, dict[str, float]]
+    """The standard error the audit's two-sample test gives each cross-fitted promise: that of
+    a proportion over the out-of-sample denominator."""
     true: dict[str, dict[str, float]]
     outside: frozenset[str]
     reference: str
@@ -157,6 +162,7 @@ def derive_one(seed: int, truth: dict[str, Population]) -> Derived:
     own = populations(data)
     in_sample: dict[str, dict[str, float]] = {}
     cross_fitted: dict[str, dict[str, float]] = {}
+    binomial_sd: dict[str, dict[str, float]] = {}
     true: dict[str, dict[str, float]] = {}
     for result in solution.groups:
         key = result.key
@@ -178,10 +184,21 @@ def derive_one(seed: int, truth: dict[str, Population]) -> Derived:
                 )
         target = doc.targets.groups[key]
         cross_fitted[key] = {name: float(getattr(target, name)) for name in RATES}
+        counts = target.out_of_sample
+        assert counts is not None
+        denominators = {
+            "tpr": counts.positives,
+            "fpr": counts.n - counts.positives,
+            "action_rate": counts.n,
+        }
+        binomial_sd[key] = {
+            name: float(np.sqrt(max(0.0, v * (1 - v)) / max(1, denominators[name])))
+            for name, v in cross_fitted[key].items()
+        }
         true[key] = truth[key].rates(rule)
     outside = frozenset(k for k, t in doc.targets.groups.items() if t.outside_promise)
     reference = max(doc.targets.groups, key=lambda k: (doc.targets.groups[k].n or 0, k))
-    return Derived(in_sample, cross_fitted, true, outside, reference)
+    return Derived(in_sample, cross_fitted, binomial_sd, true, outside, reference)
 
 
 def summary(values: Sequence[float]) -> dict[str, float]:
@@ -211,7 +228,7 @@ def fmt(s: dict[str, float]) -> list[str]:
 def main(argv: Sequence[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--seed", type=int, default=DEFAULT_SEED, help="base seed")
-    parser.add_argument("--samples", type=int, default=200, help="calibration samples")
+    parser.add_argument("--samples", type=int, default=500, help="calibration samples")
     parser.add_argument("--truth-rows", type=int, default=10_000_000, help="fresh rows")
     parser.add_argument("--quick", action="store_true", help="a few samples (smoke run)")
     parser.add_argument("--json", type=Path, default=None, help="also write the figures here")
@@ -241,20 +258,29 @@ def main(argv: Sequence[str] | None = None) -> int:
         print(f"\n## Promised minus true {name}, over {samples} calibration samples\n")
         print(
             "| group | share | outside the promise | in sample: mean [95%] | median | "
-            "10th to 90th pct | sd | cross-fitted: mean [95%] | median | 10th to 90th pct | sd |"
+            "10th to 90th pct | sd | cross-fitted: mean [95%] | median | 10th to 90th pct | sd | "
+            "binomial sd of the promise |"
         )
-        print("|---|---|---|---|---|---|---|---|---|---|---|")
+        print("|---|---|---|---|---|---|---|---|---|---|---|---|")
         for key in groups:
             ins = summary([d.in_sample[key][name] - d.true[key][name] for d in derived])
             out = summary([d.cross_fitted[key][name] - d.true[key][name] for d in derived])
             outside = sum(key in d.outside for d in derived)
+            # Root mean square over the samples of the sd the two-sample test assumes.
+            assumed = float(np.sqrt(np.mean([d.binomial_sd[key][name] ** 2 for d in derived])))
             results["errors"].append(
-                {"rate": name, "group": key, "in_sample": ins, "cross_fitted": out}
+                {
+                    "rate": name,
+                    "group": key,
+                    "in_sample": ins,
+                    "cross_fitted": out,
+                    "binomial_sd": assumed,
+                }
             )
             print(
                 f"| {cell_text(key)} | {SHARES[key]:.1%} | {outside}/{samples} | "
                 + " | ".join(fmt(ins) + fmt(out))
-                + " |"
+                + f" | {assumed:.4f} |"
             )
     print(f"\n## True TPR gaps of the derived policies out of sample ({samples} samples)\n")
     print(

@@ -109,7 +109,7 @@ def test_sim_promises_reports_promise_errors_per_rate_and_group_and_the_true_gap
         start = text.index(f"## Promised minus true {rate},")
         rows = table_rows(text[start:], "| group | share |")
         assert {r[0] for r in rows} == groups
-        assert all(len(r) == 11 for r in rows)
+        assert all(len(r) == 12 for r in rows)
     assert len(figures["errors"]) == 27
     for row in figures["errors"]:
         for kind in ("in_sample", "cross_fitted"):
