@@ -239,14 +239,24 @@ def main(argv: Sequence[str] | None = None) -> int:
     started = time.perf_counter()
     truth, truth_se = truth_populations(truth_rows)
     truth_seconds = time.perf_counter() - started
-    derived = [derive_one(args.seed + 1 + i, truth) for i in range(samples)]
+    derived: list[Derived] = []
+    failed: list[dict[str, Any]] = []
+    for i in range(samples):
+        seed = args.seed + 1 + i
+        try:
+            derived.append(derive_one(seed, truth))
+        except (DeriveError, RuntimeError) as exc:
+            # Reported below and left out of the figures; not retried with another seed.
+            failed.append({"seed": seed, "error": f"{type(exc).__name__}: {exc}"})
     derive_seconds = time.perf_counter() - started - truth_seconds
     groups = sorted(truth, key=lambda k: -SHARES[k])
     results: dict[str, Any] = {
         "seed": args.seed,
-        "samples": samples,
+        "attempted": samples,
+        "samples": len(derived),
         "truth_rows": truth_rows,
         "truth_se_bound": truth_se,
+        "failed": failed,
         "errors": [],
         "gaps": [],
     }
@@ -254,6 +264,10 @@ def main(argv: Sequence[str] | None = None) -> int:
         f"\n{samples} calibration samples of {ROWS:,} rows; truth from {truth_rows:,} fresh rows "
         f"(standard error of a group's true TPR at most {max(truth_se.values()):.4f})"
     )
+    print(f"samples that did not derive: {len(failed)} of {samples}")
+    for f in failed:
+        print(f"- generate({ROWS}, seed={f['seed']}): {f['error']}")
+    samples = len(derived)
     for name in RATES:
         print(f"\n## Promised minus true {name}, over {samples} calibration samples\n")
         print(
