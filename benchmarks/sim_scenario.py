@@ -4,8 +4,9 @@ prevalences and rates, and how a month's (or a calibration sample's) counts are 
 Not a benchmark itself (``run_all.py`` runs ``bench_*.py`` only). The figures come from the
 Fernhollow demo: group shares are the generator's community shares times its language shares
 (``service/demo/fernhollow.py``); prevalences and false positive rates are those of
-``policies/fernhollow-follow-up.json`` (equal opportunity, rounded to three digits); the true
-positive rate is the one the derived policy equalises (0.579) for every group. Outcome
+``policies/fernhollow-follow-up.json`` as it stood at d2246e4, before it was re-derived with
+cross-fitted promises (equal opportunity, rounded to three digits); the true positive rate is
+the one that policy equalises (0.579) for every group. Outcome
 coverage is 88% (the demo loses about 12% to follow-up), missing completely at random.
 
 A month's counts for group ``g`` with true rates ``(tpr, fpr)``:
