@@ -1,0 +1,121 @@
+"""The error-rate simulation scripts run end to end in their smoke mode and report every table
+with the rows and fields ``docs/error-rates.md`` is built from (shapes only: the figures of a
+smoke run are not meaningful)."""
+
+from __future__ import annotations
+
+import importlib.util
+import json
+import re
+import sys
+from pathlib import Path
+from types import ModuleType
+from typing import Any
+
+import pytest
+
+BENCHMARKS = Path(__file__).resolve().parents[1] / "benchmarks"
+
+
+def script(name: str) -> ModuleType:
+    if str(BENCHMARKS) not in sys.path:
+        sys.path.insert(0, str(BENCHMARKS))
+    spec = importlib.util.spec_from_file_location(name, BENCHMARKS / f"{name}.py")
+    assert spec is not None and spec.loader is not None
+    module = importlib.util.module_from_spec(spec)
+    sys.modules[name] = module  # dataclasses look their module up there
+    spec.loader.exec_module(module)
+    return module
+
+
+def run(name: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> tuple[Any, str]:
+    out = tmp_path / f"{name}.json"
+    assert script(name).main(["--quick", "--json", str(out)]) == 0
+    return json.loads(out.read_text()), capsys.readouterr().out
+
+
+def table_rows(text: str, header_start: str) -> list[list[str]]:
+    """The body rows of the markdown table whose header begins with ``header_start``."""
+    lines = text.splitlines()
+    start = next(i for i, line in enumerate(lines) if line.startswith(header_start))
+    rows = []
+    for line in lines[start + 2 :]:
+        if not line.startswith("|"):
+            break
+        cells = re.split(r"(?<!\\)\|", line.strip().removeprefix("|").removesuffix("|"))
+        rows.append([cell.strip().replace("\\|", "|") for cell in cells])
+    return rows
+
+
+def test_sim_verdicts_reports_size_false_holds_power_and_the_old_rule(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    figures, text = run("sim_verdicts", tmp_path, capsys)
+    size = table_rows(text, "| volume | promises | truth |")
+    assert len(size) == len(figures["size"]) == 12  # 2 volumes x 2 promise kinds x 3 truths
+    assert {tuple(r[:3]) for r in size} == {
+        (v, p, t)
+        for v in ("2,000", "4,000")
+        for p in ("exact", "two-sample")
+        for t in ("in control", "at the edge", "twice the tolerance")
+    }
+    assert all(len(r) == 9 for r in size)
+    for row in figures["size"]:
+        assert row["months"] == figures["months"] > 0
+        assert 0 <= row["breach_holm"] <= row["months"]
+        assert (row["false_holds_holm"] is None) == (row["truth"] == "in control")
+    power = table_rows(text, "| group cases |")
+    assert [r[0] for r in power] == ["50", "100", "192", "384", "500", "1,000", "2,000", "5,000"]
+    assert all(len(r) == 9 for r in power)
+    assert {"holm", "by", "unadjusted", "any_holm", "tested"} <= set(figures["power"][0])
+    assert text.count("of months alerted (new rule") == 4
+    assert "run time" in text and "seed" in text
+
+
+def test_sim_monitoring_reports_false_alarms_the_matched_level_and_detection(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    figures, text = run("sim_monitoring", tmp_path, capsys)
+    alarms = table_rows(text, "| true TPR gaps |")
+    assert [r[0] for r in alarms] == ["0", "at the edge (+-0.05)"]
+    assert all(r[2] == "16" for r in alarms)  # 8 non-reference groups x 2 sides
+    pair = table_rows(text, "| reference cases / month |")
+    assert [(r[0], r[1]) for r in pair] == [
+        ("850", "+0.05"),
+        ("850", "-0.05"),
+        ("850,000", "+0.05"),
+        ("850,000", "-0.05"),
+    ]
+    levels = table_rows(text, "| monthly level |")
+    assert len(levels) == len(figures["levels"]) == 3
+    assert all(0.0 < row["level"] <= 0.2 for row in figures["levels"])
+    detection = table_rows(text, "| group | share |")
+    assert [r[0] for r in detection] == ["quarry-hill|other", "millbrook|es", "millbrook|en"]
+    assert all(len(r) == 7 for r in detection)
+    for row in figures["detection"]:
+        for name in ("chart", "matched", "design", "plan"):
+            assert len(row[name]) == row["runs"]
+            assert all(v is None or 1 <= v <= row["cap"] for v in row[name])
+    assert "run time" in text and "seed" in text
+
+
+def test_sim_promises_reports_promise_errors_per_rate_and_group_and_the_true_gaps(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    figures, text = run("sim_promises", tmp_path, capsys)
+    groups = {f"{c}|{lang}" for c in ("quarry-hill", "millbrook", "saltmarsh")
+              for lang in ("en", "es", "other")}  # fmt: skip
+    for rate in ("tpr", "fpr", "action_rate"):
+        start = text.index(f"## Promised minus true {rate},")
+        rows = table_rows(text[start:], "| group | share |")
+        assert {r[0] for r in rows} == groups
+        assert all(len(r) == 12 for r in rows)
+    assert len(figures["errors"]) == 27
+    for row in figures["errors"]:
+        for kind in ("in_sample", "cross_fitted"):
+            s = row[kind]
+            assert s["p10"] <= s["median"] <= s["p90"] and s["mean_low"] <= s["mean_high"]
+    gaps = table_rows(text, "| gap | groups |")
+    assert len(gaps) == len(figures["gaps"]) == 5
+    assert all(r[-1].endswith(f"/{figures['samples']}") for r in gaps)
+    assert "run time" in text and "seed" in text
