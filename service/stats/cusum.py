@@ -215,6 +215,20 @@ def coarsened(step: StepDistribution, points: int) -> StepDistribution:
     return StepDistribution(grid, probabilities / probabilities.sum())
 
 
+def mixture(components: Sequence[StepDistribution], weights: Sequence[float]) -> StepDistribution:
+    """The distribution that draws component ``j`` with probability ``weights[j]`` (weights
+    normalised), then an increment from it."""
+    w = np.asarray(weights, dtype=np.float64)
+    if len(components) == 0 or w.shape != (len(components),) or np.any(w < 0.0) or w.sum() <= 0:
+        raise ValueError("need one non-negative weight per component, with a positive sum")
+    w = w / w.sum()
+    values = np.concatenate([c.values for c in components])
+    probabilities = np.concatenate(
+        [wj * c.probabilities for wj, c in zip(w, components, strict=True)]
+    )
+    return StepDistribution(values, probabilities / probabilities.sum())
+
+
 def cusum_path(increments: Sequence[float], start: float = 0.0) -> list[float]:
     """``S_t = max(0, S_{t-1} + W_t)`` for ``t = 1..T`` from ``S_0 = start``.
 

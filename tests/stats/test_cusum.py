@@ -22,6 +22,7 @@ from service.stats.cusum import (
     coarsened,
     control_limit,
     cusum_path,
+    mixture,
     risk_adjusted_llr,
     risk_adjusted_step_distribution,
     run_length_cdf,
@@ -383,3 +384,32 @@ def test_coarsening_keeps_the_mean_and_the_false_alarm_bound() -> None:
         assert run_length_cdf(h, [full], 12, 100)[-1] <= 0.01 * 1.02
         assert h == pytest.approx(control_limit([full], 12, 0.01, 100), rel=0.15)
     assert coarsened(binomial_step_distribution(30, 0.5, 0.5, 0.6), 401).values.size == 31
+
+
+def test_mixture_draws_a_component_then_an_increment() -> None:
+    a = binomial_step_distribution(20, 0.3, 0.3, 0.4)
+    b = binomial_step_distribution(30, 0.5, 0.5, 0.6)
+    m = mixture([a, b], [1.0, 3.0])
+    mean = 0.25 * float(a.values @ a.probabilities) + 0.75 * float(b.values @ b.probabilities)
+    assert float(m.values @ m.probabilities) == pytest.approx(mean, rel=1e-12)
+    assert m.probabilities.sum() == pytest.approx(1.0)
+    # The chain of the mixture equals a simulation that draws the component each period.
+    h = 2.0
+    rng_choice = [a, b]
+
+    def draw(t: int, size: int, rng: np.random.Generator) -> FloatArray:
+        pick = rng.random(size) < 0.75
+        out = np.empty(size)
+        for flag, dist in ((False, rng_choice[0]), (True, rng_choice[1])):
+            idx = np.flatnonzero(pick == flag)
+            out[idx] = rng.choice(dist.values, size=idx.size, p=dist.probabilities)
+        return out
+
+    lengths = simulate_run_lengths(h, draw, runs=20_000, seed=3, max_t=12)
+    simulated = float(np.mean(lengths <= 12))
+    chained = float(run_length_cdf(h, [m], 12, 200)[-1])
+    assert chained == pytest.approx(
+        simulated, abs=4 * np.sqrt(simulated * (1 - simulated) / 20_000) + 0.005
+    )
+    with pytest.raises(ValueError):
+        mixture([a], [0.0])
