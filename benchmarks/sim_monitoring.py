@@ -72,15 +72,8 @@ from sim_scenario import (
 
 from service.audit.monitoring import HORIZON, WINDOW, Monitor, MonthCounts, version_monitors
 from service.audit.month import Month
-from service.audit.verdicts import (
-    DEFAULT_MIN_COUNT,
-    Check,
-    MonthContext,
-    VersionSettings,
-    decide,
-    resolve_settings,
-    version_checks,
-)
+from service.audit.verdicts import DEFAULT_MIN_COUNT, Check, MonthContext, decide, version_checks
+from service.audit.version_settings import VersionSettings, resolve_settings
 from service.policy.document import AuditPlan
 
 LEVEL = 0.05

@@ -66,9 +66,9 @@ from service.audit.verdicts import (
     MonthContext,
     Status,
     decide,
-    resolve_settings,
     version_checks,
 )
+from service.audit.version_settings import resolve_settings
 from service.policy.document import AuditPlan
 
 LEVEL = 0.05

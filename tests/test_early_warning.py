@@ -9,7 +9,7 @@ from scipy.stats import chi2_contingency
 
 from service.audit.early_warning import DAYS_PER_YEAR, DayCounts, day_warnings
 from service.audit.realized import CellCounts
-from service.audit.verdicts import resolve_settings
+from service.audit.version_settings import resolve_settings
 from service.policy.document import PolicyDocument
 from tests.test_verdicts import document
 

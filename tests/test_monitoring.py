@@ -10,7 +10,8 @@ from scipy.stats import binom
 from service.audit.monitoring import HORIZON, MonthCounts, version_monitors
 from service.audit.month import Month
 from service.audit.realized import CellCounts
-from service.audit.verdicts import CheckKind, resolve_settings
+from service.audit.verdicts import CheckKind
+from service.audit.version_settings import resolve_settings
 from service.stats.cusum import StepDistribution, coarsened, run_length_cdf
 from tests.test_verdicts import EPS, document
 

@@ -21,17 +21,15 @@ from statsmodels.stats.multitest import multipletests
 
 from service.audit.realized import CellCounts
 from service.audit.verdicts import (
-    DEFAULT_TOLERANCE,
     Check,
     CheckKind,
     MonthContext,
     Procedure,
     Status,
     decide,
-    resolve_settings,
-    strictest_plan,
     version_checks,
 )
+from service.audit.version_settings import DEFAULT_TOLERANCE, resolve_settings, strictest_plan
 from service.policy.document import AuditPlan, PolicyDocument
 
 EPS = 0.05

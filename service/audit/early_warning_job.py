@@ -11,7 +11,8 @@ from sqlalchemy.orm import Session
 from service.audit.early_warning import DayCounts, DayWarnings, day_warnings
 from service.audit.month import zone_of
 from service.audit.realized import CellCounts
-from service.audit.verdicts import DEFAULT_MIN_COUNT, resolve_settings
+from service.audit.verdicts import DEFAULT_MIN_COUNT
+from service.audit.version_settings import resolve_settings
 from service.errors import NotFound, Unprocessable
 from service.policy.document import PolicyDocument
 from service.store.models import PolicyVersion, Recommendation
