@@ -251,13 +251,21 @@ def outside_promise(
     return out
 
 
+def _first_near(values: dict[str, float], target: float) -> str:
+    """The first key, in group order, whose value is within rounding (``CHECK_TOLERANCE``)
+    of ``target``: which of several equal rates a message names must not depend on the last
+    digits of a float (rates the LP equalizes differ there)."""
+    return next(k for k, v in values.items() if abs(v - target) <= CHECK_TOLERANCE)
+
+
 def _gap_miss(mine: float, peers: dict[str, float], tolerance: float, what: str) -> str | None:
     if not peers:
         return None
-    far = max(peers, key=lambda h: abs(peers[h] - mine))
-    gap = abs(peers[far] - mine)
+    distance = {h: abs(v - mine) for h, v in peers.items()}
+    gap = max(distance.values())
     if gap <= tolerance + CHECK_TOLERANCE:
         return None
+    far = _first_near(distance, gap)
     return (
         f"its {what} {mine:.3f} is {gap:.3f} from {far}'s {peers[far]:.3f}, beyond the "
         f"tolerance {tolerance:g}"
@@ -272,23 +280,24 @@ def _four_fifths_miss(
     if not peers:
         return None
     line = FOUR_FIFTHS - CHECK_TOLERANCE
-    top = (
-        reference_group
-        if reference_group is not None and reference_group in peers
-        else max(peers, key=lambda h: peers[h])
-    )
+    if reference_group is not None and reference_group in peers:
+        top, best = reference_group, peers[reference_group]
+    else:
+        best = max(peers.values())
+        top = _first_near(peers, best)
     whose = "the reference group" if top == reference_group else "the highest,"
-    if peers[top] > 0 and mine / peers[top] < line:
+    if best > 0 and mine / best < line:
         return (
-            f"its favourable rate {mine:.3f} is {mine / peers[top]:.3f} of {whose} "
-            f"{top}'s {peers[top]:.3f}, below 0.8"
+            f"its favourable rate {mine:.3f} is {mine / best:.3f} of {whose} "
+            f"{top}'s {best:.3f}, below 0.8"
         )
-    if reference_group is None and mine > peers[top]:
-        low = min(peers, key=lambda h: peers[h])
-        if peers[low] / mine < line:
+    if reference_group is None and mine > best:
+        lowest = min(peers.values())
+        if lowest / mine < line:
+            low = _first_near(peers, lowest)
             return (
                 f"its favourable rate {mine:.3f} is above every other and puts {low} "
-                f"({peers[low]:.3f}) at {peers[low] / mine:.3f} of it, below 0.8"
+                f"({lowest:.3f}) at {lowest / mine:.3f} of it, below 0.8"
             )
     return None
 
