@@ -39,6 +39,7 @@ import numpy as np
 
 from service.policy.derive_lp import FOUR_FIFTHS, solve_lp
 from service.policy.document import Criterion, Rule
+from service.policy.errors import InternalDeriveError
 from service.policy.mixture import LpPoint, rule_for_point, rule_from_weights
 from service.policy.rates import ExpectedCounts, rule_bands
 from service.policy.units import POOLED_UNIT, DeriveError, Prepared, Unit
@@ -164,8 +165,8 @@ def solve(
     cost = (settings.cost_fp * fp + settings.cost_fn * fn) / prepared.n_rows
     action_rate = (tp + fp) / prepared.n_rows
     if capacity is not None and action_rate > capacity + CHECK_TOLERANCE:
-        raise RuntimeError(
-            f"internal error: the rules act on {action_rate:.6f} of the rows, above the "
+        raise InternalDeriveError(
+            f"the rules act on {action_rate:.6f} of the rows, above the "
             f"capacity {capacity:g} the LP kept"
         )
     outside = outside_promise(prepared, criterion, tolerance, reference_group, groups)
@@ -189,9 +190,7 @@ def _check_rule(unit: Unit, rule: Rule, point: LpPoint) -> None:
     counts = rule_bands(rule, unit.curve).counts()
     gap = max(abs(float(counts.fpr[0]) - point.fpr), abs(float(counts.tpr[0]) - point.tpr))
     if gap > CHECK_TOLERANCE:
-        raise RuntimeError(
-            f"internal error: the rule for {unit.key!r} misses the LP point by {gap:.3g}"
-        )
+        raise InternalDeriveError(f"the rule for {unit.key!r} misses the LP point by {gap:.3g}")
 
 
 def group_rates(counts: ExpectedCounts, favourable: str) -> dict[str, float]:
