@@ -33,6 +33,7 @@ from service.policy.derive import FRONTIER_TOLERANCES, frontier, solve
 from service.policy.derive_document import PolicyIdentity, build_document
 from service.policy.derive_report import build_report
 from service.policy.document import Criterion, document_json
+from service.policy.errors import InternalDeriveError
 from service.policy.units import DeriveError, DeriveSettings, prepare
 
 _SLUG = re.compile(r"^[a-z0-9][a-z0-9._-]{0,63}$")
@@ -198,6 +199,8 @@ def run(args: argparse.Namespace) -> int:
         front = frontier(prepared, criterion, FRONTIER_TOLERANCES, **options)
     except DeriveError as exc:
         raise CliError(exc.message) from None
+    except InternalDeriveError as exc:
+        raise CliError(f"{exc} (a defect in evenhand, not in the data; please report it)") from None
     except ValidationError as exc:
         first = exc.errors()[0]
         where = ".".join(str(p) for p in first["loc"])

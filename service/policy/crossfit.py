@@ -28,6 +28,7 @@ import numpy.typing as npt
 from service.policy.derive import CHECK_TOLERANCE, GAP_RATES, RATE_NAMES, Solution, solve
 from service.policy.derive_lp import FOUR_FIFTHS
 from service.policy.document import CalibrationCounts, Criterion
+from service.policy.errors import InternalDeriveError
 from service.policy.rates import ExpectedCounts, rule_bands
 from service.policy.units import (
     CalibrationData,
@@ -130,7 +131,12 @@ def cross_fit(
     capacity: float | None = None,
     reference_group: str | None = None,
 ) -> dict[Criterion, CrossFitted | DeriveError]:
-    """Out-of-sample counts of every criterion in ``criteria`` (or why it failed)."""
+    """Out-of-sample counts of every criterion in ``criteria`` (or why it failed).
+
+    A criterion that cannot be derived on some fold is reported as a :class:`DeriveError`;
+    an :class:`InternalDeriveError` (a defect, not a property of the data) is raised again,
+    naming the fold and the criterion.
+    """
     data, settings = prepared.data, prepared.settings
     n_groups = len(data.group_keys)
     failed: dict[Criterion, DeriveError] = {}
@@ -161,6 +167,8 @@ def cross_fit(
             except DeriveError as exc:
                 failed[criterion] = DeriveError(f"{where}: {exc.message}", exc.field)
                 continue
+            except InternalDeriveError as exc:
+                raise exc.within(f"{where} ({criterion.value})") from exc
             acc = sums[criterion]
             for g, (result, curve) in enumerate(zip(sol.groups, held_curves, strict=True)):
                 bands = rule_bands(sol.rules[result.rule_key], curve)

@@ -39,6 +39,7 @@ import numpy as np
 
 from service.policy.derive_lp import FOUR_FIFTHS, solve_lp
 from service.policy.document import Criterion, Rule
+from service.policy.errors import InternalDeriveError
 from service.policy.mixture import LpPoint, rule_for_point, rule_from_weights
 from service.policy.rates import ExpectedCounts, rule_bands
 from service.policy.units import POOLED_UNIT, DeriveError, Prepared, Unit
@@ -164,8 +165,8 @@ def solve(
     cost = (settings.cost_fp * fp + settings.cost_fn * fn) / prepared.n_rows
     action_rate = (tp + fp) / prepared.n_rows
     if capacity is not None and action_rate > capacity + CHECK_TOLERANCE:
-        raise RuntimeError(
-            f"internal error: the rules act on {action_rate:.6f} of the rows, above the "
+        raise InternalDeriveError(
+            f"the rules act on {action_rate:.6f} of the rows, above the "
             f"capacity {capacity:g} the LP kept"
         )
     outside = outside_promise(prepared, criterion, tolerance, reference_group, groups)
@@ -189,9 +190,7 @@ def _check_rule(unit: Unit, rule: Rule, point: LpPoint) -> None:
     counts = rule_bands(rule, unit.curve).counts()
     gap = max(abs(float(counts.fpr[0]) - point.fpr), abs(float(counts.tpr[0]) - point.tpr))
     if gap > CHECK_TOLERANCE:
-        raise RuntimeError(
-            f"internal error: the rule for {unit.key!r} misses the LP point by {gap:.3g}"
-        )
+        raise InternalDeriveError(f"the rule for {unit.key!r} misses the LP point by {gap:.3g}")
 
 
 def group_rates(counts: ExpectedCounts, favourable: str) -> dict[str, float]:
@@ -251,13 +250,21 @@ def outside_promise(
     return out
 
 
+def _first_near(values: dict[str, float], target: float) -> str:
+    """The first key, in group order, whose value is within rounding (``CHECK_TOLERANCE``)
+    of ``target``: which of several equal rates a message names must not depend on the last
+    digits of a float (rates the LP equalizes differ there)."""
+    return next(k for k, v in values.items() if abs(v - target) <= CHECK_TOLERANCE)
+
+
 def _gap_miss(mine: float, peers: dict[str, float], tolerance: float, what: str) -> str | None:
     if not peers:
         return None
-    far = max(peers, key=lambda h: abs(peers[h] - mine))
-    gap = abs(peers[far] - mine)
+    distance = {h: abs(v - mine) for h, v in peers.items()}
+    gap = max(distance.values())
     if gap <= tolerance + CHECK_TOLERANCE:
         return None
+    far = _first_near(distance, gap)
     return (
         f"its {what} {mine:.3f} is {gap:.3f} from {far}'s {peers[far]:.3f}, beyond the "
         f"tolerance {tolerance:g}"
@@ -272,23 +279,24 @@ def _four_fifths_miss(
     if not peers:
         return None
     line = FOUR_FIFTHS - CHECK_TOLERANCE
-    top = (
-        reference_group
-        if reference_group is not None and reference_group in peers
-        else max(peers, key=lambda h: peers[h])
-    )
+    if reference_group is not None and reference_group in peers:
+        top, best = reference_group, peers[reference_group]
+    else:
+        best = max(peers.values())
+        top = _first_near(peers, best)
     whose = "the reference group" if top == reference_group else "the highest,"
-    if peers[top] > 0 and mine / peers[top] < line:
+    if best > 0 and mine / best < line:
         return (
-            f"its favourable rate {mine:.3f} is {mine / peers[top]:.3f} of {whose} "
-            f"{top}'s {peers[top]:.3f}, below 0.8"
+            f"its favourable rate {mine:.3f} is {mine / best:.3f} of {whose} "
+            f"{top}'s {best:.3f}, below 0.8"
         )
-    if reference_group is None and mine > peers[top]:
-        low = min(peers, key=lambda h: peers[h])
-        if peers[low] / mine < line:
+    if reference_group is None and mine > best:
+        lowest = min(peers.values())
+        if lowest / mine < line:
+            low = _first_near(peers, lowest)
             return (
                 f"its favourable rate {mine:.3f} is above every other and puts {low} "
-                f"({peers[low]:.3f}) at {peers[low] / mine:.3f} of it, below 0.8"
+                f"({lowest:.3f}) at {lowest / mine:.3f} of it, below 0.8"
             )
     return None
 

@@ -26,3 +26,19 @@ class UnknownGroup(PolicyError):
 
 class ScoreOutOfRange(PolicyError):
     code = "score_out_of_range"
+
+
+class InternalDeriveError(RuntimeError):
+    """The derive engine's own consistency check failed: a defect in Evenhand, not in the
+    input. ``detail`` says what failed (naming the rule), ``context`` where (for example a
+    cross-fitting fold); ``str()`` joins them into one line."""
+
+    def __init__(self, detail: str, context: str | None = None) -> None:
+        self.detail = detail
+        self.context = context
+        where = "" if context is None else f" in {context}"
+        super().__init__(f"internal error{where}: {detail}")
+
+    def within(self, context: str) -> InternalDeriveError:
+        """The same error, said to have happened in ``context``."""
+        return InternalDeriveError(self.detail, context)

@@ -42,14 +42,18 @@ def cut_mixture(hull: Hull, point: LpPoint) -> list[tuple[float, float]]:
     between them, and each of A and B is a band between two adjacent vertices. On the hull
     the point is A or B itself, and the rule is a single band.
     """
-    gain = hull.tpr - hull.fpr
     # The gain rises strictly, may stay level along one segment of slope 1 (the whole hull
     # when it is the chance diagonal: a group whose scores take one value), then falls
     # strictly. A is sought left of the first maximum, B right of the last one, so a level
-    # segment is spanned by the pair (A, B) instead of being collapsed to its left end.
-    first_peak = int(np.argmax(gain))
-    last = len(gain) - 1
-    last_peak = last - int(np.argmax(gain[::-1]))
+    # segment is spanned by the pair (A, B) instead of being collapsed to one end. The
+    # maxima are found on the exact integer gains: in floats, tpr - fpr at the two ends of
+    # a level segment can differ by one unit in the last place, which made one end the only
+    # maximum and moved every point along the segment to that end.
+    exact = hull.gain_numerators
+    gain = hull.gain
+    first_peak = int(np.argmax(exact))
+    last = len(exact) - 1
+    last_peak = last - int(np.argmax(exact[::-1]))
     level = float(np.clip(point.tpr - point.fpr, 0.0, gain[first_peak]))
     if first_peak == 0:
         ka, frac_a, fa = 0, 0.0, float(hull.fpr[0])

@@ -115,17 +115,55 @@ def _monotone_chain(x: IntArray, y: IntArray, idx: npt.NDArray[np.intp]) -> npt.
 
 @dataclass(frozen=True)
 class Hull:
-    """Upper hull vertices of one unit's ROC, from (0, 0) to (1, 1), with their cuts."""
+    """Upper hull vertices of one unit's ROC, from (0, 0) to (1, 1), with their cuts and the
+    integer counts (``tp``, ``fp`` of ``positives``, ``negatives``) they come from."""
 
     fpr: FloatArray
     tpr: FloatArray
     cuts: FloatArray
+    tp: IntArray
+    fp: IntArray
+    positives: int
+    negatives: int
+
+    @property
+    def gain_numerators(self) -> IntArray:
+        """TP N - FP P at each vertex: (TPR - FPR) x P N, an exact integer."""
+        return self.tp * self.negatives - self.fp * self.positives
+
+    @property
+    def gain(self) -> FloatArray:
+        """TPR - FPR at each vertex, as (TP N - FP P) / (P N).
+
+        The numerators are exact integers over one common denominator, so vertices with
+        equal gains (the two ends of a hull segment of slope 1) get the same float and a
+        larger gain never gets a smaller one. ``tpr - fpr`` guarantees neither: its two
+        roundings can leave the ends of a slope-1 segment one unit in the last place apart.
+        """
+        return self.gain_numerators / float(self.positives * self.negatives)
+
+
+MAX_COUNT_PRODUCT = 2**62
+"""Largest P x N the hull accepts: its gain numerators TP N - FP P must fit in int64."""
 
 
 def hull_of(curve: RocCurve, score_low: float) -> Hull:
+    if curve.positives * curve.negatives >= MAX_COUNT_PRODUCT:
+        raise ValueError(
+            f"{curve.positives} positives x {curve.negatives} negatives is too many rows "
+            "for exact hull gains"
+        )
     idx = upper_hull(curve)
     cuts = curve.cuts[idx].copy()
     # The last vertex acts on everyone: write it as the bottom of the score range so that
     # new scores below the calibration minimum are treated the same way.
     cuts[-1] = score_low
-    return Hull(fpr=curve.fpr[idx], tpr=curve.tpr[idx], cuts=cuts)
+    return Hull(
+        fpr=curve.fpr[idx],
+        tpr=curve.tpr[idx],
+        cuts=cuts,
+        tp=curve.tp[idx],
+        fp=curve.fp[idx],
+        positives=curve.positives,
+        negatives=curve.negatives,
+    )

@@ -5,13 +5,18 @@ from __future__ import annotations
 import json
 import re
 from pathlib import Path
+from typing import Any
 
 import pytest
 from statsmodels.stats.proportion import proportion_confint
 
 from service.cli.main import main
 from service.demo.fernhollow import generate, write_csv
-from service.policy.document import PolicyDocument, content_hash
+from service.policy import crossfit
+from service.policy.derive import Solution, solve
+from service.policy.document import Criterion, PolicyDocument, content_hash
+from service.policy.errors import InternalDeriveError
+from service.policy.units import Prepared
 
 
 @pytest.fixture(scope="module")
@@ -228,6 +233,39 @@ def test_bad_input_is_one_line_exit_2_and_writes_nothing(
     assert code == 2
     assert last.startswith("evenhand: error: ") and message in last, err
     assert list(out_dir.iterdir()) == []  # no output, no temporary file left behind
+
+
+def test_an_internal_error_in_cross_fitting_is_one_line_exit_2(
+    demo_csv: Path,
+    tmp_path: Path,
+    capsys: pytest.CaptureFixture[str],
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    # Injected: the second fold's equal-opportunity solve fails its consistency check.
+    calls = {"n": 0}
+
+    def second_fold_fails(
+        prepared: Prepared, criterion: Criterion, *args: Any, **kw: Any
+    ) -> Solution:
+        if criterion is Criterion.EQUAL_OPPORTUNITY:
+            calls["n"] += 1
+            if calls["n"] == 2:
+                raise InternalDeriveError("the rule for 'saltmarsh' misses the LP point by 0.03")
+        return solve(prepared, criterion, *args, **kw)
+
+    monkeypatch.setattr(crossfit, "solve", second_fold_fails)
+    out_dir = tmp_path / "out"
+    out_dir.mkdir()
+    assert main(_argv(demo_csv, out_dir)) == 2
+    err = capsys.readouterr().err
+    assert "Traceback" not in err
+    [line] = [x for x in err.splitlines() if x.startswith("evenhand: error")]
+    assert line == (
+        "evenhand: error: internal error in cross-fitting fold 2 of 5 (equal-opportunity): "
+        "the rule for 'saltmarsh' misses the LP point by 0.03 (a defect in evenhand, not in "
+        "the data; please report it)"
+    )
+    assert list(out_dir.iterdir()) == []
 
 
 def test_tolerance_is_required(demo_csv: Path, tmp_path: Path) -> None:

@@ -3,14 +3,18 @@ interval, failing folds, and a simulation showing the promises are centred on th
 
 from __future__ import annotations
 
+from typing import Any
+
 import numpy as np
 import pytest
 
+from service.policy import crossfit
 from service.policy.crossfit import CrossFitted, assign_folds, cross_fit, promise_warnings
-from service.policy.derive import solve
+from service.policy.derive import Solution, solve
 from service.policy.document import Criterion
+from service.policy.errors import InternalDeriveError
 from service.policy.rules import rule_probabilities
-from service.policy.units import CalibrationData, DeriveError, DeriveSettings, prepare
+from service.policy.units import CalibrationData, DeriveError, DeriveSettings, Prepared, prepare
 
 
 def _draw(rng: np.random.Generator, n: int) -> CalibrationData:
@@ -159,6 +163,35 @@ def test_a_fold_without_positives_in_a_group_falls_back_as_the_full_fit_would() 
     assert "group 'b|x' has no positive outcomes: it uses the parent rule 'b'" in note
     assert int(cross.positives[data.group_keys.index("b|x")]) == 1
     assert int(cross.n.sum()) == len(data.scores)
+
+
+def test_an_internal_error_in_a_fold_is_raised_naming_the_fold_and_criterion(
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    # A defect is not "this criterion cannot be met": it must not be folded into the
+    # per-criterion DeriveError results. Injected: the third fold's equal-opportunity solve
+    # fails its consistency check.
+    calls = {"n": 0}
+
+    def third_fold_fails(
+        prepared: Prepared, criterion: Criterion, *args: Any, **kw: Any
+    ) -> Solution:
+        if criterion is Criterion.EQUAL_OPPORTUNITY:
+            calls["n"] += 1
+            if calls["n"] == 3:
+                raise InternalDeriveError("the rule for '1' misses the LP point by 0.03")
+        return solve(prepared, criterion, *args, **kw)
+
+    monkeypatch.setattr(crossfit, "solve", third_fold_fails)
+    data = _draw(np.random.default_rng(3), 900)
+    prepared = prepare(data, DeriveSettings(1.0, 4.0))
+    criteria = [Criterion.MAX_UTILITY, Criterion.EQUAL_OPPORTUNITY]
+    with pytest.raises(InternalDeriveError) as exc:
+        cross_fit(prepared, criteria, assign_folds(data, 5, 1), 5, 0.05)
+    assert str(exc.value) == (
+        "internal error in cross-fitting fold 3 of 5 (equal-opportunity): "
+        "the rule for '1' misses the LP point by 0.03"
+    )
 
 
 # --- Warnings --------------------------------------------------------------------------------

@@ -7,7 +7,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from service.policy.derive import solve
+from service.policy.derive import _four_fifths_miss, _gap_miss, solve
 from service.policy.document import Criterion
 from service.policy.mixture import LpPoint, rule_for_point
 from service.policy.rates import expected_counts
@@ -169,6 +169,23 @@ def test_four_fifths_outside_the_promise_names_the_ratio() -> None:
     assert rates["a|x"] < 0.8 * top
     assert "below 0.8" in sol.outside_promise["a|x"]
     assert min(rates["a|en"], rates["b|en"]) >= 0.8 * top - 1e-9  # own rules keep the line
+
+
+@pytest.mark.parametrize("last_digits", [(5, 6), (6, 5)])
+def test_a_reason_names_the_first_of_groups_whose_rates_differ_only_by_rounding(
+    last_digits: tuple[int, int],
+) -> None:
+    # Two own groups the LP holds at the same TPR, apart only in the last digit (as in the
+    # demo policy's millbrook|en and quarry-hill|en): the reason names the first in group
+    # order whichever float is a hair larger, so the text does not change with rounding.
+    m, q = (float(f"0.578842315369261{d}") for d in last_digits)
+    reason = _gap_miss(0.7924528301886793, {"m": m, "q": q}, 0.05, "TPR")
+    assert reason is not None and "from m's 0.579" in reason
+    low, high = (0.5 + d * 1e-16 for d in last_digits)
+    reason = _four_fifths_miss(0.3, {"m": low, "q": high}, None)
+    assert reason is not None and "of the highest, m's 0.500" in reason
+    reason = _four_fifths_miss(0.9, {"m": low, "q": high}, None)
+    assert reason is not None and "puts m (0.500)" in reason
 
 
 # --- Capacity with fallback units -----------------------------------------------------------
