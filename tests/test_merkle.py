@@ -7,7 +7,7 @@ import random
 
 import pytest
 
-from service.audit.merkle import (
+from service.log.merkle import (
     EMPTY_ROOT,
     TreeBuilder,
     inclusion_proof,

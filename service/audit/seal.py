@@ -37,7 +37,7 @@ from sqlalchemy import (
 from sqlalchemy.dialects.postgresql import ARRAY
 from sqlalchemy.orm import Session
 
-from service.audit.merkle import TreeBuilder
+from service.log.merkle import TreeBuilder
 from service.policy.document import canonical_json
 from service.store.db import begin_read_only
 from service.store.models import Recommendation, Seal, utcnow
