@@ -160,12 +160,12 @@ def _current_changed(
     rows = {r.version: r for r in repo.list_versions(session, name)}
     active = _active_in(rows)
     shadow = repo.get_shadow(session, name)
-    last = session.scalar(
-        select(PolicyEvent)
-        .where(PolicyEvent.name == name, PolicyEvent.action != LifecycleAction.SUBMIT.value)
-        .order_by(PolicyEvent.id.desc())
-        .limit(1)
+    last = (
+        repo.last_switch(session, name)
+        if what == "active"
+        else repo.last_shadow_change(session, name)
     )
+    since = ""
     details: list[dict[str, Any]] = [
         {
             "code": "active_version",
@@ -181,11 +181,15 @@ def _current_changed(
         },
     ]
     if last is not None:
-        move = f"v{last.from_version or '-'} -> v{last.to_version or '-'}"
+        move = " -> ".join(
+            "-" if v is None else f"v{v}" for v in (last.from_version, last.to_version)
+        )
+        change = f"{last.action} {move} by {last.actor} at {last.at.isoformat()}"
+        since = f" (last change: {change})"
         details.append(
             {
                 "code": "last_change",
-                "message": f"{last.action} {move} by {last.actor} at {last.at.isoformat()}",
+                "message": change,
                 "field": None,
                 "value": {
                     "action": last.action,
@@ -200,7 +204,7 @@ def _current_changed(
     current_text = "none" if current is None else f"v{current}"
     return Conflict(
         f"{name}: the request expected {expected_text} as the {what} version but "
-        f"{current_text} is; the policy changed since: check its history and decide again",
+        f"{current_text} is{since}; check the history and decide again",
         code="current_changed",
         field="expected_current",
         details=details,
