@@ -33,7 +33,7 @@ from sqlalchemy.orm import Session, sessionmaker
 from service.api.recommendation_schemas import RecommendationRequest
 from service.errors import ServiceError
 from service.store import keys, lifecycle, policies
-from service.store.lifecycle import UNCHECKED, Expected
+from service.store.expected import UNCHECKED, Expected
 from service.store.models import PolicyEvent, PolicyVersion, Recommendation
 from service.store.scoring import DocumentCache, ScoringContext, recommend_group
 from tests.helpers import TEST_SECRET, make_policy, make_request

@@ -24,7 +24,7 @@ from service.errors import NotFound
 from service.policy.document import PolicyDocument
 from service.store import lifecycle
 from service.store import policies as repo
-from service.store.lifecycle import UNCHECKED, Expected
+from service.store.expected import UNCHECKED, Expected
 
 router = APIRouter(
     prefix="/v1/policies",

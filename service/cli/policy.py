@@ -17,7 +17,7 @@ from typing import Any
 
 from service.cli.common import CliError
 from service.errors import ServiceError
-from service.store.lifecycle import UNCHECKED, Expected, Unchecked
+from service.store.expected import UNCHECKED, Expected, Unchecked
 
 
 def _with_expected(body: dict[str, Any], expected: Expected) -> dict[str, Any]:

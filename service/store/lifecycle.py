@@ -21,8 +21,7 @@ second rollback then rolls back again).
 
 from __future__ import annotations
 
-from enum import Enum
-from typing import Any, Final
+from typing import Any
 
 from pydantic import ValidationError
 from sqlalchemy import select
@@ -32,6 +31,7 @@ from sqlalchemy.orm import Session
 from service.errors import Conflict, Forbidden, NotFound, Unprocessable
 from service.policy.document import PolicyDocument, content_hash, document_json
 from service.store import policies as repo
+from service.store.expected import UNCHECKED, Expected, Unchecked
 from service.store.models import (
     LifecycleAction,
     PolicyEvent,
@@ -42,17 +42,6 @@ from service.store.models import (
 )
 from service.store.policy_diff import Change, diff_documents
 from service.store.switch_lock import hold_for_switch
-
-
-class Unchecked(Enum):
-    """No expected state was given: the request applies to whatever is current."""
-
-    UNCHECKED = "unchecked"
-
-
-UNCHECKED: Final = Unchecked.UNCHECKED
-Expected = int | None | Unchecked
-"""The version a caller expects to be current (``None``: none), or ``UNCHECKED``."""
 
 
 def parse_document(data: Any) -> PolicyDocument:
