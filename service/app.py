@@ -11,7 +11,7 @@ from fastapi import FastAPI
 
 from service.api import health, log, outcomes, policies, recommendations, reports, warnings
 from service.api.deps import KeyCache
-from service.api.errors import install_error_handlers
+from service.api.errors import error_responses, install_error_handlers
 from service.api.limits import BodySizeLimit
 from service.audit.sealer import PeriodicSealer
 from service.settings import Settings
@@ -70,12 +70,11 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.state.key_cache = KeyCache(settings.auth_cache_seconds)
     install_error_handlers(app)
     # Routes are matched in order: the scoring routes, by far the most called, come first.
-    app.include_router(recommendations.router)
+    # Every route that reads or writes the database may answer 503 database_unavailable.
+    unavailable = error_responses(503)
+    app.include_router(recommendations.router, responses=unavailable)
     app.include_router(health.router)
-    app.include_router(policies.router)
-    app.include_router(log.router)
-    app.include_router(outcomes.router)
-    app.include_router(reports.router)
-    app.include_router(warnings.router)
+    for router in (policies.router, log.router, outcomes.router, reports.router, warnings.router):
+        app.include_router(router, responses=unavailable)
     app.add_middleware(BodySizeLimit, max_bytes=settings.max_body_bytes)
     return app

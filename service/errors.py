@@ -60,8 +60,11 @@ class Unprocessable(ServiceError):
 
 
 class ServiceUnavailable(ServiceError):
+    """503: try again later; answered with ``Retry-After: retry_after`` seconds."""
+
     status_code = 503
     code = "unavailable"
+    retry_after = 2
 
 
 def check_batch_size(count: int, limit: int) -> None:

@@ -9,10 +9,12 @@ from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse
 from pydantic import BaseModel, ValidationError
+from sqlalchemy.exc import SQLAlchemyError
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
-from service.errors import ServiceError
+from service.errors import ServiceError, ServiceUnavailable
 from service.policy.errors import PolicyError
+from service.store.db import DatabaseUnavailable, is_unavailable
 
 log = logging.getLogger("evenhand.api")
 
@@ -43,7 +45,8 @@ def error_responses(*statuses: int) -> dict[int | str, dict[str, Any]]:
         409: "Conflict with the current state (lifecycle, idempotency)",
         413: "Body or batch too large",
         422: "Invalid input: see error.field and error.details",
-        503: "Not ready",
+        503: "Unavailable for now (the database, or the server shutting down): retry after "
+        "the Retry-After header's seconds",
     }
     return {
         s: {"model": ErrorResponse, "description": descriptions.get(s, "Error")} for s in statuses
@@ -95,13 +98,31 @@ def _validation_response(errors: list[Any]) -> JSONResponse:
     return error_json(422, "validation_error", message, field, details)
 
 
+def service_error_response(exc: ServiceError) -> JSONResponse:
+    headers = None
+    if exc.status_code == 401:
+        headers = {"WWW-Authenticate": "Bearer"}
+    elif isinstance(exc, ServiceUnavailable):
+        headers = {"Retry-After": str(exc.retry_after)}
+    return error_json(
+        exc.status_code, exc.code, exc.message, exc.field, exc.details, headers=headers
+    )
+
+
 def install_error_handlers(app: FastAPI) -> None:
     @app.exception_handler(ServiceError)
     async def _service_error(_request: Request, exc: ServiceError) -> JSONResponse:
-        headers = {"WWW-Authenticate": "Bearer"} if exc.status_code == 401 else None
-        return error_json(
-            exc.status_code, exc.code, exc.message, exc.field, exc.details, headers=headers
-        )
+        return service_error_response(exc)
+
+    @app.exception_handler(SQLAlchemyError)
+    async def _database_error(_request: Request, exc: SQLAlchemyError) -> JSONResponse:
+        # The one place a database error becomes an answer: unavailable (a lost or refused
+        # connection, a restart, a timeout) is a 503 to retry, never a 500.
+        if is_unavailable(exc):
+            log.warning("database unavailable: %s", type(exc).__name__)
+            return service_error_response(DatabaseUnavailable())
+        log.error("database error: %s", type(exc).__name__, exc_info=exc)
+        return error_json(500, "internal_error", "internal error; the request was not recorded")
 
     @app.exception_handler(PolicyError)
     async def _policy_error(_request: Request, exc: PolicyError) -> JSONResponse:

@@ -24,6 +24,7 @@ from service.errors import NotFound
 from service.policy.document import PolicyDocument
 from service.store import lifecycle
 from service.store import policies as repo
+from service.store.expected import UNCHECKED, Expected
 
 router = APIRouter(
     prefix="/v1/policies",
@@ -88,9 +89,18 @@ def approve_version(
     return VersionSummary.of(row)
 
 
+def _expected(body: ActivateBody | RollbackBody | ShadowBody) -> Expected:
+    """``expected_current`` as sent: a version, None ("none"), or not checked when absent."""
+    if "expected_current" not in body.model_fields_set:
+        return UNCHECKED
+    return body.expected_current
+
+
 @router.post("/{name}/activate", summary="Activate an approved version; the active one retires")
 def activate(name: Name, body: ActivateBody, session: DbSession, key: AdminKey) -> VersionSummary:
-    row = lifecycle.activate(session, name, body.version, key.name, body.reason)
+    row = lifecycle.activate(
+        session, name, body.version, key.name, body.reason, expected_current=_expected(body)
+    )
     session.commit()
     return VersionSummary.of(row)
 
@@ -100,7 +110,9 @@ def activate(name: Name, body: ActivateBody, session: DbSession, key: AdminKey) 
     summary="Re-activate the previously active version (or to_version); needs a reason",
 )
 def rollback(name: Name, body: RollbackBody, session: DbSession, key: AdminKey) -> VersionSummary:
-    row = lifecycle.rollback(session, name, key.name, body.reason, body.to_version)
+    row = lifecycle.rollback(
+        session, name, key.name, body.reason, body.to_version, expected_current=_expected(body)
+    )
     session.commit()
     return VersionSummary.of(row)
 
@@ -145,13 +157,26 @@ def get_shadow(name: Name, session: ReadSession, _key: AdminKey) -> ShadowOut:
     summary="Evaluate an approved version beside the active one (recorded, not returned)",
 )
 def set_shadow(name: Name, body: ShadowBody, session: DbSession, key: AdminKey) -> ShadowOut:
-    shadow = lifecycle.set_shadow(session, name, body.version, key.name)
+    shadow = lifecycle.set_shadow(session, name, body.version, key.name, _expected(body))
     session.commit()
     return ShadowOut.of(shadow)
 
 
 @router.delete("/{name}/shadow", status_code=204, summary="Stop shadow evaluation")
-def clear_shadow(name: Name, session: DbSession, key: AdminKey) -> Response:
-    lifecycle.clear_shadow(session, name, key.name)
+def clear_shadow(
+    name: Name,
+    session: DbSession,
+    key: AdminKey,
+    expected_current: Annotated[
+        int | None,
+        Query(
+            ge=1,
+            description="the shadow version you mean to end: a repeat after it ended is "
+            "answered 204 again, another shadow version is a 409 current_changed",
+        ),
+    ] = None,
+) -> Response:
+    expected: Expected = UNCHECKED if expected_current is None else expected_current
+    lifecycle.clear_shadow(session, name, key.name, expected)
     session.commit()
     return Response(status_code=204)

@@ -14,18 +14,34 @@ class _In(BaseModel):
     model_config = ConfigDict(extra="forbid")
 
 
+_EXPECTED = (
+    "the version you expect to be {what} now (null: none). A repeat of a request that was "
+    "carried out is answered with the same result and changes nothing; a request whose "
+    "expectation no longer holds is refused (409 current_changed). Absent: not checked."
+)
+
+
 class ActivateBody(_In):
     version: int = Field(ge=1)
     reason: str | None = Field(default=None, max_length=2000)
+    expected_current: int | None = Field(
+        default=None, ge=1, description=_EXPECTED.format(what="active")
+    )
 
 
 class RollbackBody(_In):
     to_version: int | None = Field(default=None, ge=1)
     reason: str = Field(min_length=1, max_length=2000, description="why; kept in the history")
+    expected_current: int | None = Field(
+        default=None, ge=1, description=_EXPECTED.format(what="active")
+    )
 
 
 class ShadowBody(_In):
     version: int = Field(ge=1)
+    expected_current: int | None = Field(
+        default=None, ge=1, description=_EXPECTED.format(what="the shadow")
+    )
 
 
 class VersionSummary(BaseModel):

@@ -14,6 +14,7 @@ import logging
 from sqlalchemy.orm import Session, sessionmaker
 
 from service.audit.seal import seal_all_pending
+from service.store.db import is_unavailable
 
 logger = logging.getLogger(__name__)
 
@@ -53,8 +54,14 @@ class PeriodicSealer:
     async def _tick(self) -> None:
         try:
             sealed = await asyncio.to_thread(seal_once, self._session_factory)
-        except Exception:
-            logger.exception("sealing the decision log failed; trying again next interval")
+        except Exception as exc:
+            if is_unavailable(exc):
+                logger.warning(
+                    "sealing: database unavailable (%s); trying again next interval",
+                    type(exc).__name__,
+                )
+            else:
+                logger.exception("sealing the decision log failed; trying again next interval")
             return
         if sealed:
             logger.info("sealed %d decision log records", sealed)

@@ -17,6 +17,13 @@ from typing import Any
 
 from service.cli.common import CliError
 from service.errors import ServiceError
+from service.store.expected import UNCHECKED, Expected, Unchecked
+
+
+def _with_expected(body: dict[str, Any], expected: Expected) -> dict[str, Any]:
+    if not isinstance(expected, Unchecked):
+        body["expected_current"] = expected
+    return body
 
 
 class HttpBackend:
@@ -49,22 +56,22 @@ class HttpBackend:
     def approve(self, name: str, version: int) -> Any:
         return self._call("POST", f"/v1/policies/{name}/versions/{version}/approve")
 
-    def activate(self, name: str, version: int, reason: str | None) -> Any:
-        return self._call(
-            "POST", f"/v1/policies/{name}/activate", json={"version": version, "reason": reason}
-        )
+    def activate(self, name: str, version: int, reason: str | None, expected: Expected) -> Any:
+        body = _with_expected({"version": version, "reason": reason}, expected)
+        return self._call("POST", f"/v1/policies/{name}/activate", json=body)
 
-    def rollback(self, name: str, reason: str, to_version: int | None) -> Any:
-        return self._call(
-            "POST",
-            f"/v1/policies/{name}/rollback",
-            json={"reason": reason, "to_version": to_version},
-        )
+    def rollback(self, name: str, reason: str, to_version: int | None, expected: Expected) -> Any:
+        body = _with_expected({"reason": reason, "to_version": to_version}, expected)
+        return self._call("POST", f"/v1/policies/{name}/rollback", json=body)
 
-    def shadow(self, name: str, version: int | None) -> Any:
+    def shadow(self, name: str, version: int | None, expected: Expected) -> Any:
         if version is None:
-            return self._call("DELETE", f"/v1/policies/{name}/shadow")
-        return self._call("PUT", f"/v1/policies/{name}/shadow", json={"version": version})
+            if expected is None:
+                raise CliError("--clear with --expect-current none: there is nothing to end")
+            params = {} if isinstance(expected, Unchecked) else {"expected_current": expected}
+            return self._call("DELETE", f"/v1/policies/{name}/shadow", params=params)
+        body = _with_expected({"version": version}, expected)
+        return self._call("PUT", f"/v1/policies/{name}/shadow", json=body)
 
     def history(self, name: str) -> Any:
         return self._call("GET", f"/v1/policies/{name}/history")
@@ -133,37 +140,36 @@ class DirectBackend:
 
         return self._run(op, write=True)
 
-    def activate(self, name: str, version: int, reason: str | None) -> Any:
+    def activate(self, name: str, version: int, reason: str | None, expected: Expected) -> Any:
         from service.api.policy_schemas import VersionSummary
         from service.store import lifecycle
 
         def op(session: Any, actor: str) -> Any:
-            row = lifecycle.activate(session, name, version, actor, reason)
+            row = lifecycle.activate(session, name, version, actor, reason, expected)
             return VersionSummary.of(row).model_dump(mode="json")
 
         return self._run(op, write=True)
 
-    def rollback(self, name: str, reason: str, to_version: int | None) -> Any:
+    def rollback(self, name: str, reason: str, to_version: int | None, expected: Expected) -> Any:
         from service.api.policy_schemas import VersionSummary
         from service.store import lifecycle
 
         def op(session: Any, actor: str) -> Any:
-            row = lifecycle.rollback(session, name, actor, reason, to_version)
+            row = lifecycle.rollback(session, name, actor, reason, to_version, expected)
             return VersionSummary.of(row).model_dump(mode="json")
 
         return self._run(op, write=True)
 
-    def shadow(self, name: str, version: int | None) -> Any:
+    def shadow(self, name: str, version: int | None, expected: Expected) -> Any:
         from service.api.policy_schemas import ShadowOut
         from service.store import lifecycle
 
         def op(session: Any, actor: str) -> Any:
             if version is None:
-                lifecycle.clear_shadow(session, name, actor)
+                lifecycle.clear_shadow(session, name, actor, expected)
                 return None
-            return ShadowOut.of(lifecycle.set_shadow(session, name, version, actor)).model_dump(
-                mode="json"
-            )
+            shadow = lifecycle.set_shadow(session, name, version, actor, expected)
+            return ShadowOut.of(shadow).model_dump(mode="json")
 
         return self._run(op, write=True)
 
@@ -247,14 +253,17 @@ def register(sub: Any) -> None:
     c.add_argument("name")
     c.add_argument("version", type=int)
     c.add_argument("--reason")
+    _add_expect(c, "active")
     c = add("rollback", "re-activate the previous (or --to) version", _rollback)
     c.add_argument("name")
     c.add_argument("--reason", required=True)
     c.add_argument("--to", type=int, dest="to_version")
+    _add_expect(c, "active")
     c = add("shadow", "evaluate an approved version beside the active one", _shadow)
     c.add_argument("name")
     c.add_argument("version", type=int, nargs="?")
     c.add_argument("--clear", action="store_true", help="stop shadow evaluation")
+    _add_expect(c, "the shadow")
     c = add("history", "every lifecycle event of a policy", _history)
     c.add_argument("name")
     c = add("diff", "what changed between two versions, rule by rule", _diff)
@@ -264,6 +273,32 @@ def register(sub: Any) -> None:
     c = add("show", "the versions of a policy, or one version's document", _show)
     c.add_argument("name")
     c.add_argument("version", type=int, nargs="?")
+
+
+def _expected_version(text: str) -> int | None:
+    if text.lower() == "none":
+        return None
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(
+            f"expected a version number or 'none', got {text!r}"
+        ) from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"a version number is at least 1, got {value}")
+    return value
+
+
+def _add_expect(c: argparse.ArgumentParser, what: str) -> None:
+    c.add_argument(
+        "--expect-current",
+        type=_expected_version,
+        default=UNCHECKED,
+        metavar="VERSION|none",
+        help=f"the version you expect to be {what} now: a repeat of a change already made "
+        "answers as the first time and changes nothing; if the policy changed meanwhile, "
+        "nothing happens and the error says what is current",
+    )
 
 
 def _print_version(v: Any) -> None:
@@ -296,19 +331,23 @@ def _approve(args: argparse.Namespace) -> int:
 
 
 def _activate(args: argparse.Namespace) -> int:
-    _print_version(_backend(args).activate(args.name, args.version, args.reason))
+    backend = _backend(args)
+    _print_version(backend.activate(args.name, args.version, args.reason, args.expect_current))
     return 0
 
 
 def _rollback(args: argparse.Namespace) -> int:
-    _print_version(_backend(args).rollback(args.name, args.reason, args.to_version))
+    backend = _backend(args)
+    _print_version(backend.rollback(args.name, args.reason, args.to_version, args.expect_current))
     return 0
 
 
 def _shadow(args: argparse.Namespace) -> int:
     if args.clear == (args.version is not None):
         raise CliError("give a version to shadow, or --clear")
-    out = _backend(args).shadow(args.name, None if args.clear else args.version)
+    out = _backend(args).shadow(
+        args.name, None if args.clear else args.version, args.expect_current
+    )
     print(
         f"{args.name}: no shadow version"
         if out is None

@@ -12,6 +12,12 @@ The requests' coroutines only wait (no thread-pool hop per request), and the wai
 one wake-up of the event loop per group. Nothing is chained or ordered here: the seal step
 orders records later. Each server process has one committer; several processes (or replicas)
 each commit their own groups.
+
+Failures stay with their request: a group that fails for any reason but an unavailable
+database is rolled back and decided again one request per transaction (the good ones are
+recorded, the bad one gets its own error). A lost connection is replaced and the group tried
+once more; if the database is still unavailable, the group's requests get 503
+``database_unavailable`` and the next group tries again (no restart needed).
 """
 
 from __future__ import annotations
@@ -26,10 +32,11 @@ from concurrent.futures import Future
 from typing import Any
 
 from sqlalchemy import Connection, Engine
-from sqlalchemy.exc import DBAPIError, IntegrityError
+from sqlalchemy.exc import IntegrityError
 
 from service.errors import ServiceError, ServiceUnavailable
 from service.policy.errors import PolicyError
+from service.store.db import DatabaseUnavailable, is_unavailable
 from service.store.scoring import (
     GroupResult,
     ScoreInput,
@@ -105,6 +112,10 @@ class GroupCommitter:
         self._queue.put(_Job(request, future, None))
         return future.result()
 
+    def queued(self) -> int:
+        """Requests waiting for the next group (approximate; for monitoring and tests)."""
+        return self._queue.qsize()
+
     def _check_running(self) -> None:
         if not self._running:
             raise CommitterStopped()
@@ -130,13 +141,7 @@ class GroupCommitter:
             jobs = self._next_group()
             if jobs is None:
                 break
-            results: Sequence[GroupResult | BaseException]
-            try:
-                results = self._decide(jobs)
-            except Exception as exc:  # a database error: nothing of this group is durable
-                log.error("group commit failed: %s", type(exc).__name__)
-                results = [exc] * len(jobs)
-            _settle(jobs, results)
+            _settle(jobs, self._decide([job.request for job in jobs]))
         self._close_connection()
         # Refuse whatever arrived after the stop.
         refused: list[_Job] = []
@@ -149,38 +154,66 @@ class GroupCommitter:
                 refused.append(job)
         _settle(refused, [CommitterStopped() for _ in refused])
 
-    def _decide(self, jobs: list[_Job]) -> Sequence[GroupResult]:
-        requests = [job.request for job in jobs]
-        try:
-            return self._decide_group(requests)
-        except DBAPIError as exc:
-            if not exc.connection_invalidated:
-                raise
-            # The connection was lost (a database restart): nothing of this group was
-            # committed, or it was and the retry finds the request_ids stored. Try once more;
-            # _decide_group has dropped the broken connection and opens a new one.
-            return self._decide_group(requests)
+    def _decide(self, requests: list[ScoreInput]) -> Sequence[GroupResult | BaseException]:
+        """Each request's outcome; never raises.
+
+        The group is decided in one transaction. If the database is unavailable, the group
+        is tried once more on a new connection (the old one may just have been cut: a
+        restart, ``pg_terminate_backend``; nothing of the group was committed, or it was and
+        the retry finds its request_ids stored and answers from the records), then every
+        request gets 503 ``database_unavailable``. If anything else fails the group, be it
+        one request the database refuses or one our code cannot record, the group is rolled
+        back and its requests are decided one by one, each in its own transaction, so the
+        failure stays with the request that caused it.
+        """
+        for attempt in (1, 2):
+            try:
+                return self._decide_group(requests)
+            except Exception as exc:
+                if not is_unavailable(exc):
+                    if not isinstance(exc, IntegrityError):  # a request_id stored meanwhile
+                        log.warning(
+                            "a group of %d failed (%s); deciding its requests one by one",
+                            len(requests),
+                            type(exc).__name__,
+                        )
+                    return self._decide_each(requests)
+                log.warning("group commit: database unavailable (%s)", type(exc).__name__)
+                if attempt == 2:
+                    return [DatabaseUnavailable() for _ in requests]
+        raise AssertionError("unreachable")
 
     def _decide_group(self, requests: list[ScoreInput]) -> Sequence[GroupResult]:
         conn = self._connection()
         try:
             with conn.begin():
                 return recommend_group(conn, requests, self._ctx)
-        except IntegrityError:
-            # Another process stored one of these request_ids after our lookup (only
-            # possible with several writers on PostgreSQL): decide each on its own.
-            pass
-        except BaseException:
-            self._close_connection()
+        except BaseException as exc:
+            if is_unavailable(exc) or not isinstance(exc, Exception):
+                self._close_connection(invalidate=True)
             raise
-        return [self._decide_alone(conn, request) for request in requests]
 
-    def _decide_alone(self, conn: Connection, request: ScoreInput) -> GroupResult:
-        try:
-            with conn.begin():
-                return recommend(conn, request, self._ctx)
-        except (ServiceError, PolicyError) as exc:
-            return exc
+    def _decide_each(self, requests: list[ScoreInput]) -> list[GroupResult | BaseException]:
+        results: list[GroupResult | BaseException] = []
+        for request in requests:
+            if results and isinstance(results[-1], DatabaseUnavailable):
+                results.append(DatabaseUnavailable())  # no use trying the rest now
+                continue
+            try:
+                conn = self._connection()
+                with conn.begin():
+                    results.append(recommend(conn, request, self._ctx))
+            except (ServiceError, PolicyError) as exc:
+                results.append(exc)
+            except Exception as exc:
+                if is_unavailable(exc):
+                    self._close_connection(invalidate=True)
+                    results.append(DatabaseUnavailable())
+                else:
+                    # This request alone: the database refused it, or it could not be built.
+                    log.error("a request could not be recorded: %s", type(exc).__name__)
+                    results.append(exc)
+        return results
 
     def _connection(self) -> Connection:
         # One connection for the committer's life: no pool checkout (and on PostgreSQL no
@@ -189,9 +222,11 @@ class GroupCommitter:
             self._conn = self._engine.connect()
         return self._conn
 
-    def _close_connection(self) -> None:
+    def _close_connection(self, invalidate: bool = False) -> None:
         if self._conn is not None:
             with contextlib.suppress(Exception):  # already broken: the pool discards it
+                if invalidate:
+                    self._conn.invalidate()  # never hand a cut connection to anyone again
                 self._conn.close()
             self._conn = None
 

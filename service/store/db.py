@@ -24,7 +24,7 @@ import sqlite3
 import threading
 from typing import Any
 
-from sqlalchemy import Engine, create_engine, event
+from sqlalchemy import Engine, create_engine, event, exc
 from sqlalchemy.engine import make_url
 from sqlalchemy.orm import Session, sessionmaker
 
@@ -42,6 +42,31 @@ def begin_read_only(session: Session) -> None:
 
 def is_sqlite(url: str) -> bool:
     return make_url(url).get_backend_name() == "sqlite"
+
+
+def is_unavailable(error: BaseException) -> bool:
+    """True when ``error`` says the database cannot serve us right now, whatever the request:
+    the connection was lost or refused (a restart, ``pg_terminate_backend``, a network
+    failure), the server is starting or shutting down, a lock or statement timed out, a
+    deadlock or serialization failure, the pool had no connection to give. Such errors
+    become 503 ``database_unavailable``; any other database error is a fault of one request
+    (or of ours)."""
+    if isinstance(error, exc.DBAPIError):
+        return error.connection_invalidated or isinstance(
+            error, exc.OperationalError | exc.InterfaceError
+        )
+    return isinstance(error, exc.DisconnectionError | exc.TimeoutError)
+
+
+class DatabaseUnavailable(ServiceUnavailable):
+    code = "database_unavailable"
+
+    def __init__(self) -> None:
+        super().__init__(
+            "the database is unavailable right now; retry in a few seconds. A request cut off "
+            "by the outage may have been recorded: repeating it is safe (a recommendation by "
+            "its request_id, a policy change with expected_current)"
+        )
 
 
 _JSON = json.JSONEncoder(separators=(",", ":"), ensure_ascii=False, allow_nan=False)
@@ -68,8 +93,17 @@ def create_db_engine(settings: Settings) -> Engine:
         )
         _configure_sqlite(engine, settings)
         return engine
+    # pre-ping: a pooled connection that died (a server restart) is replaced at checkout.
+    # connect_timeout: an unreachable server fails a request in seconds, not minutes.
+    connect_args = {} if "connect_timeout" in make_url(url).query else {"connect_timeout": 5}
     return create_engine(
-        url, pool_size=10, max_overflow=20, pool_pre_ping=True, json_serializer=_json_serializer
+        url,
+        pool_size=10,
+        max_overflow=20,
+        pool_pre_ping=True,
+        pool_timeout=10,
+        connect_args=connect_args,
+        json_serializer=_json_serializer,
     )
 
 

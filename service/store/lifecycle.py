@@ -2,6 +2,21 @@
 
 These functions change the session and flush; they never commit (the caller — an HTTP request
 or a CLI command — commits once at its end, so a lifecycle step and its event are one write).
+
+Concurrency: every change first locks the policy (:func:`_lock_policy`) and then reads its
+state afresh, so two admins acting at once are served one after the other and the second
+sees what the first did (two approvals of one draft: one succeeds, the other is a 409).
+Switches of the active or shadow version also take the switch lock that orders them against
+scoring (``service.store.switch_lock``).
+
+Safe repeats: activate, rollback and shadow on/off take ``expected_current``, the version the
+caller believes is active (the shadow version, for shadow on/off; ``None`` for "none").
+When it is current, the change is made. When it is not, and the policy's last change of that
+kind is exactly this request's change made from that version (an activation from the
+expected version to the requested one, say), the request is a repeat: it is answered with
+the same result and changes nothing. Otherwise it is stale: 409 ``current_changed`` with the
+current state in the error's details. Without ``expected_current`` nothing is checked (a
+second rollback then rolls back again).
 """
 
 from __future__ import annotations
@@ -16,6 +31,7 @@ from sqlalchemy.orm import Session
 from service.errors import Conflict, Forbidden, NotFound, Unprocessable
 from service.policy.document import PolicyDocument, content_hash, document_json
 from service.store import policies as repo
+from service.store.expected import UNCHECKED, Expected, Unchecked
 from service.store.models import (
     LifecycleAction,
     PolicyEvent,
@@ -25,6 +41,7 @@ from service.store.models import (
     utcnow,
 )
 from service.store.policy_diff import Change, diff_documents
+from service.store.switch_lock import hold_for_switch
 
 
 def parse_document(data: Any) -> PolicyDocument:
@@ -84,14 +101,103 @@ def require_version(session: Session, name: str, version: int) -> PolicyVersion:
     return row
 
 
-def _lock_policy(session: Session, name: str) -> list[PolicyVersion]:
-    """Lock every version row of ``name`` (PostgreSQL) so lifecycle changes queue up."""
+def _lock_policy(
+    session: Session, name: str, *, switch: bool, must_exist: bool = True
+) -> dict[int, PolicyVersion]:
+    """Serialise lifecycle changes of ``name``; its versions by number, read afresh.
+
+    A switch of the active or shadow version first takes the switch lock exclusively (before
+    any row lock: the lock order of ``service.store.switch_lock``). Then every version row of
+    the policy is locked (PostgreSQL ``FOR NO KEY UPDATE``: changes of one policy queue up,
+    while scoring's foreign-key checks, which take key-share locks, are not held up; SQLite
+    holds its single write lock already) and read again, replacing whatever the session had
+    loaded before: every check after this sees the latest committed state.
+    """
+    if switch:
+        hold_for_switch(session)
     rows = session.scalars(
-        select(PolicyVersion).where(PolicyVersion.name == name).with_for_update()
+        select(PolicyVersion)
+        .where(PolicyVersion.name == name)
+        .order_by(PolicyVersion.version)
+        .with_for_update(key_share=True)
+        .execution_options(populate_existing=True)
     ).all()
-    if not rows:
+    if not rows and must_exist:
         raise NotFound(f"no policy named {name!r}", code="unknown_policy")
-    return list(rows)
+    return {row.version: row for row in rows}
+
+
+def _version_in(rows: dict[int, PolicyVersion], name: str, version: int) -> PolicyVersion:
+    row = rows.get(version)
+    if row is None:
+        raise NotFound(f"policy {name!r} has no version {version}", code="unknown_version")
+    return row
+
+
+def _active_in(rows: dict[int, PolicyVersion]) -> PolicyVersion | None:
+    return next((r for r in rows.values() if r.status == VersionStatus.ACTIVE.value), None)
+
+
+def _version_text(version: int | None, role: str) -> str:
+    return f"no version is {role}" if version is None else f"v{version} is {role}"
+
+
+def _current_changed(
+    session: Session, name: str, expected: int | None, what: str, current: int | None
+) -> Conflict:
+    """409 for a stale request: what the caller expected, what is current, and the state."""
+    rows = {r.version: r for r in repo.list_versions(session, name)}
+    active = _active_in(rows)
+    shadow = repo.get_shadow(session, name)
+    last = (
+        repo.last_switch(session, name)
+        if what == "active"
+        else repo.last_shadow_change(session, name)
+    )
+    since = ""
+    details: list[dict[str, Any]] = [
+        {
+            "code": "active_version",
+            "message": _version_text(None if active is None else active.version, "active"),
+            "field": "active_version",
+            "value": None if active is None else active.version,
+        },
+        {
+            "code": "shadow_version",
+            "message": _version_text(None if shadow is None else shadow.version, "the shadow"),
+            "field": "shadow_version",
+            "value": None if shadow is None else shadow.version,
+        },
+    ]
+    if last is not None:
+        move = " -> ".join(
+            "-" if v is None else f"v{v}" for v in (last.from_version, last.to_version)
+        )
+        change = f"{last.action} {move} by {last.actor} at {last.at.isoformat()}"
+        since = f" (last change: {change})"
+        details.append(
+            {
+                "code": "last_change",
+                "message": change,
+                "field": None,
+                "value": {
+                    "action": last.action,
+                    "actor": last.actor,
+                    "at": last.at.isoformat(),
+                    "from_version": last.from_version,
+                    "to_version": last.to_version,
+                },
+            }
+        )
+    expected_text = "none" if expected is None else f"v{expected}"
+    current_text = "none" if current is None else f"v{current}"
+    return Conflict(
+        f"{name}: the request expected {expected_text} as the {what} version but "
+        f"{current_text} is{since}; check the history and decide again",
+        code="current_changed",
+        field="expected_current",
+        details=details,
+    )
 
 
 def _flush(session: Session) -> None:
@@ -125,7 +231,10 @@ def check_auditable(document: PolicyDocument) -> None:
 
 
 def submit(session: Session, name: str, data: Any, author: str) -> PolicyVersion:
-    """Store a new draft version of policy ``name``; its number is returned on the row."""
+    """Store a new draft version of policy ``name``; its number is returned on the row.
+
+    Two first submissions of a new policy at once: one gets 409 ``concurrent_change``
+    (there are no rows to lock yet); later ones queue on the policy's rows."""
     document = parse_document(data)
     if document.name != name:
         raise Unprocessable(
@@ -134,7 +243,8 @@ def submit(session: Session, name: str, data: Any, author: str) -> PolicyVersion
             field="name",
         )
     check_auditable(document)
-    number = repo.latest_version_number(session, name) + 1
+    rows = _lock_policy(session, name, switch=False, must_exist=False)
+    number = max(rows, default=0) + 1
     row = PolicyVersion(
         name=name,
         version=number,
@@ -152,7 +262,7 @@ def submit(session: Session, name: str, data: Any, author: str) -> PolicyVersion
 
 
 def approve(session: Session, name: str, version: int, approver: str) -> PolicyVersion:
-    row = require_version(session, name, version)
+    row = _version_in(_lock_policy(session, name, switch=False), name, version)
     if row.status != VersionStatus.DRAFT.value:
         raise Conflict(
             f"{name} v{version} is {row.status}; only a draft can be approved",
@@ -175,14 +285,14 @@ def approve(session: Session, name: str, version: int, approver: str) -> PolicyV
 def _switch(
     session: Session,
     name: str,
+    current: PolicyVersion | None,
     target: PolicyVersion,
     actor: str,
     action: LifecycleAction,
     reason: str | None,
 ) -> PolicyVersion:
-    current = next(
-        (r for r in _lock_policy(session, name) if r.status == VersionStatus.ACTIVE.value), None
-    )
+    """Retire ``current`` (the active version read under the policy lock), activate
+    ``target`` and record it."""
     if current is not None:
         current.status = VersionStatus.RETIRED.value
         _flush(session)  # retire first: the one-active index would refuse two at once
@@ -206,11 +316,45 @@ def _switch(
     return target
 
 
+def _repeats_switch(
+    session: Session,
+    name: str,
+    action: LifecycleAction,
+    expected: int | None,
+    current: PolicyVersion | None,
+    to_version: int | None,
+) -> bool:
+    """The policy's last switch is this very request's: ``action`` from ``expected`` to the
+    version now active (which is ``to_version`` when one is named)."""
+    if current is None or to_version not in (None, current.version):
+        return False
+    last = repo.last_switch(session, name)
+    return (
+        last is not None
+        and last.action == action.value
+        and last.from_version == expected
+        and last.to_version == current.version
+    )
+
+
 def activate(
-    session: Session, name: str, version: int, actor: str, reason: str | None = None
+    session: Session,
+    name: str,
+    version: int,
+    actor: str,
+    reason: str | None = None,
+    expected_current: Expected = UNCHECKED,
 ) -> PolicyVersion:
     """Make an approved version the active one; the previously active version retires."""
-    target = require_version(session, name, version)
+    rows = _lock_policy(session, name, switch=True)
+    target = _version_in(rows, name, version)
+    current = _active_in(rows)
+    current_version = None if current is None else current.version
+    if not isinstance(expected_current, Unchecked) and expected_current != current_version:
+        action = LifecycleAction.ACTIVATE
+        if _repeats_switch(session, name, action, expected_current, current, version):
+            return target
+        raise _current_changed(session, name, expected_current, "active", current_version)
     if target.status != VersionStatus.APPROVED.value:
         hint = (
             " (use rollback to bring back a retired version)" if target.status == "retired" else ""
@@ -220,17 +364,29 @@ def activate(
             f"activated{hint}",
             code="invalid_transition",
         )
-    return _switch(session, name, target, actor, LifecycleAction.ACTIVATE, reason)
+    return _switch(session, name, current, target, actor, LifecycleAction.ACTIVATE, reason)
 
 
 def rollback(
-    session: Session, name: str, actor: str, reason: str, to_version: int | None = None
+    session: Session,
+    name: str,
+    actor: str,
+    reason: str,
+    to_version: int | None = None,
+    expected_current: Expected = UNCHECKED,
 ) -> PolicyVersion:
     """Re-activate the previously active version, or the named approved/retired one."""
     if not reason or not reason.strip():
         raise Unprocessable("a rollback needs a reason", code="reason_required", field="reason")
-    _lock_policy(session, name)
-    current = repo.active_version(session, name)
+    rows = _lock_policy(session, name, switch=True)
+    current = _active_in(rows)
+    current_version = None if current is None else current.version
+    if not isinstance(expected_current, Unchecked) and expected_current != current_version:
+        action = LifecycleAction.ROLLBACK
+        if _repeats_switch(session, name, action, expected_current, current, to_version):
+            assert current is not None  # a repeat leaves a version active
+            return current
+        raise _current_changed(session, name, expected_current, "active", current_version)
     if current is None:
         raise Conflict(
             f"policy {name!r} has no active version to roll back", code="no_active_version"
@@ -244,7 +400,7 @@ def rollback(
                 code="nothing_to_roll_back_to",
             )
         to_version = activation.from_version
-    target = require_version(session, name, to_version)
+    target = _version_in(rows, name, to_version)
     if target.version == current.version:
         raise Conflict(f"{name} v{to_version} is already active", code="invalid_transition")
     if target.status not in (VersionStatus.APPROVED.value, VersionStatus.RETIRED.value):
@@ -253,20 +409,43 @@ def rollback(
             "version",
             code="invalid_transition",
         )
-    return _switch(session, name, target, actor, LifecycleAction.ROLLBACK, reason.strip())
+    return _switch(session, name, current, target, actor, LifecycleAction.ROLLBACK, reason.strip())
 
 
-def set_shadow(session: Session, name: str, version: int, actor: str) -> PolicyShadow:
-    """Evaluate an approved version beside the active one on every recommendation."""
-    target = require_version(session, name, version)
+def set_shadow(
+    session: Session,
+    name: str,
+    version: int,
+    actor: str,
+    expected_current: Expected = UNCHECKED,
+) -> PolicyShadow:
+    """Evaluate an approved version beside the active one on every recommendation.
+
+    ``expected_current`` is the shadow version the caller expects (``None``: none)."""
+    rows = _lock_policy(session, name, switch=True)
+    target = _version_in(rows, name, version)
+    shadow = repo.get_shadow(session, name)
+    previous = None if shadow is None else shadow.version
+    if not isinstance(expected_current, Unchecked) and expected_current != previous:
+        last = repo.last_shadow_change(session, name)
+        if (
+            shadow is not None
+            and previous == version
+            and last is not None
+            and last.action == LifecycleAction.SHADOW.value
+            and last.from_version == expected_current
+            and last.to_version == version
+        ):
+            return shadow  # a repeat: designated by this very request
+        raise _current_changed(session, name, expected_current, "shadow", previous)
+    if previous == version:
+        raise Conflict(f"{name} v{version} is the shadow already", code="invalid_transition")
     if target.status != VersionStatus.APPROVED.value:
         raise Conflict(
             f"{name} v{version} is {target.status}; only an approved (not active) version can "
             "be the shadow",
             code="invalid_transition",
         )
-    shadow = repo.get_shadow(session, name)
-    previous = None if shadow is None else shadow.version
     if shadow is None:
         shadow = PolicyShadow(
             name=name, version=version, designated_by=actor, designated_at=utcnow()
@@ -281,8 +460,23 @@ def set_shadow(session: Session, name: str, version: int, actor: str) -> PolicyS
     return shadow
 
 
-def clear_shadow(session: Session, name: str, actor: str) -> None:
+def clear_shadow(
+    session: Session, name: str, actor: str, expected_current: Expected = UNCHECKED
+) -> None:
+    """Stop shadow evaluation. ``expected_current``: the shadow version the caller ends."""
+    _lock_policy(session, name, switch=True)
     shadow = repo.get_shadow(session, name)
+    previous = None if shadow is None else shadow.version
+    if not isinstance(expected_current, Unchecked) and expected_current != previous:
+        last = repo.last_shadow_change(session, name)
+        if (
+            shadow is None
+            and last is not None
+            and last.action == LifecycleAction.UNSHADOW.value
+            and last.from_version == expected_current
+        ):
+            return  # a repeat: that shadow has ended
+        raise _current_changed(session, name, expected_current, "shadow", previous)
     if shadow is None:
         raise NotFound(f"policy {name!r} has no shadow version", code="no_shadow")
     _record(session, name, LifecycleAction.UNSHADOW, actor, from_version=shadow.version)

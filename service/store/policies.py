@@ -55,7 +55,8 @@ def policy_exists(session: Session, name: str) -> bool:
 
 
 def get_shadow(session: Session, name: str) -> PolicyShadow | None:
-    return session.get(PolicyShadow, name)
+    # Always read from the database: lifecycle changes check it after taking their lock.
+    return session.get(PolicyShadow, name, populate_existing=True)
 
 
 def events(session: Session, name: str) -> Sequence[PolicyEvent]:
@@ -75,6 +76,29 @@ def last_activation_of(session: Session, name: str, version: int) -> PolicyEvent
                 [LifecycleAction.ACTIVATE.value, LifecycleAction.ROLLBACK.value]
             ),
         )
+        .order_by(PolicyEvent.id.desc())
+        .limit(1)
+    )
+
+
+_SWITCHES = [LifecycleAction.ACTIVATE.value, LifecycleAction.ROLLBACK.value]
+_SHADOW_CHANGES = [LifecycleAction.SHADOW.value, LifecycleAction.UNSHADOW.value]
+
+
+def last_switch(session: Session, name: str) -> PolicyEvent | None:
+    """The policy's most recent activation or rollback."""
+    return _last_event(session, name, _SWITCHES)
+
+
+def last_shadow_change(session: Session, name: str) -> PolicyEvent | None:
+    """The policy's most recent shadow designation or end of one."""
+    return _last_event(session, name, _SHADOW_CHANGES)
+
+
+def _last_event(session: Session, name: str, actions: list[str]) -> PolicyEvent | None:
+    return session.scalar(
+        select(PolicyEvent)
+        .where(PolicyEvent.name == name, PolicyEvent.action.in_(actions))
         .order_by(PolicyEvent.id.desc())
         .limit(1)
     )

@@ -11,7 +11,9 @@ snapshot to decide in, then a short write.
 The active version is looked up in the transaction that writes the records (once per policy
 and group of requests; one indexed query that also finds the shadow): correct across worker
 processes and rollbacks without any invalidation. Only the parsed documents are cached, by
-content hash, since a stored version never changes.
+content hash, since a stored version never changes. ``issued_at`` is stamped after the
+active versions are read, under the switch lock (``service.store.switch_lock``), so every
+record's version is the one the history shows active at its ``issued_at``.
 """
 
 from __future__ import annotations
@@ -25,7 +27,7 @@ from datetime import datetime
 from functools import lru_cache
 from typing import Any, Protocol
 
-from sqlalchemy import Connection, Engine, bindparam, select
+from sqlalchemy import Connection, Engine, bindparam, func, select
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import aliased
 
@@ -34,7 +36,15 @@ from service.policy.document import PolicyDocument, resolve_rule_key
 from service.policy.errors import PolicyError
 from service.policy.rules import check_score, evaluate, evaluate_batch, rule_for
 from service.store.db import READ_ONLY
-from service.store.models import PolicyShadow, PolicyVersion, Recommendation, VersionStatus, utcnow
+from service.store.models import (
+    LifecycleAction,
+    PolicyEvent,
+    PolicyShadow,
+    PolicyVersion,
+    Recommendation,
+    VersionStatus,
+    utcnow,
+)
 from service.store.recommendations import ATTRIBUTES_JSON, insert_new_record, insert_records
 from service.store.records import (
     RESPONSE_FIELDS,
@@ -44,6 +54,7 @@ from service.store.records import (
     leaf_hash,
     new_record_ids,
 )
+from service.store.switch_lock import SCORING_LOCK_SQL, hold_for_scoring
 
 AttributeValue = str | int | float | bool
 
@@ -144,19 +155,26 @@ _EXISTING_MANY = select(*_STORED).where(
 _STORED_IDS_SQL: dict[tuple[str, int], str] = {}
 
 
-def _stored_request_ids(conn: Connection, ids: list[str]) -> set[str]:
-    """Which of ``ids`` are stored: one plain statement on the driver (most groups find
-    none, so the full typed lookup runs only for the ones found)."""
+def _lock_and_find_stored(conn: Connection, ids: list[str]) -> set[str]:
+    """Take the switch lock for scoring and say which of ``ids`` are stored, in one plain
+    statement on the driver (most groups find none, so the full typed lookup runs only for
+    the ones found). On PostgreSQL the lock rides on this statement (one round trip for
+    both); the statements after it read with snapshots taken after the lock was granted."""
     dialect = conn.dialect
     key = (dialect.name, len(ids))
     sql = _STORED_IDS_SQL.get(key)
     if sql is None:
         mark = "?" if dialect.paramstyle == "qmark" else "%s"
-        sql = _STORED_IDS_SQL[key] = (
+        sql = (
             "SELECT request_id FROM recommendations WHERE request_id IN "
             f"({', '.join([mark] * len(ids))})"
         )
-    return {row[0] for row in conn.exec_driver_sql(sql, tuple(ids))}
+        if dialect.name == "postgresql":
+            sql += f" UNION ALL SELECT NULL FROM ({SCORING_LOCK_SQL}) AS switch_lock"
+        _STORED_IDS_SQL[key] = sql
+    found = {row[0] for row in conn.exec_driver_sql(sql, tuple(ids))}
+    found.discard(None)
+    return found
 
 
 def resolve_plan(conn: Connection, name: str, ctx: ScoringContext) -> Plan:
@@ -315,6 +333,7 @@ def recommend(conn: Connection, req: ScoreInput, ctx: ScoringContext) -> tuple[s
     gets its stored answer even after the policy moved on, a reuse with another body a 409.
     The single write is the last statement, so a failure leaves nothing to undo.
     """
+    hold_for_scoring(conn)
     try:
         plan = resolve_plan(conn, req.policy, ctx)
         d = evaluate(
@@ -353,6 +372,7 @@ def recommend_group(
     have one at a time. Nothing is written for a refused request. The insert is the last
     statement: if another process stored one of the request_ids meanwhile it raises
     ``IntegrityError``, and the caller rolls back and decides the requests one by one.
+    The switch lock is taken by the first statement (:func:`_lock_and_find_stored`).
     """
     results: list[GroupResult | None] = [None] * len(reqs)
     rounds: list[list[int]] = []
@@ -379,7 +399,7 @@ def _decide_round(
 ) -> None:
     fingerprints = {i: fingerprint(reqs[i]) for i in members}
     by_id = {reqs[i].request_id: i for i in members}
-    found = _stored_request_ids(conn, list(by_id))
+    found = _lock_and_find_stored(conn, list(by_id))
     stored_rows = conn.execute(_EXISTING_MANY, {"ids": list(found)}) if found else ()
     for stored in stored_rows:
         i = by_id[stored.request_id]
@@ -387,6 +407,14 @@ def _decide_round(
             results[i] = (_replay(stored, reqs[i], fingerprints[i]), False)
         except Conflict as exc:
             results[i] = exc
+    for i in members:
+        name = reqs[i].policy
+        if results[i] is None and name not in plans:
+            try:
+                plans[name] = resolve_plan(conn, name, ctx)
+            except ServiceError as exc:
+                plans[name] = exc
+    # Stamped after the active versions were read (see the module's docstring).
     issued_at = _now()
     record_ids = iter(new_record_ids(len(members)))
     rows: list[dict[str, Any]] = []
@@ -394,13 +422,7 @@ def _decide_round(
         if results[i] is not None:
             continue
         req = reqs[i]
-        plan = plans.get(req.policy)
-        if plan is None:
-            try:
-                plan = resolve_plan(conn, req.policy, ctx)
-            except ServiceError as exc:
-                plan = exc
-            plans[req.policy] = plan
+        plan = plans[req.policy]
         if isinstance(plan, ServiceError):
             results[i] = plan
             continue
@@ -441,6 +463,7 @@ class PreparedBatch:
     responses: list[str]  # JSON of each item, in input order
     rows: list[dict[str, Any]]  # the new records
     versions: dict[str, tuple[int, int | None]]  # policy -> (version, shadow) decided with
+    switches: dict[str, int | None]  # policy -> id of its last switch event, read before it
 
 
 def recommend_batch(
@@ -451,16 +474,19 @@ def recommend_batch(
     All or nothing: any bad item -> 422 and nothing written. The batch is decided in a
     read-only transaction (on SQLite a WAL snapshot: no write lock while thousands of
     decisions are computed, so single requests are not held up), then written in a short
-    write transaction that first checks the active (and shadow) versions are still those it
-    was decided with; the unique index on request_id refuses one stored meanwhile. If
-    either moved, the batch is decided again inside the write transaction, so every record
-    names the version active when it was written and no request_id is stored twice.
+    write transaction that first checks, under the switch lock, that no switch of the
+    active or shadow version happened since it was decided (the policy's last switch event
+    is the one read before deciding); the unique index on request_id refuses one stored
+    meanwhile. If either moved, the batch is decided again inside the write transaction, so
+    every record names the version the history shows active at its ``issued_at`` and no
+    request_id is stored twice.
     """
     with engine.connect().execution_options(**{READ_ONLY: True}) as conn, conn.begin():
         prepared = prepare_batch(conn, items, ctx)
     with engine.connect() as conn:
         try:
             with conn.begin():
+                hold_for_scoring(conn)
                 if not _same_versions(conn, prepared, ctx):
                     prepared = prepare_batch(conn, items, ctx)
                 insert_records(conn, prepared.rows)
@@ -468,13 +494,38 @@ def recommend_batch(
             # One of the request_ids was stored meanwhile (the unique index says so): decide
             # again inside the write transaction, which sees it as stored.
             with conn.begin():
+                hold_for_scoring(conn)
                 prepared = prepare_batch(conn, items, ctx)
                 insert_records(conn, prepared.rows)
     return prepared.responses, len(prepared.rows)
 
 
+_SWITCH_ACTIONS = [
+    a.value
+    for a in (
+        LifecycleAction.ACTIVATE,
+        LifecycleAction.ROLLBACK,
+        LifecycleAction.SHADOW,
+        LifecycleAction.UNSHADOW,
+    )
+]
+_LAST_SWITCH = select(func.max(PolicyEvent.id)).where(
+    PolicyEvent.name == bindparam("name"), PolicyEvent.action.in_(_SWITCH_ACTIONS)
+)
+
+
+def _last_switch(conn: Connection, name: str) -> int | None:
+    """The id of the policy's last event that changed its active or shadow version."""
+    value = conn.scalar(_LAST_SWITCH, {"name": name})
+    return None if value is None else int(value)
+
+
 def _same_versions(conn: Connection, prepared: PreparedBatch, ctx: ScoringContext) -> bool:
+    """No switch since the batch was decided: the same versions, and the same last switch
+    (a switch away and back again leaves the versions equal but moves the history on)."""
     for name, versions in prepared.versions.items():
+        if _last_switch(conn, name) != prepared.switches[name]:
+            return False
         try:
             plan = resolve_plan(conn, name, ctx)
         except ServiceError:
@@ -521,9 +572,12 @@ def prepare_batch(
             new_by_policy.setdefault(req.policy, []).append(i)
 
     plans: dict[str, Plan] = {}
+    switches: dict[str, int | None] = {}
     groups: dict[int, str] = {}
     for name, members in new_by_policy.items():
         try:
+            # The last switch before the plan: a switch in between shows as a change.
+            switches[name] = _last_switch(conn, name)
             plans[name] = plan = resolve_plan(conn, name, ctx)
         except ServiceError as exc:
             errors.extend(_item_error(i, exc) for i in members)
@@ -562,7 +616,7 @@ def prepare_batch(
         for i, out in zip(idx, outs, strict=True):
             responses[i] = out
     versions = {name: (plan.version, plan.shadow_version) for name, plan in plans.items()}
-    return PreparedBatch([r for r in responses if r is not None], rows_out, versions)
+    return PreparedBatch([r for r in responses if r is not None], rows_out, versions, switches)
 
 
 def _item_index(field: str | None) -> int:
