@@ -10,10 +10,15 @@ import pytest
 from service.log.merkle import (
     EMPTY_ROOT,
     TreeBuilder,
+    aligned_blocks,
+    consistency_path,
+    inclusion_path,
     inclusion_proof,
     leaf_hash,
     root_from_leaf_hashes,
     root_from_leaves,
+    roots_of,
+    verify_consistency,
     verify_inclusion,
 )
 
@@ -150,3 +155,95 @@ def test_inclusion_proof_rejects_index_outside_tree() -> None:
     with pytest.raises(ValueError, match="outside"):
         inclusion_proof([leaf_hash(b"x")], 1)
     assert not verify_inclusion(leaf_hash(b"x"), 1, 1, [], leaf_hash(b"x"))
+
+
+# --- proofs and ranges, against RFC 9162's definitions written out literally -------------
+
+
+def _ref_path(m: int, leaves: list[bytes]) -> list[bytes]:
+    """RFC 9162 section 2.1.3.1, PATH(m, D[n]), on leaf hashes."""
+    n = len(leaves)
+    if n == 1:
+        return []
+    k = 1
+    while k * 2 < n:
+        k *= 2
+    if m < k:
+        return [*_ref_path(m, leaves[:k]), root_from_leaf_hashes(leaves[k:])]
+    return [*_ref_path(m - k, leaves[k:]), root_from_leaf_hashes(leaves[:k])]
+
+
+def _ref_subproof(m: int, leaves: list[bytes], b: bool) -> list[bytes]:
+    """RFC 9162 section 2.1.4.1, SUBPROOF(m, D[n], b), on leaf hashes."""
+    n = len(leaves)
+    if m == n:
+        return [] if b else [root_from_leaf_hashes(leaves)]
+    k = 1
+    while k * 2 < n:
+        k *= 2
+    if m <= k:
+        return [*_ref_subproof(m, leaves[:k], b), root_from_leaf_hashes(leaves[k:])]
+    return [*_ref_subproof(m - k, leaves[k:], False), root_from_leaf_hashes(leaves[:k])]
+
+
+def _leaves(n: int) -> list[bytes]:
+    return [leaf_hash(f"record {i}".encode()) for i in range(n)]
+
+
+@pytest.mark.parametrize("n", [1, 2, 3, 4, 5, 7, 8, 9, 16, 17, 33])
+def test_inclusion_paths_follow_the_rfc_and_verify(n: int) -> None:
+    leaves = _leaves(n)
+    root = root_from_leaf_hashes(leaves)
+    for m in range(n):
+        path = inclusion_path(n, m, roots_of(leaves))
+        assert path == _ref_path(m, leaves)
+        assert verify_inclusion(leaves[m], m, n, path, root)
+        assert not verify_inclusion(leaves[(m + 1) % n], m, n, path, root) or n == 1
+        if path:
+            bad = [path[0][:-1] + bytes([path[0][-1] ^ 1]), *path[1:]]
+            assert not verify_inclusion(leaves[m], m, n, bad, root)
+
+
+@pytest.mark.parametrize("n", [1, 2, 3, 5, 8, 9, 12, 16, 21, 32, 33])
+def test_consistency_proofs_follow_the_rfc_and_verify(n: int) -> None:
+    leaves = _leaves(n)
+    second = root_from_leaf_hashes(leaves)
+    for m in range(1, n + 1):
+        first = root_from_leaf_hashes(leaves[:m])
+        proof = consistency_path(m, n, roots_of(leaves))
+        assert proof == _ref_subproof(m, leaves, True)
+        assert verify_consistency(m, n, proof, first, second)
+        # A tree that is not a prefix of the second cannot be proven consistent with it.
+        other = root_from_leaf_hashes([leaf_hash(b"forged"), *leaves[1:m]])
+        assert not verify_consistency(m, n, proof, other, second)
+        if proof:
+            assert not verify_consistency(m, n, proof[:-1], first, second)
+
+
+def test_a_resumed_builder_with_aligned_blocks_gives_the_whole_tree() -> None:
+    rng = random.Random(7)
+    for _ in range(200):
+        n = rng.randint(1, 300)
+        a = rng.randint(0, n)
+        b = rng.randint(a, n)
+        leaves = _leaves(n)
+        head = TreeBuilder()
+        head.add_leaf_hashes(leaves[:a])
+        resumed = TreeBuilder.resume(head.frontier())
+        resumed.add_leaf_hashes(leaves[a:b])
+        for start, size in aligned_blocks(b, n):
+            assert start % size == 0 and size & (size - 1) == 0
+            resumed.add_subtree(size, root_from_leaf_hashes(leaves[start : start + size]))
+        assert resumed.count == n
+        assert resumed.root() == root_from_leaf_hashes(leaves)
+
+
+def test_misplaced_subtrees_and_bad_frontiers_are_refused() -> None:
+    builder = TreeBuilder()
+    builder.add_leaf_hash(leaf_hash(b"x"))
+    with pytest.raises(ValueError):
+        builder.add_subtree(2, leaf_hash(b"y"))  # a 2-leaf subtree cannot start at leaf 1
+    with pytest.raises(ValueError):
+        TreeBuilder.resume([(1, leaf_hash(b"a")), (2, leaf_hash(b"b"))])  # increasing sizes
+    with pytest.raises(ValueError):
+        TreeBuilder.resume([(3, leaf_hash(b"a"))])  # not a power of two

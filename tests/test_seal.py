@@ -9,8 +9,8 @@ import pytest
 from sqlalchemy import Engine, select
 
 from service.audit import seal as seal_module
-from service.log.merkle import root_from_leaves
 from service.audit.seal import seal_all_pending, seal_pending, verify_log
+from service.log.merkle import root_from_leaves
 from service.store.models import Recommendation, Seal
 from service.store.records import record_bytes, record_leaf_hash
 from tests.log_helpers import LogDb
