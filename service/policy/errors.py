@@ -26,3 +26,9 @@ class UnknownGroup(PolicyError):
 
 class ScoreOutOfRange(PolicyError):
     code = "score_out_of_range"
+
+
+class InvalidAttribute(PolicyError):
+    """An attribute value that is not text by the one reading (``service.policy.attributes``)."""
+
+    code = "invalid_attribute"

@@ -533,7 +533,7 @@ def prepare_batch(
             req = items[i]
             try:
                 check_score(plan.document, req.score)
-                g = plan.document.group_key(req.attributes)  # type: ignore[arg-type]
+                g = plan.document.group_key(req.attributes)
                 if g not in rule_ok:
                     rule_ok[g] = resolve_rule_key(plan.document, g) is not None
                 if not rule_ok[g]:
@@ -594,7 +594,7 @@ def _evaluate_policy_rows(
         sgroups: list[str] = []
         for j, r in enumerate(reqs):
             try:
-                g = plan.shadow.group_key(r.attributes)  # type: ignore[arg-type]
+                g = plan.shadow.group_key(r.attributes)
             except PolicyError:
                 continue
             if (
