@@ -7,6 +7,7 @@ from typing import Any
 
 from pydantic import BaseModel, ConfigDict, Field
 
+from service.api.fields import OptionalReason, Reason, VersionNumber
 from service.store.models import PolicyEvent, PolicyShadow, PolicyVersion
 
 
@@ -15,17 +16,17 @@ class _In(BaseModel):
 
 
 class ActivateBody(_In):
-    version: int = Field(ge=1)
-    reason: str | None = Field(default=None, max_length=2000)
+    version: VersionNumber
+    reason: OptionalReason | None = None
 
 
 class RollbackBody(_In):
-    to_version: int | None = Field(default=None, ge=1)
-    reason: str = Field(min_length=1, max_length=2000, description="why; kept in the history")
+    to_version: VersionNumber | None = None
+    reason: Reason = Field(description="why; kept in the history")
 
 
 class ShadowBody(_In):
-    version: int = Field(ge=1)
+    version: VersionNumber
 
 
 class VersionSummary(BaseModel):

@@ -29,7 +29,14 @@ from sqlalchemy import Connection, Engine, bindparam, select
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import aliased
 
-from service.errors import Conflict, ServiceError, Unprocessable, check_batch_size
+from service.errors import (
+    BatchRefused,
+    Conflict,
+    ServiceError,
+    Unprocessable,
+    check_batch_size,
+    item_problem,
+)
 from service.policy.document import PolicyDocument, resolve_rule_key
 from service.policy.errors import PolicyError
 from service.policy.rules import check_score, evaluate, evaluate_batch, rule_for
@@ -429,11 +436,6 @@ def _decide_round(
 # -- batches ------------------------------------------------------------------------------
 
 
-def _item_error(i: int, exc: ServiceError | PolicyError) -> dict[str, Any]:
-    field = f"items.{i}" + (f".{exc.field}" if exc.field else "")
-    return {"code": exc.code, "message": exc.message, "field": field}
-
-
 @dataclass(frozen=True, slots=True)
 class PreparedBatch:
     """A batch decided against one snapshot of the store, ready to be written."""
@@ -473,6 +475,21 @@ def recommend_batch(
     return prepared.responses, len(prepared.rows)
 
 
+def batch_problems(
+    engine: Engine, items: Sequence[ScoreInput], ctx: ScoringContext, positions: Sequence[int]
+) -> list[dict[str, Any]]:
+    """What :func:`prepare_batch` refuses among ``items`` (the valid part of a batch whose other
+    items were refused already), decided on a read snapshot; writes nothing."""
+    if not items:
+        return []
+    with engine.connect().execution_options(**{READ_ONLY: True}) as conn, conn.begin():
+        try:
+            prepare_batch(conn, items, ctx, positions)
+        except BatchRefused as exc:
+            return exc.details
+    return []
+
+
 def _same_versions(conn: Connection, prepared: PreparedBatch, ctx: ScoringContext) -> bool:
     for name, versions in prepared.versions.items():
         try:
@@ -485,21 +502,34 @@ def _same_versions(conn: Connection, prepared: PreparedBatch, ctx: ScoringContex
 
 
 def prepare_batch(
-    conn: Connection, items: Sequence[ScoreInput], ctx: ScoringContext
+    conn: Connection,
+    items: Sequence[ScoreInput],
+    ctx: ScoringContext,
+    positions: Sequence[int] | None = None,
 ) -> PreparedBatch:
-    """Decide a batch against what ``conn`` sees, writing nothing; 422 if any item is bad."""
+    """Decide a batch against what ``conn`` sees, writing nothing; 422 if any item is bad.
+
+    ``positions``: each item's index in the request, when ``items`` are the valid part of a
+    larger batch (errors name the request's indices).
+    """
     check_batch_size(len(items), ctx.max_batch_items)
+    at = positions if positions is not None else range(len(items))
     errors: list[dict[str, Any]] = []
+
+    def refuse(i: int, exc: ServiceError | PolicyError) -> None:
+        errors.append(item_problem(at[i], exc))
+
     seen: dict[str, int] = {}
     for i, req in enumerate(items):
         if req.request_id in seen:
-            errors.append(
-                {
-                    "code": "duplicate_request_id",
-                    "message": f"request_id {req.request_id!r} is also used by "
-                    f"items.{seen[req.request_id]}",
-                    "field": f"items.{i}.request_id",
-                }
+            first = at[seen[req.request_id]]
+            refuse(
+                i,
+                Conflict(
+                    f"request_id {req.request_id!r} is also used by items.{first}",
+                    code="duplicate_request_id",
+                    field="request_id",
+                ),
             )
         else:
             seen[req.request_id] = i
@@ -513,7 +543,7 @@ def prepare_batch(
             try:
                 responses[i] = _replay(row, items[i], fingerprints[i])
             except Conflict as exc:
-                errors.append(_item_error(i, exc))
+                refuse(i, exc)
 
     new_by_policy: dict[str, list[int]] = {}
     for i, req in enumerate(items):
@@ -526,7 +556,8 @@ def prepare_batch(
         try:
             plans[name] = plan = resolve_plan(conn, name, ctx)
         except ServiceError as exc:
-            errors.extend(_item_error(i, exc) for i in members)
+            for i in members:
+                refuse(i, exc)
             continue
         rule_ok: dict[str, bool] = {}
         for i in members:
@@ -540,17 +571,9 @@ def prepare_batch(
                     rule_for(plan.document, g)  # raises the engine's UnknownGroup
                 groups[i] = g
             except PolicyError as exc:
-                errors.append(_item_error(i, exc))
+                refuse(i, exc)
     if errors:
-        errors.sort(key=lambda e: _item_index(e["field"]))
-        first = errors[0]
-        raise Unprocessable(
-            f"{len(errors)} item(s) refused, nothing was written; first: {first['field']}: "
-            f"{first['message']}",
-            code="invalid_batch",
-            field=first["field"],
-            details=errors,
-        )
+        raise BatchRefused(errors, len(items))
 
     issued_at = _now()
     rows_out: list[dict[str, Any]] = []
@@ -563,13 +586,6 @@ def prepare_batch(
             responses[i] = out
     versions = {name: (plan.version, plan.shadow_version) for name, plan in plans.items()}
     return PreparedBatch([r for r in responses if r is not None], rows_out, versions)
-
-
-def _item_index(field: str | None) -> int:
-    try:
-        return int((field or "").split(".")[1])
-    except (IndexError, ValueError):
-        return 0
 
 
 def _evaluate_policy_rows(
