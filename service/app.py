@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import gc
+import logging
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 
@@ -20,11 +21,15 @@ from service.store.db import create_db_engine, create_session_factory
 from service.store.scoring import DocumentCache, ScoringContext
 
 WORKER_THREADS = 8
+logger = logging.getLogger("evenhand.app")
 
 
 def create_app(settings: Settings | None = None) -> FastAPI:
     settings = settings or Settings()
-    # Refuse to start without the draw secret: every recommendation needs it.
+    warning = settings.demo_warning()
+    if warning is not None:
+        logger.warning(warning)
+    # Refuse to start without a usable draw secret: every recommendation needs it.
     secret = settings.draw_key()
 
     @asynccontextmanager
