@@ -141,6 +141,11 @@ def install_error_handlers(app: FastAPI) -> None:
 
     @app.exception_handler(StarletteHTTPException)
     async def _http_error(_request: Request, exc: StarletteHTTPException) -> JSONResponse:
+        if exc.status_code == 400:
+            # FastAPI's one 400: a body it could not decode (e.g. bytes that are not UTF-8).
+            return error_json(
+                400, "malformed_json", "the request body is not valid JSON (nor UTF-8 text)"
+            )
         codes = {404: "not_found", 405: "method_not_allowed"}
         return error_json(
             exc.status_code, codes.get(exc.status_code, "http_error"), str(exc.detail)

@@ -30,7 +30,7 @@ from service.store import feedback
 from service.store.feedback import FinalReport, ItemsRefused, OutcomeReport, OutcomeResult
 from service.store.records import format_timestamp
 
-router = APIRouter(tags=["feedback"], responses=error_responses(400, 401, 403, 404, 409, 422))
+router = APIRouter(tags=["feedback"], responses=error_responses(400, 401, 403, 404, 409, 413, 422))
 
 
 def _report(body: OutcomeRequest) -> OutcomeReport:

@@ -75,6 +75,7 @@ class AuditResponse(BaseModel):
     status_code=201,
     response_model=AuditResponse,
     summary="Audit one policy for one calendar month and store a new snapshot",
+    responses=error_responses(400, 413),
 )
 def post_audit(
     body: AuditRequest, session: DbSession, key: AuditKey, settings: AppSettings
