@@ -66,7 +66,12 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         version="0.1.0",
         description=(
             "Governed decision policies, a keyed scoring API and a tamper-evident decision "
-            "log. Recommendations are advisory: a person decides and can override."
+            "log. Recommendations are advisory: a person decides and can override.\n\n"
+            f"Limits: request bodies up to {settings.max_body_bytes} bytes "
+            f"(EVENHAND_MAX_BODY_BYTES; 413 body_too_large), batches up to "
+            f"{settings.max_batch_items} items (EVENHAND_MAX_BATCH_ITEMS; 413 "
+            "batch_too_large); every other bound is in the schemas below. Every refusal is "
+            "an ErrorResponse."
         ),
         lifespan=lifespan,
     )
