@@ -34,8 +34,6 @@ MAX_REASON_CHARS = 2000
 """Longest reason (lifecycle steps, outcome corrections)."""
 SLUG_PATTERN = r"^[a-z0-9][a-z0-9._-]{0,63}$"
 
-NO_CONTROL = "no control characters (U+0000 to U+001F)"
-
 Text = Annotated[
     str,
     StringConstraints(min_length=1, max_length=MAX_TEXT_CHARS, pattern=TEXT_PATTERN),
