@@ -41,8 +41,18 @@ POLICY = "fernhollow-bench"
 MONTH = "2026-10"
 COMMUNITIES = ("quarry-hill", "millbrook", "saltmarsh")
 LANGUAGES = ("en", "es", "other")
-COPIED = (
-    'policy, version, "group", shadow_version, issued_at, action, probability, shadow_action, score'
+COPIED = ", ".join(
+    (
+        "policy",
+        "version",
+        '"group"',
+        "shadow_version",
+        "issued_at",
+        "action",
+        "probability",
+        "shadow_action",
+        "score",
+    )
 )
 PG_SERVER = os.environ.get(
     "EVENHAND_TEST_POSTGRES_URL", "postgresql+psycopg://postgres@127.0.0.1:5432/test"

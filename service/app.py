@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import gc
+import logging
 from collections.abc import AsyncIterator
 from contextlib import asynccontextmanager
 
@@ -20,11 +21,15 @@ from service.store.db import create_db_engine, create_session_factory
 from service.store.scoring import DocumentCache, ScoringContext
 
 WORKER_THREADS = 8
+logger = logging.getLogger("evenhand.app")
 
 
 def create_app(settings: Settings | None = None) -> FastAPI:
     settings = settings or Settings()
-    # Refuse to start without the draw secret: every recommendation needs it.
+    warning = settings.demo_warning()
+    if warning is not None:
+        logger.warning(warning)
+    # Refuse to start without a usable draw secret: every recommendation needs it.
     secret = settings.draw_key()
 
     @asynccontextmanager
@@ -61,7 +66,12 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         version="0.1.0",
         description=(
             "Governed decision policies, a keyed scoring API and a tamper-evident decision "
-            "log. Recommendations are advisory: a person decides and can override."
+            "log. Recommendations are advisory: a person decides and can override.\n\n"
+            f"Limits: request bodies up to {settings.max_body_bytes} bytes "
+            f"(EVENHAND_MAX_BODY_BYTES; 413 body_too_large), batches up to "
+            f"{settings.max_batch_items} items (EVENHAND_MAX_BATCH_ITEMS; 413 "
+            "batch_too_large); every other bound is in the schemas below. Every refusal is "
+            "an ErrorResponse."
         ),
         lifespan=lifespan,
     )

@@ -6,7 +6,7 @@ code of its class (see ``service.api.errors``). Codes are stable; messages say w
 
 from __future__ import annotations
 
-from typing import Any
+from typing import Any, Protocol
 
 
 class ServiceError(Exception):
@@ -74,4 +74,47 @@ def check_batch_size(count: int, limit: int) -> None:
             f"a batch holds at most {limit} items (got {count}); split it",
             code="batch_too_large",
             field="items",
+        )
+
+
+class Refusal(Protocol):
+    """What every refusal carries: a service error or a policy engine error."""
+
+    code: str
+    message: str
+    field: str | None
+
+
+def item_problem(index: int, error: Refusal) -> dict[str, Any]:
+    """One refused item of a batch as an error detail: its own code and message, the field
+    prefixed with ``items.<index>`` (``items.3.score``)."""
+    field = error.field
+    return {
+        "code": error.code,
+        "message": error.message,
+        "field": f"items.{index}" + (f".{field}" if field else ""),
+    }
+
+
+def item_index(field: str | None) -> int:
+    """The item index of a detail's field (``items.3.score`` -> 3); 0 when there is none."""
+    parts = (field or "").split(".")
+    return int(parts[1]) if len(parts) > 1 and parts[1].isdigit() else 0
+
+
+class BatchRefused(Unprocessable):
+    """A batch with refused items: none of it is written, and every problem is listed (sorted by
+    item; an item may have several) in ``details``. One rule for every batch endpoint."""
+
+    code = "invalid_batch"
+
+    def __init__(self, problems: list[dict[str, Any]], total: int) -> None:
+        ordered = sorted(problems, key=lambda p: item_index(p["field"]))
+        refused = len({item_index(p["field"]) for p in ordered})
+        first = ordered[0]
+        super().__init__(
+            f"{refused} of {total} item(s) refused, nothing was written; first: "
+            f"{first['field']}: {first['message']} (every problem is listed in details)",
+            field=first["field"],
+            details=ordered,
         )

@@ -2,15 +2,31 @@
 
 from __future__ import annotations
 
+import logging
+from datetime import timedelta
 from typing import Literal
 from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 from pydantic import Field, SecretStr, field_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
+MIN_DRAW_SECRET_BYTES = 32
+"""Shortest draw secret, in bytes of its UTF-8 encoding: 256 bits, HMAC-SHA256's output size
+(RFC 2104, section 3, strongly discourages HMAC keys shorter than the hash output)."""
 
-class MissingDrawSecret(RuntimeError):
+log = logging.getLogger("evenhand.settings")
+
+
+class DrawSecretError(RuntimeError):
+    """The draw secret cannot be used: scoring and ``serve`` refuse to start."""
+
+
+class MissingDrawSecret(DrawSecretError):
     """Raised when scoring is attempted without ``EVENHAND_DRAW_SECRET``."""
+
+
+class ShortDrawSecret(DrawSecretError):
+    """Raised when ``EVENHAND_DRAW_SECRET`` is shorter than ``MIN_DRAW_SECRET_BYTES``."""
 
 
 class Settings(BaseSettings):
@@ -21,19 +37,34 @@ class Settings(BaseSettings):
         description="SQLAlchemy URL: a SQLite file (WAL mode) or postgresql+psycopg://...",
     )
     draw_secret: SecretStr | None = Field(
-        default=None, description="HMAC key of the keyed draw; required to serve or score"
+        default=None,
+        description=f"HMAC key of the keyed draw; required to serve or score, at least "
+        f"{MIN_DRAW_SECRET_BYTES} bytes (UTF-8), e.g. the 64 hex characters of "
+        "`openssl rand -hex 32`",
+    )
+    demo_mode: bool = Field(
+        default=False,
+        description="set by `evenhand demo` for its own server: accepts a short draw secret "
+        "(with a warning). Never for real decisions.",
     )
     host: str = "127.0.0.1"
     port: int = Field(default=8000, ge=1, le=65535)
     workers: int = Field(default=1, ge=1)
     seal_interval_seconds: float = Field(default=5.0, gt=0)
     timezone: str = Field(default="UTC", description="IANA zone that audit months are cut in")
-    max_batch_items: int = Field(default=10_000, ge=1)
+    max_batch_items: int = Field(default=10_000, ge=1, le=100_000)
     max_body_bytes: int = Field(default=8 * 1024 * 1024, ge=1024)
     sqlite_synchronous: Literal["OFF", "NORMAL", "FULL", "EXTRA"] = Field(
         default="FULL", description="SQLite PRAGMA synchronous; FULL makes every commit durable"
     )
     sqlite_busy_timeout_ms: int = Field(default=30_000, ge=0)
+    clock_skew_seconds: float = Field(
+        default=300.0,
+        ge=0,
+        le=86_400,
+        description="how far a sender's clock may differ from the server's: an outcome or "
+        "final decision may be dated this much before its recommendation's issue or after now",
+    )
     auth_cache_seconds: float = Field(
         default=1.0,
         ge=0,
@@ -50,15 +81,39 @@ class Settings(BaseSettings):
             raise ValueError(f"unknown time zone {value!r} (use an IANA name, e.g. UTC)") from None
         return value
 
+    @property
+    def clock_skew(self) -> timedelta:
+        return timedelta(seconds=self.clock_skew_seconds)
+
     def draw_key(self) -> bytes:
-        """The draw secret as bytes; refuses clearly when it is not set."""
+        """The draw secret as bytes (UTF-8); refuses clearly when it is not set or shorter
+        than ``MIN_DRAW_SECRET_BYTES`` (allowed, with a warning, in demo mode only)."""
         if self.draw_secret is None or not self.draw_secret.get_secret_value():
             raise MissingDrawSecret(
                 "EVENHAND_DRAW_SECRET is not set: the keyed draw needs a secret. Set it to a "
                 "long random value (e.g. `openssl rand -hex 32`) and keep it: changing it "
                 "changes every future draw."
             )
-        return self.draw_secret.get_secret_value().encode("utf-8")
+        key = self.draw_secret.get_secret_value().encode("utf-8")
+        if len(key) < MIN_DRAW_SECRET_BYTES:
+            message = (
+                f"EVENHAND_DRAW_SECRET is {len(key)} bytes long (UTF-8); it must be at least "
+                f"{MIN_DRAW_SECRET_BYTES}: a short key makes every draw guessable. Use e.g. the "
+                "64 hex characters of `openssl rand -hex 32`."
+            )
+            if not self.demo_mode:
+                raise ShortDrawSecret(message)
+            log.warning("%s Accepted only because EVENHAND_DEMO_MODE is set.", message)
+        return key
+
+    def demo_warning(self) -> str | None:
+        """The line to print at start-up when demo mode is on (None otherwise)."""
+        if not self.demo_mode:
+            return None
+        return (
+            "EVENHAND_DEMO_MODE is on: settings meant for the invented demo are accepted "
+            "(e.g. a short draw secret). Never use demo mode for decisions about real people."
+        )
 
 
 def get_settings() -> Settings:

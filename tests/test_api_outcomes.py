@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from collections.abc import Callable
+from datetime import UTC, datetime
 from typing import Any
 
 from fastapi.testclient import TestClient
@@ -12,7 +13,10 @@ from service.store.audit_models import FinalDecision, Outcome, OutcomeCorrection
 from tests.audit_helpers import POLICY, put_live
 from tests.helpers import bearer, make_request
 
-WHEN = "2026-12-20T10:00:00+00:00"
+
+def _now() -> str:
+    """An observation or decision made now: after its recommendation, not in the future."""
+    return datetime.now(UTC).isoformat()
 
 
 def _score(client: TestClient, headers: dict[str, str], n: int = 3) -> list[dict[str, Any]]:
@@ -40,7 +44,7 @@ def test_outcome_recorded_repeated_conflict_and_correction(
     body = {
         "recommendation_id": rec["recommendation_id"],
         "outcome": 1,
-        "observed_at": WHEN,
+        "observed_at": _now(),
         "source": "records",
     }
     r = client.post("/v1/outcomes", json=body, headers=h)
@@ -71,7 +75,7 @@ def test_outcome_by_policy_and_case_and_unknown(
     put_live(client, make_key)
     h = bearer(make_key("scoring"))
     recs = _score(client, h)
-    body = {"policy": POLICY, "case_id": "c-1", "outcome": 0, "observed_at": WHEN, "source": "x"}
+    body = {"policy": POLICY, "case_id": "c-1", "outcome": 0, "observed_at": _now(), "source": "x"}
     r = client.post("/v1/outcomes", json=body, headers=h)
     assert r.status_code == 201 and r.json()["recommendation_id"] == recs[1]["recommendation_id"]
     r = client.post("/v1/outcomes", json={**body, "case_id": "nope"}, headers=h)
@@ -97,13 +101,16 @@ def test_batch_is_all_or_nothing(
 
     def item(i: int, y: int) -> dict[str, Any]:
         rid = recs[i]["recommendation_id"]
-        return {"recommendation_id": rid, "outcome": y, "observed_at": WHEN, "source": "s"}
+        return {"recommendation_id": rid, "outcome": y, "observed_at": _now(), "source": "s"}
 
     bad = [item(0, 1), {**item(1, 0), "recommendation_id": "missing"}, item(2, 1)]
     r = client.post("/v1/outcomes/batch", json={"items": bad}, headers=h)
-    assert r.status_code == 404
+    assert r.status_code == 422
     err = r.json()["error"]
-    assert err["code"] == "batch_refused" and [d["field"] for d in err["details"]] == ["items[1]"]
+    assert err["code"] == "invalid_batch"
+    assert [(d["code"], d["field"]) for d in err["details"]] == [
+        ("unknown_recommendation", "items.1.recommendation_id")
+    ]
     assert _count(session_factory, Outcome) == 0  # nothing half-written
 
     good = [item(0, 1), item(1, 0), item(2, 1)]
@@ -116,8 +123,11 @@ def test_batch_is_all_or_nothing(
 
     mixed = [item(0, 1), item(1, 1), item(2, 0)]
     r = client.post("/v1/outcomes/batch", json={"items": mixed}, headers=h)
-    assert r.status_code == 409
-    assert [d["field"] for d in r.json()["error"]["details"]] == ["items[1]", "items[2]"]
+    assert r.status_code == 422
+    assert [(d["code"], d["field"]) for d in r.json()["error"]["details"]] == [
+        ("outcome_conflict", "items.1.outcome"),
+        ("outcome_conflict", "items.2.outcome"),
+    ]
     with session_factory() as session:
         assert sorted(o.outcome for o in session.query(Outcome)) == [0, 1, 1]
 
@@ -129,14 +139,14 @@ def test_final_decision(
     h = bearer(make_key("scoring"))
     rec = _score(client, h)[2]
     url = f"/v1/recommendations/{rec['recommendation_id']}/final"
-    body = {"decision": "overridden", "reason_code": "patient-declined", "decided_at": WHEN}
+    body = {"decision": "overridden", "reason_code": "patient-declined", "decided_at": _now()}
     r = client.post(url, json=body, headers=h)
     assert r.status_code == 201, r.text
     assert r.json()["final_action"] is (not rec["action"])
     assert client.post(url, json=body, headers=h).status_code == 200
-    r = client.post(url, json={"decision": "followed", "decided_at": WHEN}, headers=h)
+    r = client.post(url, json={"decision": "followed", "decided_at": _now()}, headers=h)
     assert r.status_code == 409
-    r = client.post(url, json={"decision": "overridden", "decided_at": WHEN}, headers=h)
+    r = client.post(url, json={"decision": "overridden", "decided_at": _now()}, headers=h)
     assert r.status_code == 422  # an override needs a reason code
     r = client.post("/v1/recommendations/unknown/final", json=body, headers=h)
     assert r.status_code == 404

@@ -5,7 +5,7 @@ from __future__ import annotations
 
 import io
 from collections.abc import Callable
-from datetime import datetime, timedelta
+from datetime import datetime
 from typing import Any
 
 import numpy as np
@@ -57,7 +57,8 @@ def _replay(client: TestClient, h: dict[str, str], n: int, seed: int) -> list[di
     for row, yi, seen in zip(rows, y, observed, strict=True):
         row["y_true"] = int(yi)
         row["y"] = int(yi) if seen else None
-    when = (datetime.now().astimezone() + timedelta(days=30)).isoformat()
+    # Observed and decided now: after the decisions, not in the future (the service refuses both).
+    when = datetime.now().astimezone().isoformat()
     reports = [
         {"recommendation_id": row["recommendation_id"], "outcome": row["y"]}
         for row in rows

@@ -72,7 +72,10 @@ def _refused_port() -> int:
 def unreachable() -> Iterator[tuple[TestClient, dict[str, str]]]:
     url = f"postgresql+psycopg://postgres@127.0.0.1:{_refused_port()}/nowhere"
     app = create_app(Settings(database_url=url, draw_secret=TEST_SECRET))  # type: ignore[arg-type]
-    tokens = {role: f"eh_test_{role}" for role in ("scoring", "audit", "admin")}
+    # Tokens of the issued shape ("eh_" and 43 characters), cached as valid keys.
+    tokens = {
+        role: "eh_" + c * 43 for role, c in (("scoring", "s"), ("audit", "u"), ("admin", "d"))
+    }
     with TestClient(app) as client:
         for i, (role, token) in enumerate(tokens.items()):
             app.state.key_cache.put(keys.hash_token(token), Caller(i + 1, f"k-{role}", role))

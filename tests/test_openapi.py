@@ -29,3 +29,31 @@ def test_scoring_routes_document_bodies(client: TestClient) -> None:
     )
     assert {"200", "201"} <= set(post["responses"])
     assert client.get("/docs").status_code == 200
+
+
+def test_bounds_are_documented(client: TestClient) -> None:
+    doc = client.get("/openapi.json").json()
+    schemas = doc["components"]["schemas"]
+    request = schemas["RecommendationRequest"]["properties"]
+    assert request["attributes"]["maxProperties"] == 32
+    (values,) = request["attributes"]["patternProperties"].values()
+    assert values["type"] == "string" and values["maxLength"] == 64
+    assert values["pattern"] == r"^[^\x00-\x1f|]+$"  # no control characters, no '|'
+    assert request["attributes"]["propertyNames"]["maxLength"] == 64
+    assert request["case_id"]["maxLength"] == 128
+    version = next(
+        p
+        for p in doc["paths"]["/v1/policies/{name}/versions/{version}"]["get"]["parameters"]
+        if p["name"] == "version"
+    )
+    assert version["schema"]["maximum"] == 2**31 - 1
+    # The batch routes read their bodies themselves; the documented body is still the schema.
+    for path, item in [
+        ("/v1/recommendations/batch", "RecommendationRequest"),
+        ("/v1/outcomes/batch", "OutcomeRequest"),
+    ]:
+        body = doc["paths"][path]["post"]["requestBody"]["content"]["application/json"]["schema"]
+        assert body["properties"]["items"]["items"]["$ref"] == f"#/components/schemas/{item}"
+        assert body["required"] == ["items"] and body["properties"]["items"]["minItems"] == 1
+    observed = schemas["OutcomeRequest"]["properties"]["observed_at"]["description"]
+    assert "not before the recommendation was issued, nor in the future" in observed

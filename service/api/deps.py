@@ -63,7 +63,11 @@ def _bearer_token(request: Request) -> str:
     scheme, _, token = header.partition(" ")
     if scheme.lower() != "bearer" or not token.strip():
         raise Unauthorized("malformed Authorization header: expected 'Bearer <token>'")
-    return token.strip()
+    token = token.strip()
+    if not keys.well_formed(token):
+        # Not a token this service made: refused without asking the database.
+        raise Unauthorized("malformed API key: tokens are 'eh_' and 43 characters")
+    return token
 
 
 @dataclass(frozen=True, slots=True)

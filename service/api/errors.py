@@ -12,7 +12,9 @@ from pydantic import BaseModel, ValidationError
 from sqlalchemy.exc import SQLAlchemyError
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
+from service.api.fields import SLUG_PATTERN
 from service.errors import ServiceError, ServiceUnavailable
+from service.policy.attributes import NAME_PATTERN, TEXT_PATTERN, VALUE_PATTERN, control_character
 from service.policy.errors import PolicyError
 from service.store.db import DatabaseUnavailable, is_unavailable
 
@@ -70,13 +72,35 @@ def _loc_to_field(loc: tuple[Any, ...] | list[Any]) -> str | None:
     return ".".join(parts) or None
 
 
+_TEXT_PATTERNS = {TEXT_PATTERN, NAME_PATTERN, VALUE_PATTERN}
+
+
+def _message(err: Any) -> str:
+    """pydantic's message, or ours where it would only quote a regular expression."""
+    if err.get("type") == "string_pattern_mismatch":
+        pattern = (err.get("ctx") or {}).get("pattern")
+        text = err.get("input")
+        if pattern == SLUG_PATTERN:
+            return (
+                "is not a policy name: 1 to 64 of a-z, 0-9, '.', '_' and '-', starting with a "
+                "letter or digit"
+            )
+        if pattern in _TEXT_PATTERNS and isinstance(text, str):
+            found = control_character(text)
+            if found is not None:
+                return f"contains the control character {found}, which is not accepted"
+            if pattern == VALUE_PATTERN and "|" in text:
+                return "contains '|', which separates the values of a group key"
+    return str(err.get("msg", "invalid value"))
+
+
 def validation_details(errors: list[Any]) -> list[dict[str, Any]]:
     out = []
     for err in errors:
         out.append(
             {
                 "code": str(err.get("type", "invalid")),
-                "message": str(err.get("msg", "invalid value")),
+                "message": _message(err),
                 "field": _loc_to_field(err.get("loc", ())),
             }
         )
@@ -138,6 +162,11 @@ def install_error_handlers(app: FastAPI) -> None:
 
     @app.exception_handler(StarletteHTTPException)
     async def _http_error(_request: Request, exc: StarletteHTTPException) -> JSONResponse:
+        if exc.status_code == 400:
+            # FastAPI's one 400: a body it could not decode (e.g. bytes that are not UTF-8).
+            return error_json(
+                400, "malformed_json", "the request body is not valid JSON (nor UTF-8 text)"
+            )
         codes = {404: "not_found", 405: "method_not_allowed"}
         return error_json(
             exc.status_code, codes.get(exc.status_code, "http_error"), str(exc.detail)

@@ -4,11 +4,15 @@ from __future__ import annotations
 
 from typing import Annotated, Literal, Self
 
-from pydantic import AwareDatetime, BaseModel, ConfigDict, Field, StringConstraints, model_validator
+from pydantic import BaseModel, ConfigDict, Field, StringConstraints, model_validator
 
-Text = Annotated[str, StringConstraints(min_length=1, max_length=128)]
-Reason = Annotated[str, StringConstraints(min_length=1, max_length=2000)]
+from service.api.fields import Instant, PolicyName, Reason, Text
+
 Code = Annotated[str, StringConstraints(pattern=r"^[A-Za-z0-9][A-Za-z0-9._-]{0,63}$")]
+SKEW = (
+    "not before the recommendation was issued, nor in the future, each allowing "
+    "EVENHAND_CLOCK_SKEW_SECONDS (300 by default) for clocks that differ"
+)
 
 
 class Correction(BaseModel):
@@ -23,12 +27,14 @@ class OutcomeRequest(BaseModel):
     model_config = ConfigDict(extra="forbid")
 
     recommendation_id: Text | None = None
-    policy: Text | None = None
+    policy: PolicyName | None = None
     case_id: Text | None = Field(
         default=None, description="with policy: the latest recommendation for this case"
     )
     outcome: Literal[0, 1] = Field(description="1 when the predicted event happened")
-    observed_at: AwareDatetime = Field(description="when the outcome was observed (with zone)")
+    observed_at: Instant = Field(
+        description=f"when the outcome was observed, with its UTC offset: {SKEW}"
+    )
     source: Text = Field(description="the system or person that reports it")
     correction: Correction | None = Field(
         default=None, description="send to replace a different outcome recorded earlier"
@@ -55,7 +61,12 @@ class OutcomeResponse(BaseModel):
 class OutcomeBatchRequest(BaseModel):
     model_config = ConfigDict(extra="forbid")
 
-    items: list[OutcomeRequest] = Field(min_length=1)
+    items: list[OutcomeRequest] = Field(
+        min_length=1,
+        description="at most EVENHAND_MAX_BATCH_ITEMS items (10,000 by default; more is 413 "
+        "batch_too_large); if any item is refused, none is written and every refused item is "
+        "listed",
+    )
 
 
 class OutcomeBatchResponse(BaseModel):
@@ -71,7 +82,7 @@ class FinalRequest(BaseModel):
     reason_code: Code | None = Field(
         default=None, description="required when overridden: the organisation's reason code"
     )
-    decided_at: AwareDatetime
+    decided_at: Instant = Field(description=f"when the person decided, with its UTC offset: {SKEW}")
     decided_by: Text | None = Field(default=None, description="a role or pseudonymous id")
 
     @model_validator(mode="after")

@@ -6,11 +6,17 @@ Each route commits before it answers.
 
 from __future__ import annotations
 
-from fastapi import APIRouter, Response
-from sqlalchemy.exc import IntegrityError
+from datetime import timedelta
 
+from fastapi import APIRouter, Request, Response
+from fastapi.concurrency import run_in_threadpool
+from sqlalchemy.exc import IntegrityError
+from sqlalchemy.orm import Session
+
+from service.api.batch_body import ParsedBatch, documented_body, parse_batch
 from service.api.deps import AppSettings, DbSession, ScoringKey
 from service.api.errors import error_responses
+from service.api.fields import RecommendationIdPath
 from service.api.outcome_schemas import (
     FinalRequest,
     FinalResponse,
@@ -19,12 +25,12 @@ from service.api.outcome_schemas import (
     OutcomeRequest,
     OutcomeResponse,
 )
-from service.errors import check_batch_size
+from service.errors import BatchRefused, check_batch_size, item_problem
 from service.store import feedback
-from service.store.feedback import FinalReport, OutcomeReport, OutcomeResult
+from service.store.feedback import FinalReport, ItemsRefused, OutcomeReport, OutcomeResult
 from service.store.records import format_timestamp
 
-router = APIRouter(tags=["feedback"], responses=error_responses(400, 401, 403, 404, 409, 422))
+router = APIRouter(tags=["feedback"], responses=error_responses(400, 401, 403, 404, 409, 413, 422))
 
 
 def _report(body: OutcomeRequest) -> OutcomeReport:
@@ -39,14 +45,16 @@ def _report(body: OutcomeRequest) -> OutcomeReport:
     )
 
 
-def _apply(session: DbSession, items: list[OutcomeReport], actor: str) -> list[OutcomeResult]:
+def _apply(
+    session: Session, items: list[OutcomeReport], actor: str, skew: timedelta
+) -> list[OutcomeResult]:
     try:
-        results = feedback.record_outcomes(session, items, actor)
+        results = feedback.record_outcomes(session, items, actor, skew)
         session.commit()
     except IntegrityError:
         # A concurrent request recorded one of these outcomes first: decide again against it.
         session.rollback()
-        results = feedback.record_outcomes(session, items, actor)
+        results = feedback.record_outcomes(session, items, actor, skew)
         session.commit()
     return results
 
@@ -68,9 +76,16 @@ def _out(r: OutcomeResult) -> OutcomeResponse:
     responses={200: {"model": OutcomeResponse, "description": "Already recorded, unchanged"}},
 )
 def post_outcome(
-    body: OutcomeRequest, response: Response, session: DbSession, key: ScoringKey
+    body: OutcomeRequest,
+    response: Response,
+    session: DbSession,
+    key: ScoringKey,
+    settings: AppSettings,
 ) -> OutcomeResponse:
-    (result,) = _apply(session, [_report(body)], key.name)
+    try:
+        (result,) = _apply(session, [_report(body)], key.name, settings.clock_skew)
+    except ItemsRefused as exc:
+        raise exc.failures[0][1] from None  # the one item's own error
     if result.status == "unchanged":
         response.status_code = 200
     return _out(result)
@@ -82,19 +97,39 @@ def post_outcome(
     response_model=OutcomeBatchResponse,
     summary="Record many outcomes: all of them or, if any is refused, none",
     responses={200: {"model": OutcomeBatchResponse, "description": "Every item unchanged"}},
+    openapi_extra=documented_body(OutcomeBatchRequest),
 )
-def post_outcome_batch(
-    body: OutcomeBatchRequest,
+async def post_outcome_batch(
+    request: Request,
     response: Response,
     session: DbSession,
     key: ScoringKey,
     settings: AppSettings,
 ) -> OutcomeBatchResponse:
-    check_batch_size(len(body.items), settings.max_batch_items)
-    results = _apply(session, [_report(i) for i in body.items], key.name)
+    # The body is read here, not by FastAPI, so items that break the schema and items the
+    # store refuses are reported together (service.api.batch_body).
+    batch = parse_batch(await request.body(), OutcomeBatchRequest, OutcomeRequest)
+    check_batch_size(batch.total, settings.max_batch_items)
+    results = await run_in_threadpool(_record_batch, session, batch, key.name, settings.clock_skew)
     if all(r.status == "unchanged" for r in results):
         response.status_code = 200
     return OutcomeBatchResponse(items=[_out(r) for r in results])
+
+
+def _record_batch(
+    session: Session, batch: ParsedBatch[OutcomeRequest], actor: str, skew: timedelta
+) -> list[OutcomeResult]:
+    reports = [_report(i) for i in batch.items]
+    if not batch.problems:
+        return _apply(session, reports, actor, skew)
+    problems = list(batch.problems)
+    try:
+        feedback.record_outcomes(session, reports, actor, skew)
+    except ItemsRefused as exc:
+        problems += [item_problem(batch.positions[i], err) for i, err in exc.failures]
+    finally:
+        session.rollback()
+    raise BatchRefused(problems, batch.total)
 
 
 @router.post(
@@ -105,11 +140,12 @@ def post_outcome_batch(
     responses={200: {"model": FinalResponse, "description": "Already recorded, unchanged"}},
 )
 def post_final(
-    recommendation_id: str,
+    recommendation_id: RecommendationIdPath,
     body: FinalRequest,
     response: Response,
     session: DbSession,
     key: ScoringKey,
+    settings: AppSettings,
 ) -> FinalResponse:
     report = FinalReport(
         overridden=body.decision == "overridden",
@@ -117,12 +153,13 @@ def post_final(
         reason_code=body.reason_code,
         decided_by=body.decided_by,
     )
+    skew = settings.clock_skew
     try:
-        result = feedback.record_final(session, recommendation_id, report)
+        result = feedback.record_final(session, recommendation_id, report, skew)
         session.commit()
     except IntegrityError:
         session.rollback()
-        result = feedback.record_final(session, recommendation_id, report)
+        result = feedback.record_final(session, recommendation_id, report, skew)
         session.commit()
     if result.status == "unchanged":
         response.status_code = 200

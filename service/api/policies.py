@@ -8,6 +8,7 @@ from fastapi import APIRouter, Path, Query, Response
 
 from service.api.deps import AdminKey, DbSession, ReadSession
 from service.api.errors import error_responses
+from service.api.fields import INT32_MAX, VersionPath
 from service.api.policy_schemas import (
     ActivateBody,
     ChangeOut,
@@ -33,7 +34,7 @@ router = APIRouter(
 )
 
 Name = Annotated[str, Path(pattern=r"^[a-z0-9][a-z0-9._-]{0,63}$", description="policy name")]
-Version = Annotated[int, Path(ge=1)]
+Version = VersionPath
 
 
 @router.post("/{name}/versions", status_code=201, summary="Submit a new draft version")
@@ -127,8 +128,8 @@ def diff(
     name: Name,
     session: ReadSession,
     _key: AdminKey,
-    from_version: Annotated[int, Query(alias="from", ge=1)],
-    to_version: Annotated[int, Query(alias="to", ge=1)],
+    from_version: Annotated[int, Query(alias="from", ge=1, le=INT32_MAX)],
+    to_version: Annotated[int, Query(alias="to", ge=1, le=INT32_MAX)],
 ) -> DiffOut:
     changes = lifecycle.diff(session, name, from_version, to_version)
     summary = "\n".join(c.text for c in changes) or "no differences"

@@ -7,6 +7,7 @@ from typing import Any
 
 from pydantic import BaseModel, ConfigDict, Field
 
+from service.api.fields import OptionalReason, Reason, VersionNumber
 from service.store.models import PolicyEvent, PolicyShadow, PolicyVersion
 
 
@@ -22,25 +23,25 @@ _EXPECTED = (
 
 
 class ActivateBody(_In):
-    version: int = Field(ge=1)
-    reason: str | None = Field(default=None, max_length=2000)
-    expected_current: int | None = Field(
-        default=None, ge=1, description=_EXPECTED.format(what="active")
+    version: VersionNumber
+    reason: OptionalReason | None = None
+    expected_current: VersionNumber | None = Field(
+        default=None, description=_EXPECTED.format(what="active")
     )
 
 
 class RollbackBody(_In):
-    to_version: int | None = Field(default=None, ge=1)
-    reason: str = Field(min_length=1, max_length=2000, description="why; kept in the history")
-    expected_current: int | None = Field(
-        default=None, ge=1, description=_EXPECTED.format(what="active")
+    to_version: VersionNumber | None = None
+    reason: Reason = Field(description="why; kept in the history")
+    expected_current: VersionNumber | None = Field(
+        default=None, description=_EXPECTED.format(what="active")
     )
 
 
 class ShadowBody(_In):
-    version: int = Field(ge=1)
-    expected_current: int | None = Field(
-        default=None, ge=1, description=_EXPECTED.format(what="the shadow")
+    version: VersionNumber
+    expected_current: VersionNumber | None = Field(
+        default=None, description=_EXPECTED.format(what="the shadow")
     )
 
 

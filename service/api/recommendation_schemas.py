@@ -2,14 +2,14 @@
 
 from __future__ import annotations
 
-from typing import Annotated
+from typing import Annotated, Any
 
-from pydantic import BaseModel, ConfigDict, Field, StringConstraints
+from pydantic import BaseModel, ConfigDict, Field, field_validator
+from pydantic_core import PydanticCustomError
 
-Text = Annotated[str, StringConstraints(min_length=1, max_length=128)]
-AttributeName = Annotated[str, StringConstraints(min_length=1, max_length=64)]
-AttributeText = Annotated[str, StringConstraints(max_length=256)]
-Finite = Annotated[float, Field(allow_inf_nan=False)]
+from service.api.fields import AttributeName, AttributeValue, PolicyName, Text
+from service.policy.attributes import MAX_ATTRIBUTES, MAX_NAME_CHARS, MAX_VALUE_CHARS
+
 # A JSON number only: no "0.5" strings, no true/false.
 Score = Annotated[float, Field(allow_inf_nan=False, strict=True)]
 
@@ -19,12 +19,29 @@ class RecommendationRequest(BaseModel):
 
     request_id: Text = Field(description="the caller's idempotency key for this request")
     case_id: Text = Field(description="the case; the keyed draw depends on it")
-    policy: Text = Field(description="policy name; its active version decides")
+    policy: PolicyName = Field(description="policy name; its active version decides")
     score: Score = Field(description="the model's score, within the policy's score_range")
-    attributes: dict[AttributeName, AttributeText | bool | int | Finite] = Field(
+    attributes: dict[AttributeName, AttributeValue] = Field(
         default_factory=dict,
-        description="the attributes the policy groups by; only those are stored",
+        max_length=MAX_ATTRIBUTES,
+        description=f"the attributes the policy groups by (only those are stored): at most "
+        f"{MAX_ATTRIBUTES}, names of 1 to {MAX_NAME_CHARS} characters, values JSON strings of "
+        f"1 to {MAX_VALUE_CHARS} characters. A value is read as text: surrounding white space "
+        "removed, Unicode NFC, letter case kept; booleans, numbers, null, control characters "
+        'and \'|\' are refused. Send "true" or "1" as strings.',
     )
+
+    @field_validator("attributes", mode="before")
+    @classmethod
+    def _not_too_many(cls, value: Any) -> Any:
+        # Counted before any value is read, so a huge object is refused at once.
+        if isinstance(value, dict) and len(value) > MAX_ATTRIBUTES:
+            raise PydanticCustomError(
+                "too_many_attributes",
+                "holds {count} attributes; at most {limit} are accepted",
+                {"count": len(value), "limit": MAX_ATTRIBUTES},
+            )
+        return value
 
 
 class RecommendationResponse(BaseModel):
@@ -45,7 +62,12 @@ class RecommendationResponse(BaseModel):
 class BatchRequest(BaseModel):
     model_config = ConfigDict(extra="forbid")
 
-    items: list[RecommendationRequest] = Field(min_length=1)
+    items: list[RecommendationRequest] = Field(
+        min_length=1,
+        description="at most EVENHAND_MAX_BATCH_ITEMS items (10,000 by default; more is 413 "
+        "batch_too_large); if any item is refused, none is written and every refused item is "
+        "listed",
+    )
 
 
 class BatchResponse(BaseModel):

@@ -9,7 +9,9 @@ a batch is one transaction of its own.
 from __future__ import annotations
 
 from fastapi import APIRouter, Request, Response
+from fastapi.concurrency import run_in_threadpool
 
+from service.api.batch_body import ParsedBatch, documented_body, parse_batch
 from service.api.deps import ScoringKey
 from service.api.errors import error_responses
 from service.api.recommendation_schemas import (
@@ -18,6 +20,7 @@ from service.api.recommendation_schemas import (
     RecommendationRequest,
     RecommendationResponse,
 )
+from service.errors import BatchRefused, check_batch_size
 from service.store import scoring
 from service.store.committer import GroupCommitter
 from service.store.scoring import ScoringContext
@@ -65,10 +68,25 @@ async def recommend(body: RecommendationRequest, request: Request, _key: Scoring
         201: {"model": BatchResponse, "description": "Recorded (some items may be replays)"},
         200: {"model": BatchResponse, "description": "Every item was a replay"},
     },
+    openapi_extra=documented_body(BatchRequest),
 )
-def recommend_batch(body: BatchRequest, request: Request, _key: ScoringKey) -> Response:
+async def recommend_batch(request: Request, _key: ScoringKey) -> Response:
+    # The body is read here, not by FastAPI, so items that break the schema and items the
+    # store refuses are reported together (service.api.batch_body).
+    batch = parse_batch(await request.body(), BatchRequest, RecommendationRequest)
     ctx = _context(request)
-    items, created = scoring.recommend_batch(request.app.state.engine, body.items, ctx)
+    check_batch_size(batch.total, ctx.max_batch_items)
+    return await run_in_threadpool(_decide_batch, request, batch, ctx)
+
+
+def _decide_batch(
+    request: Request, batch: ParsedBatch[RecommendationRequest], ctx: ScoringContext
+) -> Response:
+    engine = request.app.state.engine
+    if batch.problems:
+        more = scoring.batch_problems(engine, batch.items, ctx, batch.positions)
+        raise BatchRefused(batch.problems + more, batch.total)
+    items, created = scoring.recommend_batch(engine, batch.items, ctx)
     # The items are JSON texts already (the same bytes a single request would get).
     return _json_text(
         f'{{"items":[{",".join(items)}],"created":{created}}}', 201 if created else 200

@@ -17,6 +17,7 @@ from pydantic import BaseModel, ConfigDict, Field
 
 from service.api.deps import AppSettings, AuditKey, DbSession
 from service.api.errors import error_responses
+from service.api.fields import INT32_MAX, PolicyName, PolicyPath
 from service.audit.history import history_csv, history_rows, load_snapshots
 from service.audit.job import run_audit
 from service.audit.month import Month
@@ -26,6 +27,7 @@ from service.audit.reports import get_snapshot, list_reports
 from service.audit.snapshot_model import AlertRow
 from service.audit.verdicts import DEFAULT_MIN_COUNT
 from service.errors import NotFound
+from service.policy.values import GroupKey
 from service.store.db import begin_read_only
 
 router = APIRouter(tags=["audit"], responses=error_responses(401, 403, 404, 422))
@@ -36,11 +38,10 @@ _REPORT_FILE = re.compile(r"^(\d{4}-\d{2})(?:\.(json|csv|html))?$")
 class AuditRequest(BaseModel):
     model_config = ConfigDict(extra="forbid")
 
-    policy: str = Field(min_length=1, max_length=64)
+    policy: PolicyName
     month: str = Field(pattern=r"^\d{4}-(0[1-9]|1[0-2])$", examples=["2026-10"])
-    reference_group: str | None = Field(
+    reference_group: GroupKey | None = Field(
         default=None,
-        max_length=256,
         description="group every gap is taken against and the four-fifths comparator "
         "(default: each version's own; must be a group of the policy)",
     )
@@ -74,6 +75,7 @@ class AuditResponse(BaseModel):
     status_code=201,
     response_model=AuditResponse,
     summary="Audit one policy for one calendar month and store a new snapshot",
+    responses=error_responses(400, 413),
 )
 def post_audit(
     body: AuditRequest, session: DbSession, key: AuditKey, settings: AppSettings
@@ -104,7 +106,7 @@ def post_audit(
 
 
 @router.get("/v1/reports/{policy}", summary="Months and snapshots of a policy")
-def get_reports(policy: str, session: DbSession, _key: AuditKey) -> dict[str, Any]:
+def get_reports(policy: PolicyPath, session: DbSession, _key: AuditKey) -> dict[str, Any]:
     begin_read_only(session)
     return list_reports(session, policy)
 
@@ -121,7 +123,7 @@ def get_reports(policy: str, session: DbSession, _key: AuditKey) -> dict[str, An
     },
 )
 def get_history(
-    policy: str,
+    policy: PolicyPath,
     session: DbSession,
     _key: AuditKey,
     first: Annotated[str, Query(alias="from", pattern=r"^\d{4}-\d{2}$", examples=["2026-01"])],
@@ -168,11 +170,11 @@ def get_history(
     },
 )
 def get_report(
-    policy: str,
+    policy: PolicyPath,
     month_file: str,
     session: DbSession,
     _key: AuditKey,
-    snapshot: Annotated[int | None, Query(ge=1, le=2**31 - 1, description="a snapshot id")] = None,
+    snapshot: Annotated[int | None, Query(ge=1, le=INT32_MAX, description="a snapshot id")] = None,
     view: Annotated[
         Literal["published", "internal"],
         Query(description="published (small cells suppressed) or internal (every count)"),

@@ -1,4 +1,10 @@
-"""Reading calibration data from CSV, with one-line errors that name the line and column."""
+"""Reading calibration data from CSV, with one-line errors that name the line and column.
+
+Group cells are read by :func:`service.policy.attributes.read_attribute`, the reading the
+scoring API applies to a request's attributes, so a record derived in one group is scored in
+the same group (surrounding white space removed, NFC, case kept; control characters, ``|`` and
+empty cells refused).
+"""
 
 from __future__ import annotations
 
@@ -10,7 +16,7 @@ import numpy as np
 import numpy.typing as npt
 
 from service.cli.common import CliError
-from service.policy.document import GROUP_SEPARATOR
+from service.policy.attributes import GROUP_SEPARATOR, AttributeProblem, read_attribute
 from service.policy.units import CalibrationData
 
 
@@ -47,7 +53,7 @@ def load_calibration(
                         f"the header has {len(header)}"
                     )
                 for column, i in zip(columns, index, strict=True):
-                    column.append(row[i].strip())
+                    column.append(row[i])
                 lines.append(reader.line_num)
         except csv.Error as exc:
             raise CliError(f"{path}: line {reader.line_num}: {exc}") from exc
@@ -56,19 +62,33 @@ def load_calibration(
     if not lines:
         raise CliError(f"{path}: no data rows below the header")
 
-    scores = _scores(path, score, columns[0], lines)
-    outcomes = _outcomes(path, outcome, columns[1], lines)
-    for j, col in enumerate(group_columns):
-        values = columns[2 + j]
-        for i, v in enumerate(values):
-            if not v or GROUP_SEPARATOR in v:
-                problem = "is empty" if not v else f"contains {GROUP_SEPARATOR!r}"
-                raise CliError(f"{path}: line {lines[i]}: column {col!r} {problem}")
-    keys = [GROUP_SEPARATOR.join(parts) for parts in zip(*columns[2:], strict=True)]
+    scores = _scores(path, score, [v.strip() for v in columns[0]], lines)
+    outcomes = _outcomes(path, outcome, [v.strip() for v in columns[1]], lines)
+    groups = [
+        _group_values(path, col, cells, lines)
+        for col, cells in zip(group_columns, columns[2:], strict=True)
+    ]
+    keys = [GROUP_SEPARATOR.join(parts) for parts in zip(*groups, strict=True)]
     known = sorted(set(keys))
     code_of = {k: c for c, k in enumerate(known)}
     codes = np.fromiter((code_of[k] for k in keys), dtype=np.intp, count=len(keys))
     return CalibrationData(scores, outcomes, codes, known, list(group_columns))
+
+
+def _group_values(path: Path, col: str, cells: list[str], lines: list[int]) -> list[str]:
+    """The canonical reading of every cell of a group column (each distinct cell read once)."""
+    canonical: dict[str, str] = {}
+    problems: dict[str, AttributeProblem] = {}
+    for cell in set(cells):
+        try:
+            canonical[cell] = read_attribute(cell)
+        except AttributeProblem as exc:
+            problems[cell] = exc
+    if problems:
+        i = next(i for i, cell in enumerate(cells) if cell in problems)
+        shown = "" if not cells[i].strip() else f" ({cells[i]!r})"
+        raise CliError(f"{path}: line {lines[i]}: column {col!r}{shown} {problems[cells[i]]}")
+    return [canonical[cell] for cell in cells]
 
 
 def _scores(path: Path, col: str, values: list[str], lines: list[int]) -> npt.NDArray[np.float64]:

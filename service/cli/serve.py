@@ -7,7 +7,7 @@ import sys
 from typing import Any
 
 from service.cli.common import CliError
-from service.settings import MissingDrawSecret, Settings
+from service.settings import DrawSecretError, Settings
 
 
 def register(sub: Any) -> None:
@@ -23,9 +23,12 @@ def register(sub: Any) -> None:
 
 def _preflight(settings: Settings) -> None:
     """Refuse to start, with a clear message, when scoring could not work."""
+    warning = settings.demo_warning()
+    if warning is not None:
+        print(f"evenhand: warning: {warning}", file=sys.stderr)
     try:
         settings.draw_key()
-    except MissingDrawSecret as exc:
+    except DrawSecretError as exc:
         raise CliError(str(exc)) from None
     from service.store.db import create_db_engine
     from service.store.migrate import at_head

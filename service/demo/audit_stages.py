@@ -7,7 +7,7 @@ by the auditor's key, and the HTML and CSV report fetched and saved in the outpu
 
 from __future__ import annotations
 
-from datetime import UTC, datetime, timedelta
+from datetime import UTC, datetime
 from typing import Any
 
 import httpx
@@ -15,17 +15,20 @@ import numpy as np
 
 from service.demo.story import DemoContext, Stage, default_stages, print_summary
 
-FOLLOW_UP = timedelta(days=30)
 OUTCOME_BATCH = 500
 OVERRIDE_REASONS = ("patient-declined", "clinical-judgement", "already-in-programme")
 
 
 def outcomes_arrive(ctx: DemoContext) -> None:
     """Readmission outcomes, 30 days after each discharge, from the records system; a few
-    cases never report back (moved away), and nurses record their final decisions."""
+    cases never report back (moved away), and nurses record their final decisions.
+
+    The story's 30 days pass in a moment, so the outcomes and decisions are dated when they
+    are sent: the service refuses a date before the recommendation or in the future."""
     d = ctx.discharges
     assert d is not None
     rng = np.random.default_rng(ctx.seed + 1)
+    now = datetime.now(UTC).isoformat()
     reported = rng.random(len(ctx.sent)) >= 0.12  # about 12% lost to follow-up
     items: list[dict[str, Any]] = []
     for sent, seen in zip(ctx.sent, reported, strict=True):
@@ -35,7 +38,7 @@ def outcomes_arrive(ctx: DemoContext) -> None:
             {
                 "recommendation_id": sent.recommendation_id,
                 "outcome": int(d.outcome[sent.index]),
-                "observed_at": (d.discharged_at[sent.index] + FOLLOW_UP).isoformat(),
+                "observed_at": now,
                 "source": "fernhollow-records",
             }
         )
@@ -53,14 +56,14 @@ def outcomes_arrive(ctx: DemoContext) -> None:
                 body = {
                     "decision": "overridden",
                     "reason_code": OVERRIDE_REASONS[int(rng.integers(len(OVERRIDE_REASONS)))],
-                    "decided_at": d.discharged_at[sent.index].isoformat(),
+                    "decided_at": now,
                     "decided_by": "discharge nurse",
                 }
                 overrides += 1
             elif u < 0.25:
                 body = {
                     "decision": "followed",
-                    "decided_at": d.discharged_at[sent.index].isoformat(),
+                    "decided_at": now,
                     "decided_by": "discharge nurse",
                 }
                 followed += 1

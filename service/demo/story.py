@@ -134,6 +134,8 @@ def start_server(ctx: DemoContext) -> None:
     env = {
         "EVENHAND_DATABASE_URL": ctx.database_url,
         "EVENHAND_DRAW_SECRET": ctx.draw_secret,
+        # The demo's server says it is one (and would accept a short secret, with a warning).
+        "EVENHAND_DEMO_MODE": "true",
         "EVENHAND_SEAL_INTERVAL_SECONDS": "2",
     }
     ctx.server = ServerProcess(env, ctx.output_dir / "server.log")

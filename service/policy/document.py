@@ -14,14 +14,41 @@ from __future__ import annotations
 
 import hashlib
 import json
+from collections.abc import Mapping
 from enum import StrEnum
 from itertools import pairwise
-from typing import Annotated, Any, Literal, Self
+from typing import Any, Literal, Self
 
-from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
+from pydantic import (
+    BaseModel,
+    ConfigDict,
+    Field,
+    field_validator,
+    model_validator,
+)
 
-GROUP_SEPARATOR = "|"
-"""Joins attribute values into a group key: ``quarry-hill|es``."""
+from service.policy.attributes import (
+    GROUP_SEPARATOR,
+    MAX_ATTRIBUTES,
+    MAX_GROUP_KEY_CHARS,
+    AttributeProblem,
+    is_canonical,
+    read_attribute,
+)
+from service.policy.values import (
+    MAX_COUNT,
+    Cost,
+    Count,
+    GroupKey,
+    Label,
+    NonNegative,
+    Probability,
+    Prose,
+    ScoreValue,
+    Slug,
+)
+
+__all__ = ["GROUP_SEPARATOR"]
 
 
 class Criterion(StrEnum):
@@ -34,12 +61,6 @@ class Criterion(StrEnum):
     FOUR_FIFTHS = "four-fifths"
 
 
-Probability = Annotated[float, Field(ge=0.0, le=1.0, allow_inf_nan=False)]
-FiniteFloat = Annotated[float, Field(allow_inf_nan=False)]
-NonNegative = Annotated[float, Field(ge=0.0, allow_inf_nan=False)]
-Slug = Annotated[str, Field(pattern=r"^[a-z0-9][a-z0-9._-]{0,63}$")]
-
-
 class _Strict(BaseModel):
     model_config = ConfigDict(extra="forbid", frozen=True, populate_by_name=True)
 
@@ -47,7 +68,7 @@ class _Strict(BaseModel):
 class Step(_Strict):
     """From score ``start`` upward the action is taken with ``probability``."""
 
-    start: FiniteFloat = Field(alias="from")
+    start: ScoreValue = Field(alias="from")
     probability: Probability
 
 
@@ -117,8 +138,8 @@ class Rule(_Strict):
 class Costs(_Strict):
     """Error costs the policy was derived with (per case, in any one unit)."""
 
-    false_positive: NonNegative
-    false_negative: NonNegative
+    false_positive: Cost
+    false_negative: Cost
 
     @model_validator(mode="after")
     def _not_both_zero(self) -> Self:
@@ -143,8 +164,14 @@ class Fallback(_Strict):
 
 
 class Groups(_Strict):
-    attributes: list[Slug] = Field(min_length=1, description="request attributes forming the key")
-    known: list[str] = Field(min_length=1, description="group keys, values joined by '|'")
+    attributes: list[Slug] = Field(
+        min_length=1, max_length=MAX_ATTRIBUTES, description="request attributes forming the key"
+    )
+    known: list[GroupKey] = Field(
+        min_length=1,
+        description="group keys: attribute values in their canonical reading (text, NFC, no "
+        "surrounding white space), joined by '|'",
+    )
     fallback: Fallback = Fallback()
 
     @field_validator("attributes")
@@ -164,6 +191,12 @@ class Groups(_Strict):
                     f"groups.known[{i}] ({key!r}) must have one non-empty value per attribute "
                     f"{self.attributes}, joined by {GROUP_SEPARATOR!r}"
                 )
+            for part in parts:
+                if not is_canonical(part):
+                    raise ValueError(
+                        f"groups.known[{i}] ({key!r}): the value {part!r} "
+                        f"{_canonical_hint(part)}, so no request could ever be in this group"
+                    )
             if key in seen:
                 raise ValueError(f"groups.known[{i}] ({key!r}) is listed twice")
             seen.add(key)
@@ -177,8 +210,8 @@ class CalibrationCounts(_Strict):
     P(action | score). The audit compares a month's realized counts with these as a second
     sample, not with an exact number."""
 
-    n: int = Field(ge=1)
-    positives: int = Field(ge=0)
+    n: int = Field(ge=1, le=MAX_COUNT)
+    positives: Count
     tp: NonNegative
     fp: NonNegative
 
@@ -201,17 +234,17 @@ class GroupTarget(_Strict):
     they are in-sample figures, taken by the audit as exact numbers.
     """
 
-    n: int | None = Field(default=None, ge=0)
+    n: Count | None = None
     prevalence: Probability | None = None
     action_rate: Probability
     tpr: Probability
     fpr: Probability
     out_of_sample: CalibrationCounts | None = None
-    score_counts: list[Annotated[int, Field(ge=0)]] | None = Field(
+    score_counts: list[Count] | None = Field(
         default=None,
         description="calibration rows per score bin (bins cut at targets.score_edges)",
     )
-    outside_promise: str | None = Field(
+    outside_promise: Prose | None = Field(
         default=None,
         description="why the criterion's promise does not cover this group (None: it does), "
         "e.g. a fallback rule that misses the criterion on the calibration data",
@@ -225,8 +258,8 @@ class Targets(_Strict):
         description="largest gap between groups (for gap criteria) and between realized and "
         "promised rates that keeps the promise; required and positive at submit",
     )
-    expected_cost: NonNegative | None = None
-    reference_group: str | None = Field(
+    expected_cost: Cost | None = None
+    reference_group: GroupKey | None = Field(
         default=None,
         description="group every gap is taken against, and the four-fifths comparator "
         "(default: the largest calibration group for gaps, the calibration group with the "
@@ -236,13 +269,16 @@ class Targets(_Strict):
         default=None, description="largest overall action rate the rules were derived under"
     )
     folds: int | None = Field(
-        default=None, ge=2, description="cross-fitting folds behind groups[*].out_of_sample"
+        default=None,
+        ge=2,
+        le=1000,
+        description="cross-fitting folds behind groups[*].out_of_sample",
     )
-    score_edges: list[FiniteFloat] | None = Field(
+    score_edges: list[ScoreValue] | None = Field(
         default=None,
         description="inner edges of the score bins of groups[*].score_counts, increasing",
     )
-    groups: dict[str, GroupTarget] = Field(default_factory=dict)
+    groups: dict[GroupKey, GroupTarget] = Field(default_factory=dict)
 
     @model_validator(mode="after")
     def _bins_match(self) -> Self:
@@ -290,11 +326,13 @@ class PolicyDocument(_Strict):
     """One policy: how a score becomes a recommendation, for every group."""
 
     name: Slug
-    description: str = ""
-    score_meaning: str = Field(description="what the score estimates, e.g. P(readmission in 30 d)")
-    score_range: tuple[FiniteFloat, FiniteFloat] = (0.0, 1.0)
-    action_label: str = Field(min_length=1)
-    no_action_label: str = Field(min_length=1)
+    description: Prose = ""
+    score_meaning: Prose = Field(
+        description="what the score estimates, e.g. P(readmission in 30 d)"
+    )
+    score_range: tuple[ScoreValue, ScoreValue] = (0.0, 1.0)
+    action_label: Label
+    no_action_label: Label
     favourable: Literal["action", "no-action"] = Field(
         description="which outcome of the decision is favourable to the person"
     )
@@ -304,7 +342,7 @@ class PolicyDocument(_Strict):
     )
     costs: Costs
     groups: Groups
-    rules: dict[str, Rule] = Field(description="group key (or parent key) -> rule")
+    rules: dict[GroupKey, Rule] = Field(description="group key (or parent key) -> rule")
     targets: Targets | None = None
     audit: AuditPlan | None = Field(
         default=None, description="how the audit decides statuses (default: AuditPlan())"
@@ -357,25 +395,43 @@ class PolicyDocument(_Strict):
         """The audit plan, with the documented defaults when the document sets none."""
         return self.audit if self.audit is not None else AuditPlan()
 
-    def group_key(self, attributes: dict[str, Any]) -> str:
-        """The group key for a request's attributes (only the policy's attributes count)."""
-        from service.policy.errors import MissingAttribute
+    def group_key(self, attributes: Mapping[str, object]) -> str:
+        """The group key for a request's attributes (only the policy's attributes count).
+
+        Each value is read by :func:`service.policy.attributes.read_attribute`, the reading the
+        API and the calibration CSV loader use too.
+        """
+        from service.policy.errors import InvalidAttribute, MissingAttribute
 
         values: list[str] = []
         for attr in self.groups.attributes:
-            if attr not in attributes or attributes[attr] is None:
+            raw = attributes.get(attr)
+            if raw is None:
                 raise MissingAttribute(
                     f"attribute {attr!r} is required by policy {self.name!r}",
                     field=f"attributes.{attr}",
                 )
-            value = str(attributes[attr])
-            if GROUP_SEPARATOR in value or not value:
-                raise MissingAttribute(
-                    f"attribute {attr!r} must be a non-empty value without {GROUP_SEPARATOR!r}",
-                    field=f"attributes.{attr}",
-                )
-            values.append(value)
-        return GROUP_SEPARATOR.join(values)
+            try:
+                values.append(read_attribute(raw))
+            except AttributeProblem as exc:
+                raise InvalidAttribute(
+                    f"attribute {attr!r} {exc}", field=f"attributes.{attr}"
+                ) from None
+        key = GROUP_SEPARATOR.join(values)
+        if len(key) > MAX_GROUP_KEY_CHARS:
+            raise InvalidAttribute(
+                f"the group key of these attributes is longer than {MAX_GROUP_KEY_CHARS} "
+                "characters, longer than any group can be",
+                field="attributes",
+            )
+        return key
+
+
+def _canonical_hint(value: str) -> str:
+    try:
+        return f"is read as {read_attribute(value)!r}"
+    except AttributeProblem as exc:
+        return str(exc)
 
 
 def resolve_rule_key(policy: PolicyDocument, group: str) -> str | None:

@@ -42,3 +42,9 @@ class InternalDeriveError(RuntimeError):
     def within(self, context: str) -> InternalDeriveError:
         """The same error, said to have happened in ``context``."""
         return InternalDeriveError(self.detail, context)
+
+
+class InvalidAttribute(PolicyError):
+    """An attribute value that is not text by the one reading (``service.policy.attributes``)."""
+
+    code = "invalid_attribute"

@@ -9,23 +9,35 @@ Rules (the API and the demo go through these functions; callers commit):
   a conflict.
 - A batch is applied as a whole: every item is checked first, and if any fails nothing is
   written and every failure is reported with its item index.
+- An outcome cannot be observed, nor a final decision made, before its recommendation was
+  issued or after now; both allow ``clock_skew`` (``EVENHAND_CLOCK_SKEW_SECONDS``) for a
+  sender's clock that differs from the server's.
 """
 
 from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass
-from datetime import datetime
+from datetime import datetime, timedelta
 from typing import Any, Literal
 
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
-from service.errors import Conflict, NotFound, ServiceError, Unprocessable
+from service.errors import (
+    BatchRefused,
+    Conflict,
+    NotFound,
+    ServiceError,
+    Unprocessable,
+    item_problem,
+)
 from service.store.audit_models import FinalDecision, Outcome, OutcomeCorrection
-from service.store.models import Recommendation
+from service.store.models import Recommendation, utcnow
+from service.store.records import format_timestamp
 
 LOOKUP_CHUNK = 500
+DEFAULT_CLOCK_SKEW = timedelta(minutes=5)
 
 Status = Literal["recorded", "unchanged", "corrected"]
 
@@ -75,6 +87,38 @@ COPIED = (
     "shadow_action",
     "score",
 )
+
+
+class ItemsRefused(BatchRefused):
+    """Refused items of :func:`record_outcomes`: each (index, error), for the caller to report
+    as a batch (the default) or, for a single outcome, as that item's own error."""
+
+    def __init__(self, failures: list[tuple[int, ServiceError]], total: int) -> None:
+        super().__init__([item_problem(i, err) for i, err in failures], total)
+        self.failures = failures
+
+
+def check_timing(
+    at: datetime, issued_at: datetime, clock_skew: timedelta, field: str, now: datetime
+) -> ServiceError | None:
+    """Why ``at`` (an observation or decision about a recommendation issued at ``issued_at``)
+    cannot be true, or None: it is before the issue or after ``now``, beyond ``clock_skew``."""
+    allowance = f"allowing {clock_skew.total_seconds():g} s for clocks that differ"
+    if at > now + clock_skew:
+        return Unprocessable(
+            f"{field} {format_timestamp(at)} is in the future (the server's clock says "
+            f"{format_timestamp(now)}; {allowance})",
+            code="in_the_future",
+            field=field,
+        )
+    if at < issued_at - clock_skew:
+        return Unprocessable(
+            f"{field} {format_timestamp(at)} is before the recommendation was issued "
+            f"({format_timestamp(issued_at)}; {allowance})",
+            code="before_recommendation",
+            field=field,
+        )
+    return None
 
 
 def _describe(item: OutcomeReport) -> str:
@@ -141,9 +185,13 @@ def _existing(session: Session, pks: Sequence[int]) -> dict[int, Outcome]:
 
 
 def record_outcomes(
-    session: Session, items: Sequence[OutcomeReport], actor: str
+    session: Session,
+    items: Sequence[OutcomeReport],
+    actor: str,
+    clock_skew: timedelta = DEFAULT_CLOCK_SKEW,
 ) -> list[OutcomeResult]:
-    """Apply every item or none; raises the failure (one item) or a batch error (several)."""
+    """Apply every item or none; raises :class:`ItemsRefused` listing every refused item."""
+    now = utcnow()
     targets = _resolve(session, items)
     current = _existing(session, [t.pk for t in targets if t is not None])
     results: list[OutcomeResult] = []
@@ -154,10 +202,18 @@ def record_outcomes(
                 (
                     index,
                     NotFound(
-                        f"no recommendation for {_describe(item)}", code="unknown_recommendation"
+                        f"no recommendation for {_describe(item)}",
+                        code="unknown_recommendation",
+                        field="recommendation_id" if item.recommendation_id else "case_id",
                     ),
                 )
             )
+            continue
+        late = check_timing(
+            item.observed_at, target.cohort["issued_at"], clock_skew, "observed_at", now
+        )
+        if late is not None:
+            failures.append((index, late))
             continue
         row = current.get(target.pk)
         if row is None:
@@ -187,6 +243,7 @@ def record_outcomes(
                         "with "
                         f"{item.outcome}, send it as a correction with a reason",
                         code="outcome_conflict",
+                        field="outcome",
                     ),
                 )
             )
@@ -211,30 +268,9 @@ def record_outcomes(
         )
     if failures:
         # Nothing is flushed yet; the caller's session is discarded without a commit.
-        raise _batch_failure(failures, len(items))
+        raise ItemsRefused(failures, len(items))
     session.flush()
     return results
-
-
-def _batch_failure(failures: list[tuple[int, ServiceError]], total: int) -> ServiceError:
-    if total == 1:
-        return failures[0][1]
-    details = [
-        {"code": err.code, "message": err.message, "field": f"items[{i}]"} for i, err in failures
-    ]
-    statuses = {err.status_code for _, err in failures}
-    kind: type[ServiceError] = Unprocessable
-    if statuses == {404}:
-        kind = NotFound
-    elif statuses == {409}:
-        kind = Conflict
-    return kind(
-        f"{len(failures)} of {total} items were refused; nothing was written "
-        f"(first: items[{failures[0][0]}]: {failures[0][1].message})",
-        code="batch_refused",
-        field=f"items[{failures[0][0]}]",
-        details=details,
-    )
 
 
 @dataclass(frozen=True, slots=True)
@@ -255,7 +291,12 @@ class FinalResult:
     decided_at: datetime
 
 
-def record_final(session: Session, recommendation_id: str, report: FinalReport) -> FinalResult:
+def record_final(
+    session: Session,
+    recommendation_id: str,
+    report: FinalReport,
+    clock_skew: timedelta = DEFAULT_CLOCK_SKEW,
+) -> FinalResult:
     r = Recommendation.__table__.c
     found = session.execute(
         select(r.id, r.recommendation_id, *_cohort_columns()).where(
@@ -265,6 +306,11 @@ def record_final(session: Session, recommendation_id: str, report: FinalReport) 
     if found is None:
         raise NotFound(f"no recommendation {recommendation_id!r}", code="unknown_recommendation")
     target = _target(found)
+    late = check_timing(
+        report.decided_at, target.cohort["issued_at"], clock_skew, "decided_at", utcnow()
+    )
+    if late is not None:
+        raise late
     pk, action = target.pk, bool(target.cohort["action"])
     final_action = action != report.overridden
     row = session.get(FinalDecision, pk)

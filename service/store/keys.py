@@ -1,9 +1,15 @@
-"""API keys: bearer tokens with a role. Only the SHA-256 of a token is stored."""
+"""API keys: bearer tokens with a role. Only the SHA-256 of a token is stored.
+
+Every token is made here, never chosen by a caller: ``eh_`` and 43 URL-safe base64 characters
+(32 random bytes, 256 bits). A presented token of any other shape cannot be a key, so it is
+refused without a database lookup (:func:`well_formed`).
+"""
 
 from __future__ import annotations
 
 import hashlib
 import hmac
+import re
 import secrets
 from collections.abc import Sequence
 
@@ -14,7 +20,14 @@ from service.errors import Conflict, NotFound, Unprocessable
 from service.store.models import ApiKey, Role, utcnow
 
 TOKEN_PREFIX = "eh_"
+TOKEN_BYTES = 32
+_TOKEN_SHAPE = re.compile(r"eh_[A-Za-z0-9_-]{43}")
 _BY_HASH = select(ApiKey).where(ApiKey.token_hash == bindparam("digest"))
+
+
+def well_formed(token: str) -> bool:
+    """Whether ``token`` has the shape of the tokens :func:`create_key` makes."""
+    return _TOKEN_SHAPE.fullmatch(token) is not None
 
 
 def hash_token(token: str) -> str:
@@ -31,7 +44,7 @@ def create_key(session: Session, name: str, role: str) -> tuple[ApiKey, str]:
         raise Unprocessable("key name must be 1 to 64 characters", field="name")
     if session.scalar(select(ApiKey.id).where(ApiKey.name == name)) is not None:
         raise Conflict(f"an API key named {name!r} already exists", code="key_exists", field="name")
-    token = TOKEN_PREFIX + secrets.token_urlsafe(32)
+    token = TOKEN_PREFIX + secrets.token_urlsafe(TOKEN_BYTES)
     key = ApiKey(name=name, role=role, token_hash=hash_token(token), created_at=utcnow())
     session.add(key)
     session.flush()

@@ -31,7 +31,14 @@ from sqlalchemy import Connection, Engine, bindparam, func, select
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import aliased
 
-from service.errors import Conflict, ServiceError, Unprocessable, check_batch_size
+from service.errors import (
+    BatchRefused,
+    Conflict,
+    ServiceError,
+    Unprocessable,
+    check_batch_size,
+    item_problem,
+)
 from service.policy.document import PolicyDocument, resolve_rule_key
 from service.policy.errors import PolicyError
 from service.policy.rules import check_score, evaluate, evaluate_batch, rule_for
@@ -451,11 +458,6 @@ def _decide_round(
 # -- batches ------------------------------------------------------------------------------
 
 
-def _item_error(i: int, exc: ServiceError | PolicyError) -> dict[str, Any]:
-    field = f"items.{i}" + (f".{exc.field}" if exc.field else "")
-    return {"code": exc.code, "message": exc.message, "field": field}
-
-
 @dataclass(frozen=True, slots=True)
 class PreparedBatch:
     """A batch decided against one snapshot of the store, ready to be written."""
@@ -520,6 +522,21 @@ def _last_switch(conn: Connection, name: str) -> int | None:
     return None if value is None else int(value)
 
 
+def batch_problems(
+    engine: Engine, items: Sequence[ScoreInput], ctx: ScoringContext, positions: Sequence[int]
+) -> list[dict[str, Any]]:
+    """What :func:`prepare_batch` refuses among ``items`` (the valid part of a batch whose other
+    items were refused already), decided on a read snapshot; writes nothing."""
+    if not items:
+        return []
+    with engine.connect().execution_options(**{READ_ONLY: True}) as conn, conn.begin():
+        try:
+            prepare_batch(conn, items, ctx, positions)
+        except BatchRefused as exc:
+            return exc.details
+    return []
+
+
 def _same_versions(conn: Connection, prepared: PreparedBatch, ctx: ScoringContext) -> bool:
     """No switch since the batch was decided: the same versions, and the same last switch
     (a switch away and back again leaves the versions equal but moves the history on)."""
@@ -536,21 +553,34 @@ def _same_versions(conn: Connection, prepared: PreparedBatch, ctx: ScoringContex
 
 
 def prepare_batch(
-    conn: Connection, items: Sequence[ScoreInput], ctx: ScoringContext
+    conn: Connection,
+    items: Sequence[ScoreInput],
+    ctx: ScoringContext,
+    positions: Sequence[int] | None = None,
 ) -> PreparedBatch:
-    """Decide a batch against what ``conn`` sees, writing nothing; 422 if any item is bad."""
+    """Decide a batch against what ``conn`` sees, writing nothing; 422 if any item is bad.
+
+    ``positions``: each item's index in the request, when ``items`` are the valid part of a
+    larger batch (errors name the request's indices).
+    """
     check_batch_size(len(items), ctx.max_batch_items)
+    at = positions if positions is not None else range(len(items))
     errors: list[dict[str, Any]] = []
+
+    def refuse(i: int, exc: ServiceError | PolicyError) -> None:
+        errors.append(item_problem(at[i], exc))
+
     seen: dict[str, int] = {}
     for i, req in enumerate(items):
         if req.request_id in seen:
-            errors.append(
-                {
-                    "code": "duplicate_request_id",
-                    "message": f"request_id {req.request_id!r} is also used by "
-                    f"items.{seen[req.request_id]}",
-                    "field": f"items.{i}.request_id",
-                }
+            first = at[seen[req.request_id]]
+            refuse(
+                i,
+                Conflict(
+                    f"request_id {req.request_id!r} is also used by items.{first}",
+                    code="duplicate_request_id",
+                    field="request_id",
+                ),
             )
         else:
             seen[req.request_id] = i
@@ -564,7 +594,7 @@ def prepare_batch(
             try:
                 responses[i] = _replay(row, items[i], fingerprints[i])
             except Conflict as exc:
-                errors.append(_item_error(i, exc))
+                refuse(i, exc)
 
     new_by_policy: dict[str, list[int]] = {}
     for i, req in enumerate(items):
@@ -580,31 +610,24 @@ def prepare_batch(
             switches[name] = _last_switch(conn, name)
             plans[name] = plan = resolve_plan(conn, name, ctx)
         except ServiceError as exc:
-            errors.extend(_item_error(i, exc) for i in members)
+            for i in members:
+                refuse(i, exc)
             continue
         rule_ok: dict[str, bool] = {}
         for i in members:
             req = items[i]
             try:
                 check_score(plan.document, req.score)
-                g = plan.document.group_key(req.attributes)  # type: ignore[arg-type]
+                g = plan.document.group_key(req.attributes)
                 if g not in rule_ok:
                     rule_ok[g] = resolve_rule_key(plan.document, g) is not None
                 if not rule_ok[g]:
                     rule_for(plan.document, g)  # raises the engine's UnknownGroup
                 groups[i] = g
             except PolicyError as exc:
-                errors.append(_item_error(i, exc))
+                refuse(i, exc)
     if errors:
-        errors.sort(key=lambda e: _item_index(e["field"]))
-        first = errors[0]
-        raise Unprocessable(
-            f"{len(errors)} item(s) refused, nothing was written; first: {first['field']}: "
-            f"{first['message']}",
-            code="invalid_batch",
-            field=first["field"],
-            details=errors,
-        )
+        raise BatchRefused(errors, len(items))
 
     issued_at = _now()
     rows_out: list[dict[str, Any]] = []
@@ -617,13 +640,6 @@ def prepare_batch(
             responses[i] = out
     versions = {name: (plan.version, plan.shadow_version) for name, plan in plans.items()}
     return PreparedBatch([r for r in responses if r is not None], rows_out, versions, switches)
-
-
-def _item_index(field: str | None) -> int:
-    try:
-        return int((field or "").split(".")[1])
-    except (IndexError, ValueError):
-        return 0
 
 
 def _evaluate_policy_rows(
@@ -648,7 +664,7 @@ def _evaluate_policy_rows(
         sgroups: list[str] = []
         for j, r in enumerate(reqs):
             try:
-                g = plan.shadow.group_key(r.attributes)  # type: ignore[arg-type]
+                g = plan.shadow.group_key(r.attributes)
             except PolicyError:
                 continue
             if (

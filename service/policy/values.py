@@ -1,0 +1,42 @@
+"""The bounded value types of the policy document: numbers and text a version may hold.
+
+Every bound keeps what the service computes from a document finite and storable: scores and
+costs stay far from the largest double, counts are exact as doubles, and text holds no control
+characters and fits the decision log's columns.
+"""
+
+from __future__ import annotations
+
+from typing import Annotated
+
+from pydantic import Field, StringConstraints
+
+from service.policy.attributes import MAX_GROUP_KEY_CHARS, TEXT_PATTERN
+
+MAX_SCORE_MAGNITUDE = 1e12
+"""Largest |score| a policy may name (range, steps, bin edges): differences stay finite."""
+MAX_COST = 1e12
+"""Largest error cost: sums of costs over any number of cases stay finite."""
+MAX_COUNT = 2**53 - 1
+"""Largest count: the largest integer a double holds exactly (counts become rates)."""
+MAX_LABEL_CHARS = 256
+"""Longest label or group key (the decision log's text columns hold 256 characters)."""
+MAX_PROSE_CHARS = 2000
+"""Longest description or explanation."""
+
+Probability = Annotated[float, Field(ge=0.0, le=1.0, allow_inf_nan=False)]
+FiniteFloat = Annotated[float, Field(allow_inf_nan=False)]
+ScoreValue = Annotated[
+    float, Field(ge=-MAX_SCORE_MAGNITUDE, le=MAX_SCORE_MAGNITUDE, allow_inf_nan=False)
+]
+NonNegative = Annotated[float, Field(ge=0.0, allow_inf_nan=False)]
+Cost = Annotated[float, Field(ge=0.0, le=MAX_COST, allow_inf_nan=False)]
+Count = Annotated[int, Field(ge=0, le=MAX_COUNT)]
+Slug = Annotated[str, Field(pattern=r"^[a-z0-9][a-z0-9._-]{0,63}$")]
+Label = Annotated[
+    str, StringConstraints(min_length=1, max_length=MAX_LABEL_CHARS, pattern=TEXT_PATTERN)
+]
+Prose = Annotated[str, StringConstraints(max_length=MAX_PROSE_CHARS, pattern=TEXT_PATTERN)]
+GroupKey = Annotated[
+    str, StringConstraints(min_length=1, max_length=MAX_GROUP_KEY_CHARS, pattern=TEXT_PATTERN)
+]
