@@ -61,6 +61,7 @@ def test_html_is_self_contained_with_alerts_and_the_family_first() -> None:
     assert "42 U.S.C. 2000e-2(l)" in html
     # Status words are spelled as in the JSON.
     assert ">too-few<" in html and ">breach<" in html
+    assert f"issued from {s.cohort.from_} until {s.cohort.until}" in html
     assert "INTERNAL VIEW" not in html
     assert "INTERNAL VIEW" in to_html(result().internal)
 

@@ -201,3 +201,24 @@ def test_auditor_settings_are_recorded() -> None:
     assert (v.reference_group, v.reference_source) == ("b", "auditor")
     assert check(s, "parity", "a", "tpr").against == "b"
     assert s.settings.tolerance == 0.3 and s.settings.reference_group == "b"
+
+
+def test_a_checks_figures_are_withheld_only_for_its_own_groups_hidden_counts() -> None:
+    # Two-sample promises for a and c; c is small (its TPR counts are hidden), a is large.
+    data = policy().model_dump(mode="json", by_alias=True, exclude_none=True)
+    data["targets"]["groups"]["a"]["out_of_sample"] = {
+        "n": 20000,
+        "positives": 4000,
+        "tp": 2790.5,
+        "fp": 3010.25,
+    }
+    data["targets"]["groups"]["c"] = {
+        "n": 400, "action_rate": 0.3, "tpr": 0.6, "fpr": 0.2,
+        "out_of_sample": {"n": 400, "positives": 100, "tp": 60.0, "fp": 60.0},
+    }  # fmt: skip
+    s = snapshot(doc=PolicyDocument.model_validate(data))
+    a_promise = check(s, "promise", "a", "action_rate")
+    assert a_promise.estimate.value == pytest.approx(3000 / 10000)
+    assert a_promise.evidence is not None
+    c_promise = check(s, "promise", "c", "action_rate")
+    assert c_promise.estimate.withheld == "small-cell"  # c's action count 8 is "<11"

@@ -312,7 +312,7 @@ def version_checks(
                     low=kc / nc + d_low,
                     high=kc / nc + d_high,
                     evidence=evidence,
-                    figures_from=figures,
+                    figures_from=own,
                 )
             )
     return checks
