@@ -187,31 +187,51 @@ def version_checks(
     context: MonthContext,
 ) -> list[Check]:
     """Every check of one version, tested where it can be (statuses not yet decided)."""
-    targets = document.targets
-    if targets is None:
+    if document.targets is None:
         return []
-    fav, obs = document.favourable, document.outcome_observed_after
-    eps = settings.tolerance
-    checks: list[Check] = []
-    outside = {g: t.outside_promise for g, t in targets.groups.items() if t.outside_promise}
+    return [
+        *_parity_checks(version, document, cells, settings, context),
+        *_four_fifths_checks(version, document, cells, settings, context),
+        *_promise_checks(version, document, cells, settings, context),
+    ]
 
-    ref = settings.reference_group
+
+def _outside(document: PolicyDocument) -> set[str]:
+    targets = document.targets
+    assert targets is not None
+    return {g for g, t in targets.groups.items() if t.outside_promise}
+
+
+def _parity_checks(
+    version: int,
+    document: PolicyDocument,
+    cells: Mapping[str, CellCounts],
+    settings: VersionSettings,
+    context: MonthContext,
+) -> list[Check]:
+    targets = document.targets
+    assert targets is not None
+    fav, obs = document.favourable, document.outcome_observed_after
+    eps, ref = settings.tolerance, settings.reference_group
+    outside = _outside(document)
+    checks: list[Check] = []
+    if ref is None:
+        return checks
     for metric in CRITERION_METRICS[targets.criterion]:
         for g in sorted(cells):
-            if g == ref or ref is None:
+            if g == ref:
                 continue
-            band = Band(-eps, eps)
-            base = Check(version, CheckKind.PARITY, metric, g, ref, band)
+            base = Check(version, CheckKind.PARITY, metric, g, ref, Band(-eps, eps))
             if g in outside:
                 checks.append(replace(base, status=Status.OUTSIDE_PROMISE))
                 continue
-            k1, n1, num, den = _counts(cells[g], metric, fav)
             if ref not in cells:
                 checks.append(replace(base, status=Status.TOO_FEW))
                 continue
+            k1, n1, num, den = _counts(cells[g], metric, fav)
             k2, n2, _, _ = _counts(cells[ref], metric, fav)
-            status = _untested(metric, obs, context, (n1, n2))
             figures = ((g, num), (g, den), (ref, num), (ref, den))
+            status = _untested(metric, obs, context, (n1, n2))
             if status is not None:
                 checks.append(replace(base, status=status, figures_from=figures))
                 continue
@@ -229,52 +249,87 @@ def version_checks(
                     figures_from=figures,
                 )
             )
+    return checks
 
-    if targets.criterion is Criterion.FOUR_FIFTHS and settings.comparator_group is not None:
-        comp = settings.comparator_group
-        for g in sorted(cells):
-            if g == comp:
-                continue
-            band = Band(FOUR_FIFTHS_FLOOR, None)
-            base = Check(version, CheckKind.FOUR_FIFTHS, "favourable_rate", g, comp, band)
-            if g in outside:
-                checks.append(replace(base, status=Status.OUTSIDE_PROMISE))
-                continue
-            if comp not in cells:
-                checks.append(replace(base, status=Status.TOO_FEW))
-                continue
-            k1, n1, num, den = _counts(cells[g], "favourable_rate", fav)
-            k2, n2, _, _ = _counts(cells[comp], "favourable_rate", fav)
-            figures = ((g, num), (g, den), (comp, num), (comp, den))
-            status = _untested("favourable_rate", obs, context, (n1, n2))
-            if status is None and k2 == 0:
-                status = Status.TOO_FEW  # no favourable decision at all in the comparator
-            if status is not None:
-                checks.append(replace(base, status=status, figures_from=figures))
-                continue
-            low, high = katz_ratio_interval(k1, n1, k2, n2)
-            evidence = _evidence(
-                Procedure.LOG_RATIO, ratio_floor_evidence(k1, n1, k2, n2, FOUR_FIFTHS_FLOOR)
-            )
-            checks.append(
-                replace(
-                    base,
-                    estimate=(k1 / n1) / (k2 / n2),
-                    low=low,
-                    high=high,
-                    evidence=evidence,
-                    figures_from=figures,
-                )
-            )
 
+def _four_fifths_checks(
+    version: int,
+    document: PolicyDocument,
+    cells: Mapping[str, CellCounts],
+    settings: VersionSettings,
+    context: MonthContext,
+) -> list[Check]:
+    targets = document.targets
+    assert targets is not None
+    comp = settings.comparator_group
+    if targets.criterion is not Criterion.FOUR_FIFTHS or comp is None:
+        return []
+    fav, obs = document.favourable, document.outcome_observed_after
+    outside = _outside(document)
+    checks: list[Check] = []
+    for g in sorted(cells):
+        if g == comp:
+            continue
+        band = Band(FOUR_FIFTHS_FLOOR, None)
+        base = Check(version, CheckKind.FOUR_FIFTHS, "favourable_rate", g, comp, band)
+        if g in outside:
+            checks.append(replace(base, status=Status.OUTSIDE_PROMISE))
+            continue
+        if comp not in cells:
+            checks.append(replace(base, status=Status.TOO_FEW))
+            continue
+        k1, n1, num, den = _counts(cells[g], "favourable_rate", fav)
+        k2, n2, _, _ = _counts(cells[comp], "favourable_rate", fav)
+        figures = ((g, num), (g, den), (comp, num), (comp, den))
+        status = _untested("favourable_rate", obs, context, (n1, n2))
+        if status is None and k2 == 0:
+            status = Status.TOO_FEW  # no favourable decision at all in the comparator
+        if status is not None:
+            checks.append(replace(base, status=status, figures_from=figures))
+            continue
+        low, high = katz_ratio_interval(k1, n1, k2, n2)
+        evidence = _evidence(
+            Procedure.LOG_RATIO, ratio_floor_evidence(k1, n1, k2, n2, FOUR_FIFTHS_FLOOR)
+        )
+        checks.append(
+            replace(
+                base,
+                estimate=(k1 / n1) / (k2 / n2),
+                low=low,
+                high=high,
+                evidence=evidence,
+                figures_from=figures,
+            )
+        )
+    return checks
+
+
+def _promise_checks(
+    version: int,
+    document: PolicyDocument,
+    cells: Mapping[str, CellCounts],
+    settings: VersionSettings,
+    context: MonthContext,
+) -> list[Check]:
+    targets = document.targets
+    assert targets is not None
+    fav, obs = document.favourable, document.outcome_observed_after
+    eps = settings.tolerance
+    checks: list[Check] = []
     for g in sorted(targets.groups):
         if g not in cells:
             continue
         target = targets.groups[g]
         for metric in PROMISED_METRICS:
             promised = float(getattr(target, metric))
-            band = Band(promised - eps, promised + eps)
-            base = Check(version, CheckKind.PROMISE, metric, g, "promised", band)
+            base = Check(
+                version,
+                CheckKind.PROMISE,
+                metric,
+                g,
+                "promised",
+                Band(promised - eps, promised + eps),
+            )
             k1, n1, num, den = _counts(cells[g], metric, fav)
             own = ((g, num), (g, den))
             calibration = _calibration_fraction(target, metric)
