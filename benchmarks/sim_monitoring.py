@@ -10,7 +10,10 @@ statistic that month is at or above its limit (``Monitor.signal``).
 - **False alarms**: the probability that any chart of the version signals in any of the first
   12 monthly audits of a policy in control, (a) with every true TPR gap 0 and (b) with every
   non-reference group's TPR at the edge of the tolerance (+0.05 and -0.05 in turn); Wilson 95%
-  intervals. Design bound: the audit plan's level, 0.05.
+  intervals. Design bound: the audit plan's level, 0.05. To save time the twelfth audit is
+  computed in full and an earlier one only for the groups with a chart near a limit
+  (``year_signal``); the first ``--verify-years`` years of each row compute every audit in
+  full and the script stops if the answers differ.
 - **The single-month test at the same yearly false-alarm rate**: in-control months at the edge
   are run through ``version_checks`` + ``decide``; Holm shows a breach in a month iff the
   smallest Holm-adjusted outside p-value is at most the level, so the monthly level whose
@@ -24,12 +27,13 @@ statistic that month is at or above its limit (``Monitor.signal``).
 
 To keep the run time down, the detection runs call ``version_monitors`` on a history holding
 only the reference group and the group with the gap, with the level scaled by 2 / 16 (two
-charts instead of sixteen): that group's charts then get exactly the inputs and the
-per-chart false-alarm bound (level / 16) of the full call. The script checks this on the first
-months of every group's first run (``--verify``) and stops if any figure differs.
+charts instead of sixteen; ``group_monitors``): that group's charts then get exactly the inputs
+and the per-chart false-alarm bound (level / 16) of the full call. The script checks this on
+the first months of every group's first run and stops if any figure differs.
 
-    .venv/bin/python benchmarks/sim_monitoring.py [--seed N] [--years 500] [--runs 200]
-        [--cap 240] [--calibration-months 20000] [--window 24] [--quick] [--json out.json]
+    .venv/bin/python benchmarks/sim_monitoring.py [--seed N] [--years 600] [--verify-years 20]
+        [--runs 200] [--cap 240] [--calibration-months 20000] [--pair-years 2000]
+        [--window 24] [--quick] [--json out.json]
 """
 
 from __future__ import annotations
@@ -39,7 +43,9 @@ import json
 import math
 import sys
 import time
-from collections.abc import Mapping, Sequence
+from bisect import bisect_right
+from collections.abc import Callable, Collection, Mapping, Sequence
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -70,7 +76,14 @@ from sim_scenario import (
     wilson,
 )
 
-from service.audit.monitoring import HORIZON, WINDOW, Monitor, MonthCounts, version_monitors
+from service.audit.monitoring import (
+    HORIZON,
+    WINDOW,
+    ChartSide,
+    Monitor,
+    MonthCounts,
+    version_monitors,
+)
 from service.audit.month import Month
 from service.audit.verdicts import DEFAULT_MIN_COUNT, Check, MonthContext, decide, version_checks
 from service.audit.version_settings import VersionSettings, resolve_settings
@@ -95,26 +108,178 @@ def monitors(history: Sequence[MonthCounts], window: int, level: float = LEVEL) 
     return version_monitors(1, DOC, settings_for(history[-1].cells), looked_at, level)
 
 
-def false_alarm_years(
-    rng: np.random.Generator, years: int, truth: Mapping[str, Truth], window: int
-) -> tuple[int, int, dict[str, int]]:
-    """(years with any signal in the first 12 audits, charts per call, signals by group)."""
-    hits, charts, by_group = 0, 0, {}
-    for _ in range(years):
-        history: list[MonthCounts] = []
-        signalled = False
-        for month in range(HORIZON):
-            history.append(MonthCounts(START.shifted(month), True, draw_cells(rng, VOLUME, truth)))
-            ms = monitors(history, window)
-            charts = max(charts, sum(len(m.sides) for m in ms))
-            for m in ms:
-                if m.signal:
-                    signalled = True
-                    by_group[m.group] = by_group.get(m.group, 0) + 1
-            if signalled:
+def restricted(
+    history: Sequence[MonthCounts], groups: Collection[str], scores: bool = True
+) -> list[MonthCounts]:
+    """``history`` with the cells of the reference and ``groups`` only, and the score sums of
+    ``groups`` only (none without ``scores``)."""
+    keep = {REFERENCE, *groups}
+    return [
+        MonthCounts(
+            m.month,
+            m.mature,
+            {g: c for g, c in m.cells.items() if g in keep},
+            {g: ss for g, ss in m.scores.items() if g in groups} if scores else {},
+        )
+        for m in history
+    ]
+
+
+def chart_count(history: Sequence[MonthCounts]) -> int:
+    """The charts ``version_monitors`` gives the scenario's version over ``history``: above and
+    below for each group seen but the reference, and two outcome charts for each group seen
+    with score sums (no group is outside the promise)."""
+    seen = {g for m in history for g in m.cells}
+    scored = {g for m in history for g in m.scores} & seen
+    return 2 * len(seen - {REFERENCE}) + 2 * len(scored)
+
+
+def group_monitors(
+    history: Sequence[MonthCounts], groups: Collection[str], window: int, scores: bool = True
+) -> list[Monitor]:
+    """The monitors of ``groups`` as the full call computes them (their outcome charts only
+    with ``scores``): a call on the restricted history, with the level scaled by its charts
+    over the full call's, gives every chart the full call's inputs and per-chart bound."""
+    looked_at = history[-window:] if window > 0 else history
+    part = restricted(looked_at, groups, scores)
+    ms = monitors(part, 0, LEVEL * chart_count(part) / chart_count(looked_at))
+    return [m for m in ms if m.group in groups]
+
+
+def verify(
+    history: Sequence[MonthCounts], groups: Collection[str], window: int, scores: bool = True
+) -> None:
+    """Stop unless the restricted call gives exactly the full call's monitors of ``groups``."""
+    fast = group_monitors(history, groups, window, scores)
+    kinds = {_key(m) for m in fast}
+    full = [m for m in monitors(history, window) if m.group in groups and _key(m) in kinds]
+    if sorted(full, key=_key) != sorted(fast, key=_key):
+        raise RuntimeError(f"restricted call differs from the full call for {sorted(groups)}")
+
+
+def _key(m: Monitor) -> tuple[str, str]:
+    return (m.kind.value, m.group)
+
+
+SCREEN = 0.25
+"""An audit month before the twelfth is computed in full only when some chart's statistic that
+month reaches this share of the chart's limit at the twelfth audit (see ``year_signal``)."""
+
+
+@dataclass
+class Screening:
+    """What the screened false-alarm years did: audits computed in full beyond the twelfth,
+    years verified against every audit in full, and the smallest ratio seen there of a chart's
+    limit at an earlier audit to its limit at the twelfth."""
+
+    exact_audits: int = 0
+    verified_years: int = 0
+    smallest_ratio: float = math.inf
+
+
+def _statistic_at(m: Monitor, side: ChartSide, month: str) -> float | None:
+    """The side's statistic as the audit of ``month`` shows it: its value at the latest charted
+    month up to ``month`` (None: nothing charted yet)."""
+    j = bisect_right(m.months, month)
+    return side.path[j - 1] if j else None
+
+
+def _signalling(ms: Sequence[Monitor]) -> list[str]:
+    return sorted({f"{m.kind.value}/{m.group}" for m in ms if m.signal})
+
+
+def year_signal(
+    history: Sequence[MonthCounts], window: int, screening: Screening, verify_all: bool
+) -> tuple[int | None, list[str], int]:
+    """The first of the year's audits (1-12) at which any chart of the version signals, the
+    charts that signal then, and the number of charts.
+
+    A chart signals at audit ``t`` when its statistic at ``t`` is at or above its limit at
+    ``t``. Each month's increment depends on that month alone, so within the window the
+    statistics of audit ``t`` are the first entries of the twelfth audit's paths (checked in
+    verified years). Audit 12 is computed in full. At an earlier audit, only the groups with a
+    chart whose statistic there reaches ``SCREEN`` times its limit at audit 12 are computed,
+    by a restricted call (``group_monitors``); any other chart could signal only with a limit
+    below ``SCREEN`` times the twelfth's. ``verify_all`` computes every audit in full, checks
+    that the screened answer and the restricted calls agree with it, and records the smallest
+    ratio of a limit to the twelfth's (the script stops when one falls below ``SCREEN``).
+    """
+    last = monitors(history, window)
+    charts = sum(len(m.sides) for m in last)
+    first: int | None = None
+    which: list[str] = []
+    for t in range(1, len(history)):
+        month = str(history[t - 1].month)
+        flagged = {
+            m.group
+            for m in last
+            for side in m.sides
+            if (v := _statistic_at(m, side, month)) is not None and v >= SCREEN * side.limit
+        }
+        if flagged:
+            screening.exact_audits += 1
+            ms = group_monitors(history[:t], flagged, window)
+            if verify_all:
+                verify(history[:t], flagged, window)
+            if any(m.signal for m in ms):
+                first, which = t, _signalling(ms)
                 break
-        hits += signalled
-    return hits, charts, by_group
+    if first is None and any(m.signal for m in last):
+        first, which = len(history), _signalling(last)
+    if verify_all:
+        screening.verified_years += 1
+        full_first, full_which = None, []
+        sides = {(m.kind, m.group, s.side): (m, s) for m in last for s in m.sides}
+        for t in range(1, len(history) + 1):
+            ms = monitors(history[:t], window) if t < len(history) else last
+            for m in ms:
+                for s in m.sides:
+                    m12, s12 = sides[(m.kind, m.group, s.side)]
+                    j = len(m.months)
+                    if m.months != m12.months[:j] or any(
+                        abs(a - b) > 1e-9 for a, b in zip(s.path, s12.path[:j], strict=True)
+                    ):
+                        raise RuntimeError(f"audit {t}: {m.group}'s path is not a prefix")
+                    screening.smallest_ratio = min(screening.smallest_ratio, s.limit / s12.limit)
+            if full_first is None and any(m.signal for m in ms):
+                full_first, full_which = t, _signalling(ms)
+        if (full_first, full_which) != (first, which) or screening.smallest_ratio < SCREEN:
+            raise RuntimeError(
+                f"screening differs from the full audits: {first} {which} against "
+                f"{full_first} {full_which} (smallest limit ratio {screening.smallest_ratio})"
+            )
+    return first, which, charts
+
+
+def false_alarm_years(
+    rng: np.random.Generator,
+    years: int,
+    draw: Callable[[np.random.Generator, int], MonthCounts],
+    window: int,
+    verify_years: int,
+) -> tuple[int, int, dict[str, int], Screening]:
+    """(years with any signal in the first 12 audits, charts per call, the charts signalling at
+    the first such audit by kind/group, the screening's record)."""
+    hits, charts, by_chart = 0, 0, {}
+    screening = Screening()
+    for year in range(years):
+        history = [draw(rng, month) for month in range(HORIZON)]
+        first, which, n = year_signal(history, window, screening, year < verify_years)
+        charts = max(charts, n)
+        if first is not None:
+            hits += 1
+            for name in which:
+                by_chart[name] = by_chart.get(name, 0) + 1
+    return hits, charts, by_chart, screening
+
+
+def plain_month(truth: Mapping[str, Truth]) -> Callable[[np.random.Generator, int], MonthCounts]:
+    """Months of ``truth`` without score sums (the version's 16 gap charts only)."""
+
+    def draw(rng: np.random.Generator, month: int) -> MonthCounts:
+        return MonthCounts(START.shifted(month), True, draw_cells(rng, VOLUME, truth))
+
+    return draw
 
 
 def smallest_p(decided: Sequence[Check], group: str | None = None) -> float:
@@ -141,31 +306,6 @@ def smallest_adjusted_p(
     return out
 
 
-def restricted(history: Sequence[MonthCounts], group: str) -> list[MonthCounts]:
-    keep = (REFERENCE, group)
-    return [
-        MonthCounts(m.month, m.mature, {g: c for g, c in m.cells.items() if g in keep})
-        for m in history
-    ]
-
-
-def group_monitor(history: Sequence[MonthCounts], group: str, window: int) -> Monitor | None:
-    """``group``'s monitor as the full call computes it (see the module docstring)."""
-    looked_at = history[-window:] if window > 0 else history
-    charts_full = 2 * (len({g for m in looked_at for g in m.cells}) - 1)
-    ms = monitors(restricted(looked_at, group), 0, LEVEL * 2 / charts_full)
-    return next((m for m in ms if m.group == group), None)
-
-
-def verify(history: Sequence[MonthCounts], group: str, window: int) -> None:
-    full = next((m for m in monitors(history, window) if m.group == group), None)
-    fast = group_monitor(history, group, window)
-    if full != fast:
-        raise RuntimeError(
-            f"restricted call differs from the full call for {group}:\n{full}\n{fast}"
-        )
-
-
 def detection_run(
     rng: np.random.Generator,
     group: str,
@@ -186,9 +326,8 @@ def detection_run(
         history.append(MonthCounts(START.shifted(month - 1), True, cells))
         if chart == math.inf:
             if check and month <= 3:
-                verify(history, group, window)
-            m = group_monitor(history, group, window)
-            if m is not None and m.signal:
+                verify(history, {group}, window)
+            if any(m.signal for m in group_monitors(history, {group}, window)):
                 chart = month
         if math.inf in tests:
             checks = version_checks(1, DOC, cells, settings_for(cells), CONTEXT)
@@ -239,7 +378,10 @@ def cell(values: list[float], cap: int) -> str:
 def main(argv: Sequence[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--seed", type=int, default=DEFAULT_SEED, help="base seed")
-    parser.add_argument("--years", type=int, default=500, help="simulated years per scenario")
+    parser.add_argument("--years", type=int, default=600, help="simulated years per scenario")
+    parser.add_argument(
+        "--verify-years", type=int, default=20, help="years per scenario with every audit in full"
+    )
     parser.add_argument("--runs", type=int, default=200, help="detection runs per group")
     parser.add_argument("--cap", type=int, default=240, help="months before a run is censored")
     parser.add_argument(
@@ -255,6 +397,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     parser.add_argument("--json", type=Path, default=None, help="also write the figures here")
     args = parser.parse_args(argv)
     years = 2 if args.quick else args.years
+    verify_years = 1 if args.quick else args.verify_years
     runs = 2 if args.quick else args.runs
     cap = 12 if args.quick else args.cap
     calibration_months = 50 if args.quick else args.calibration_months
@@ -277,7 +420,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     for index, (name, truth) in enumerate(scenarios.items()):
         t0 = time.perf_counter()
         rng = np.random.default_rng([args.seed, 1, index])
-        hits, charts, by_group = false_alarm_years(rng, years, truth, args.window)
+        hits, charts, by_chart, screening = false_alarm_years(
+            rng, years, plain_month(truth), args.window, verify_years
+        )
         alarms[name] = hits / years
         results["false_alarms"].append(
             {
@@ -285,11 +430,21 @@ def main(argv: Sequence[str] | None = None) -> int:
                 "years": years,
                 "charts": charts,
                 "signals": hits,
-                "by_group": by_group,
+                "by_chart": by_chart,
+                "exact_audits": screening.exact_audits,
+                "verified_years": screening.verified_years,
+                "smallest_limit_ratio": screening.smallest_ratio,
                 "seconds": time.perf_counter() - t0,
             }
         )
         print(f"| {name} | {years} | {charts} | {wilson(hits, years)} | {LEVEL} |", flush=True)
+    for part in results["false_alarms"]:
+        print(
+            f"- gaps {part['gaps']}: charts signalling first (years) {part['by_chart']}; "
+            f"{part['exact_audits']} earlier audits computed for their flagged groups; "
+            f"{part['verified_years']} years verified with every audit in full (smallest "
+            f"ratio of an earlier limit to the twelfth's {part['smallest_limit_ratio']:.3f})"
+        )
 
     t0 = time.perf_counter()
     print(

@@ -30,15 +30,24 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+import numpy.typing as npt
 import scipy
+from scipy.optimize import brentq
 
 ROOT = Path(__file__).resolve().parents[1]
 if str(ROOT) not in sys.path:
     sys.path.insert(0, str(ROOT))
 
-from service.audit.realized import CellCounts  # noqa: E402
-from service.demo.fernhollow import _COMMUNITY_SHARE, _LANGUAGE_SHARE, COMMUNITIES, LANGUAGES  # noqa: E402
+from service.audit.realized import BINS, CellCounts, ScoreSums  # noqa: E402
+from service.demo.fernhollow import (  # noqa: E402
+    _COMMUNITY_SHARE,
+    _LANGUAGE_SHARE,
+    _SCORE_NOISE_SD,
+    COMMUNITIES,
+    LANGUAGES,
+)
 from service.policy.document import PolicyDocument  # noqa: E402
+from service.stats.calibration import PowerSums  # noqa: E402
 from service.stats.proportions import wilson_interval  # noqa: E402
 
 DEFAULT_SEED = 20261205
@@ -150,6 +159,108 @@ def draw_calibration(
         fp = int(rng.binomial(n - positives, truth[g].fpr))
         out[g] = {"n": int(n), "positives": positives, "tp": tp, "fp": fp}
     return out
+
+
+# The score model of the simulations with scores. The demo generator's score for community c is
+# sigmoid(b_c + k_c (L - b_c + N(0, s_c^2))) with L - b_c ~ N(0, 1) and k_c = 1 / (1 + s_c^2), so
+# its logit is normal with sd 1 / sqrt(1 + s_c^2) (0.94, 0.91 and 0.67). Each group keeps its
+# community's spread, with the location that makes its mean score the group's prevalence above.
+SCORE_DIGITS = 4
+"""Scores are rounded to four digits, as the demo generator rounds them."""
+_NODES, _WEIGHTS = np.polynomial.hermite_e.hermegauss(80)
+
+
+def _mean_score(location: float, sd: float) -> float:
+    """E[sigmoid(location + sd Z)], Z standard normal (Gauss-Hermite quadrature)."""
+    values = 1.0 / (1.0 + np.exp(-(location + sd * _NODES)))
+    return float(np.sum(_WEIGHTS * values) / np.sum(_WEIGHTS))
+
+
+SCORE_SD: dict[str, float] = {
+    g: float(1.0 / math.sqrt(1.0 + _SCORE_NOISE_SD[COMMUNITIES.index(g.split("|")[0])] ** 2))
+    for g in GROUPS
+}
+SCORE_LOCATION: dict[str, float] = {
+    g: float(brentq(lambda m, g=g: _mean_score(m, SCORE_SD[g]) - PREVALENCE[g], -10.0, 10.0))
+    for g in GROUPS
+}
+FloatArray = npt.NDArray[np.float64]
+
+
+def draw_scores(rng: np.random.Generator, group: str, n: int, factor: float = 1.0) -> FloatArray:
+    """``n`` scores of ``group``: sigmoid of a normal logit (above), rounded to four digits;
+    with ``factor`` every score is multiplied by it, rounded again and clipped at 1."""
+    logits = SCORE_LOCATION[group] + SCORE_SD[group] * rng.standard_normal(n)
+    scores: FloatArray = np.round(1.0 / (1.0 + np.exp(-logits)), SCORE_DIGITS)
+    if factor != 1.0:
+        scores = np.minimum(np.round(scores * factor, SCORE_DIGITS), 1.0)
+    return scores
+
+
+def draw_outcomes(
+    rng: np.random.Generator, scores: FloatArray, odds: float = 1.0
+) -> npt.NDArray[np.int8]:
+    """Outcomes with the scores' odds times ``odds``: Bernoulli(``odds s / (1 - s + odds s)``);
+    ``odds`` 1 is a calibrated score."""
+    q = scores if odds == 1.0 else odds * scores / (1.0 - scores + odds * scores)
+    return (rng.random(scores.size) < q).astype(np.int8)
+
+
+def score_sums(scores: FloatArray, outcomes: npt.NDArray[np.int8]) -> ScoreSums:
+    """The sums the audit's query gives for these cases (``service/audit/score_sums.py``): power
+    sums, sum ln(1 + s), sum ln(1 - s / 2), and per ten-wide bin (``floor(10 s)``, a score of 1
+    in the top bin) the cases, positives and score sum. Scores outside [0, 1] count nowhere."""
+    keep = (scores >= 0.0) & (scores <= 1.0)
+    s, y = scores[keep], outcomes[keep]
+    bins = np.where(s >= 1.0, BINS - 1, np.floor(s * BINS)).astype(np.int64)
+    return ScoreSums(
+        power=PowerSums.from_rows(s, y),
+        log_double=float(np.sum(np.log1p(s))),
+        log_half=float(np.sum(np.log1p(-0.5 * s))),
+        bin_counts=[int(v) for v in np.bincount(bins, minlength=BINS)],
+        bin_positives=[int(v) for v in np.bincount(bins, weights=y, minlength=BINS)],
+        bin_score_sums=[float(v) for v in np.bincount(bins, weights=s, minlength=BINS)],
+    )
+
+
+def draw_scored_month(
+    rng: np.random.Generator,
+    volume: int,
+    truth: Mapping[str, Truth],
+    odds: Mapping[str, float] | None = None,
+    sizes: Mapping[str, int] | None = None,
+    only: tuple[str, ...] = GROUPS,
+) -> tuple[dict[str, CellCounts], dict[str, ScoreSums]]:
+    """One month's counts with the score sums of each group's cases with an outcome.
+
+    As :func:`draw_cells`, except that each case with an outcome draws a score
+    (:func:`draw_scores`) and its outcome from it (:func:`draw_outcomes`, with the group's
+    ``odds``, 1 unless given), so the group's positives are the month's outcomes of its scores
+    (with calibrated scores the positives are ``Bin(observed, prevalence)`` as in
+    :func:`draw_cells`). Actions follow the true TPR and FPR given the outcome; the cases
+    without an outcome are acted on at the in-control action rate.
+    """
+    counts = rng.multinomial(volume, [SHARES[g] for g in GROUPS])
+    cells: dict[str, CellCounts] = {}
+    sums: dict[str, ScoreSums] = {}
+    for g, n_drawn in zip(GROUPS, counts, strict=True):
+        n = int(sizes[g]) if sizes is not None and g in sizes else int(n_drawn)
+        if n == 0 or g not in only:
+            continue
+        t = truth[g]
+        observed = int(rng.binomial(n, COVERAGE))
+        scores = draw_scores(rng, g, observed)
+        outcomes = draw_outcomes(rng, scores, 1.0 if odds is None else odds.get(g, 1.0))
+        positives = int(outcomes.sum())
+        tp = int(rng.binomial(positives, t.tpr))
+        fp = int(rng.binomial(observed - positives, t.fpr))
+        hidden = int(rng.binomial(n - observed, t.action_rate(PREVALENCE[g])))
+        cells[g] = CellCounts(
+            n=n, actions=tp + fp + hidden, observed=observed, positives=positives, tp=tp, fp=fp
+        )
+        if observed:
+            sums[g] = score_sums(scores, outcomes)
+    return cells, sums
 
 
 def document(

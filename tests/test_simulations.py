@@ -119,3 +119,82 @@ def test_sim_promises_reports_promise_errors_per_rate_and_group_and_the_true_gap
     assert len(gaps) == len(figures["gaps"]) == 5
     assert all(r[-1].endswith(f"/{figures['samples']}") for r in gaps)
     assert "run time" in text and "seed" in text
+
+
+def test_sim_calibration_reports_the_familys_size_and_power_by_group_size(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    figures, text = run("sim_calibration", tmp_path, capsys)
+    size = table_rows(text, "| volume | months |")
+    assert [r[0] for r in size] == ["2,000", "20,000"]
+    assert all(len(r) == 6 for r in size)
+    for row in figures["size"]:
+        assert 0 <= row["holm"] <= row["months"] and 0 <= row["by"] <= row["months"]
+        assert 0 < row["tested_per_month"] <= 9
+    power = table_rows(text, "| group cases |")
+    assert [r[0] for r in power] == ["50", "100", "192", "384", "1,000", "2,000", "5,000"]
+    assert all(len(r) == 10 for r in power)
+    for row in figures["power"]:
+        assert row["holm"] <= row["tested"] <= row["months"]
+        assert row["positives"] > row["expected"] > 0  # odds 1.5: more outcomes than scored
+    assert "run time" in text and "seed" in text
+
+
+def test_sim_score_charts_reports_false_alarms_and_both_detection_tables(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    figures, text = run("sim_score_charts", tmp_path, capsys)
+    alarms = table_rows(text, "| true TPR gaps | scores |")
+    assert [r[0] for r in alarms] == ["0", "at the edge (+-0.05)"]
+    assert all(r[3] == "34" for r in alarms)  # 16 gap charts + 2 outcome charts x 9 groups
+    for row in figures["false_alarms"]:
+        assert row["years"] >= 1 and 0 <= row["signals"] <= row["years"]
+    gaps = table_rows(text, "| group | share | TPR cases")
+    assert [r[0] for r in gaps] == ["quarry-hill|other", "millbrook|es", "millbrook|en"]
+    odds = table_rows(text, "| group | share | outcomes")
+    assert [(r[0], r[3]) for r in odds] == [
+        (g, o)
+        for g in ("quarry-hill|other", "millbrook|es", "millbrook|en", "quarry-hill|en")
+        for o in ("1.5", "2")
+    ]
+    for row in figures["odds_detection"]:
+        for name in ("chart", "plan", "design"):
+            assert len(row[name]) == row["runs"]
+            assert all(v is None or 1 <= v <= row["cap"] for v in row[name])
+    assert "run time" in text and "seed" in text
+
+
+def test_sim_warnings_reports_false_warnings_by_volume_and_power_by_group_size(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    figures, text = run("sim_warnings", tmp_path, capsys)
+    null = table_rows(text, "| decisions / day |")
+    assert [r[0] for r in null] == ["65", "500", "5,000"]
+    assert all(len(r) == 10 for r in null)
+    for row in figures["null"]:
+        assert row["days"] == 365 * row["years"] and row["years_warned"] <= row["years"]
+        assert row["any_warning"] <= row["days"]
+    power = table_rows(text, "| group cases | day volume |")
+    assert [(r[0], r[2]) for r in power] == [
+        (c, f) for c in ("20", "50", "100", "200", "500", "1,000", "2,000") for f in ("1", "1.3")
+    ]
+    for row in figures["power"]:
+        assert row["either"] <= row["days"] and row["drift"] <= row["either"]
+    assert "run time" in text and "seed" in text
+
+
+def test_sim_promise_size_reports_false_breaches_by_volume_and_scenario(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    figures, text = run("sim_promise_size", tmp_path, capsys)
+    rows = table_rows(text, "| volume | truth |")
+    assert [(r[0], r[1]) for r in rows] == [
+        (v, s) for v in ("2,000", "20,000", "200,000") for s in ("truth", "at the edge")
+    ]
+    assert all(len(r) == 8 for r in rows)
+    for row in figures["rows"]:
+        shares = row["per_policy"]
+        assert len(shares["any"]) == figures["policies"] > 0
+        for name in ("tpr", "fpr", "action_rate"):  # a promise breach is a false breach
+            assert all(a >= b for a, b in zip(shares["any"], shares[name], strict=True))
+    assert "run time" in text and "seed" in text
