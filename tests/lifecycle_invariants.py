@@ -4,7 +4,8 @@
   a submit adds the next number as a draft, an approval moves a draft, an activation or a
   rollback starts from the version that was active (``from_version``) and retires it, a
   shadow designation starts from the shadow that was designated, an unshadow ends it;
-- the replayed statuses are the stored ones, and at most one version is active;
+- the replayed statuses are the ones the service derives, at most one version is active,
+  and the policy's state row holds the replayed active and shadow versions;
 - a decision record names the version that was active, and the shadow that was designated,
   at its ``issued_at`` (the state after the last event stamped at or before it).
 """
@@ -56,6 +57,9 @@ def replay(events: Sequence[Any]) -> list[tuple[datetime, State]]:
         elif e.action == "unshadow":
             assert state.shadow is not None and e.from_version == state.shadow, where
             state.shadow = None
+        elif e.action == "retire":  # recorded by migration 0050 only
+            assert s.get(e.from_version) == "approved", where
+            s[e.from_version] = "retired"
         else:
             raise AssertionError(f"unexpected {where}")
         assert list(s.values()).count("active") <= 1, where
@@ -69,6 +73,13 @@ def check_history(events: Sequence[Any], statuses: dict[int, str]) -> None:
     final = timeline[-1][1] if timeline else State()
     assert final.statuses == statuses
     assert list(statuses.values()).count("active") <= 1
+
+
+def check_state(events: Sequence[Any], active: int | None, shadow: int | None) -> None:
+    """The state row's active and shadow versions are the ones the history ends in."""
+    timeline = replay(events)
+    final = timeline[-1][1] if timeline else State()
+    assert (active, shadow) == (final.active, final.shadow), (active, shadow, final)
 
 
 def check_records(events: Sequence[Any], records: Iterable[Any]) -> None:

@@ -9,7 +9,7 @@ from collections.abc import Callable
 import pytest
 from fastapi.testclient import TestClient
 from sqlalchemy import Engine, text
-from sqlalchemy.exc import IntegrityError
+from sqlalchemy.exc import DBAPIError, IntegrityError
 
 from tests.helpers import bearer, make_policy
 
@@ -44,43 +44,78 @@ def test_author_cannot_approve_own_draft(client: TestClient, tokens: dict[str, s
     r = client.post(f"{P}/versions/1/approve", headers=bearer(tokens["admin"]))
     assert r.status_code == 403
     assert r.json()["error"]["code"] == "four_eyes"
+    # Whatever name the request gives, the credential is what counts: the route reads none.
+    own = bearer(tokens["admin"])
+    for r in (
+        client.post(f"{P}/versions/1/approve", json={"actor": "admin-approver"}, headers=own),
+        client.post(f"{P}/versions/1/approve", params={"actor": "admin-approver"}, headers=own),
+        client.post(f"{P}/versions/1/approve", headers={**own, "X-Actor": "admin-approver"}),
+    ):
+        assert r.status_code == 403 and r.json()["error"]["code"] == "four_eyes", r.text
     assert _statuses(client, tokens["admin"]) == {1: "draft"}
     r = client.post(f"{P}/versions/1/approve", headers=bearer(tokens["admin2"]))
     assert r.status_code == 200
     assert r.json()["approver"] == "admin-approver"
     r = client.post(f"{P}/versions/1/approve", headers=bearer(tokens["admin2"]))
     assert r.status_code == 409  # already approved
+    events = client.get(f"{P}/history", headers=bearer(tokens["admin"])).json()
+    assert [(e["action"], e["actor"]) for e in events] == [
+        ("submit", "admin-author"),
+        ("approve", "admin-approver"),
+    ]
+    assert events[0]["actor_key_id"] != events[1]["actor_key_id"]
 
 
 def test_only_approved_versions_activate_and_previous_retires(
     client: TestClient, tokens: dict[str, str], publish: Callable[..., int]
 ) -> None:
+    first = {"version": 1, "expected_current": None}
     client.post(f"{P}/versions", json=make_policy(), headers=bearer(tokens["admin"]))
-    r = client.post(f"{P}/activate", json={"version": 1}, headers=bearer(tokens["admin"]))
+    r = client.post(f"{P}/activate", json=first, headers=bearer(tokens["admin"]))
     assert r.status_code == 409 and r.json()["error"]["code"] == "invalid_transition"
     client.post(f"{P}/versions/1/approve", headers=bearer(tokens["admin2"]))
-    assert (
-        client.post(
-            f"{P}/activate", json={"version": 1}, headers=bearer(tokens["admin"])
-        ).status_code
-        == 200
-    )
+    r = client.post(f"{P}/activate", json=first, headers=bearer(tokens["admin"]))
+    assert r.status_code == 200 and r.json()["status"] == "active"
+    assert r.json()["approver"] == "admin-approver"
     v2 = publish()
     assert v2 == 2
     assert _statuses(client, tokens["admin"]) == {1: "retired", 2: "active"}
 
 
-def test_database_refuses_a_second_active_version(
+INSERT_ONLY = {
+    "policy_versions": "author = 'someone-else'",
+    "policy_events": "actor = 'someone-else'",
+    "api_keys": "role = 'admin'",
+    "key_events": "reason = 'edited'",
+}
+
+
+def test_postgresql_refuses_updates_and_deletes_of_the_insert_only_tables(
+    engine: Engine, publish: Callable[..., int], tokens: dict[str, str]
+) -> None:
+    """Through the service's own engine and connections: every UPDATE and DELETE of a
+    policy version, lifecycle event, key or key event fails (migration 0050's trigger)."""
+    if engine.dialect.name != "postgresql":
+        pytest.skip("the insert-only triggers are PostgreSQL's")
+    publish()
+    for table, change in INSERT_ONLY.items():
+        for statement in (f"UPDATE {table} SET {change}", f"DELETE FROM {table}"):
+            with pytest.raises(DBAPIError, match="insert-only"), engine.begin() as conn:
+                conn.execute(text(statement))
+    with engine.connect() as conn:  # nothing moved
+        assert conn.scalar(text("SELECT count(*) FROM policy_events")) == 3
+        assert conn.scalar(text("SELECT count(*) FROM key_events WHERE action = 'revoke'")) == 0
+
+
+def test_one_active_version_per_policy_by_construction(
     engine: Engine, publish: Callable[..., int]
 ) -> None:
+    """The active version is the policy's one state row's: a second row is refused."""
     publish()
     publish(activate=False)
     with pytest.raises(IntegrityError), engine.begin() as conn:
         conn.execute(
-            text(
-                "UPDATE policy_versions SET status = 'active' "
-                "WHERE name = 'readmission' AND version = 2"
-            )
+            text("INSERT INTO policy_state (name, active_version) VALUES ('readmission', 2)")
         )
 
 
@@ -91,17 +126,17 @@ def test_rollback_needs_reason_and_returns_to_previous(
     publish()
     publish()
     admin = bearer(tokens["admin"])
-    r = client.post(f"{P}/rollback", json={"reason": ""}, headers=admin)
+    r = client.post(f"{P}/rollback", json={"reason": "", "expected_current": 3}, headers=admin)
     assert r.status_code == 422
-    r = client.post(f"{P}/rollback", json={}, headers=admin)
+    r = client.post(f"{P}/rollback", json={"expected_current": 3}, headers=admin)
     assert r.status_code == 422
     assert _statuses(client, tokens["admin"]) == {1: "retired", 2: "retired", 3: "active"}
 
-    r = client.post(f"{P}/rollback", json={"reason": "v3 flags too many"}, headers=admin)
+    body = {"reason": "v3 flags too many", "expected_current": 3}
+    r = client.post(f"{P}/rollback", json=body, headers=admin)
     assert r.status_code == 200 and r.json()["version"] == 2
-    r = client.post(
-        f"{P}/rollback", json={"to_version": 1, "reason": "back to the start"}, headers=admin
-    )
+    body = {"to_version": 1, "reason": "back to the start", "expected_current": 2}
+    r = client.post(f"{P}/rollback", json=body, headers=admin)
     assert r.status_code == 200 and r.json()["version"] == 1
     assert _statuses(client, tokens["admin"]) == {1: "active", 2: "retired", 3: "retired"}
 
@@ -126,10 +161,13 @@ def test_rollback_refuses_drafts_and_first_version(
 ) -> None:
     admin = bearer(tokens["admin"])
     publish()
-    r = client.post(f"{P}/rollback", json={"reason": "why not"}, headers=admin)
+    r = client.post(
+        f"{P}/rollback", json={"reason": "why not", "expected_current": 1}, headers=admin
+    )
     assert r.status_code == 409 and r.json()["error"]["code"] == "nothing_to_roll_back_to"
     client.post(f"{P}/versions", json=make_policy(), headers=admin)
-    r = client.post(f"{P}/rollback", json={"to_version": 2, "reason": "x"}, headers=admin)
+    body = {"to_version": 2, "reason": "x", "expected_current": 1}
+    r = client.post(f"{P}/rollback", json=body, headers=admin)
     assert r.status_code == 409
     assert _statuses(client, tokens["admin"]) == {1: "active", 2: "draft"}
 
@@ -195,21 +233,26 @@ def test_shadow_designation(
 ) -> None:
     admin = bearer(tokens["admin"])
     publish()
-    r = client.put(f"{P}/shadow", json={"version": 1}, headers=admin)
+    none = {"expected_current": None}
+    r = client.put(f"{P}/shadow", json={"version": 1, **none}, headers=admin)
     assert r.status_code == 409  # the active version cannot be its own shadow
     v2 = publish(activate=False)
-    r = client.put(f"{P}/shadow", json={"version": v2}, headers=admin)
+    r = client.put(f"{P}/shadow", json={"version": v2, **none}, headers=admin)
     assert r.status_code == 200 and r.json()["version"] == v2
+    assert r.json()["designated_by"] == "admin-author"
+    assert client.get(f"{P}/shadow", headers=admin).json() == r.json()
     listed = client.get("/v1/policies", headers=admin).json()
     assert listed == [
         {"name": "readmission", "latest_version": 2, "active_version": 1, "shadow_version": 2}
     ]
     # Activating the shadow version ends its shadow designation.
-    client.post(f"{P}/activate", json={"version": v2}, headers=admin)
+    client.post(f"{P}/activate", json={"version": v2, "expected_current": 1}, headers=admin)
     assert client.get(f"{P}/shadow", headers=admin).status_code == 404
     v3 = publish(activate=False)
-    client.put(f"{P}/shadow", json={"version": v3}, headers=admin)
-    assert client.delete(f"{P}/shadow", headers=admin).status_code == 204
-    assert client.delete(f"{P}/shadow", headers=admin).status_code == 404
+    client.put(f"{P}/shadow", json={"version": v3, **none}, headers=admin)
+    end = {"expected_current": v3}
+    assert client.delete(f"{P}/shadow", params=end, headers=admin).status_code == 204
+    assert client.delete(f"{P}/shadow", params=end, headers=admin).status_code == 204  # repeat
+    assert client.delete(f"{P}/shadow", headers=admin).status_code == 422  # required
     actions = [e["action"] for e in client.get(f"{P}/history", headers=admin).json()]
     assert actions.count("shadow") == 2 and actions.count("unshadow") == 2

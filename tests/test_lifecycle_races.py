@@ -1,8 +1,9 @@
 """Lifecycle changes under concurrency, with real threads and one session each.
 
 Two admins doing the same thing at the same moment: exactly one changes the policy, the other
-is refused with 409 (or, when it names the state it expects, is answered as a repeat and
-changes nothing); the history never shows an impossible transition. Scoring while versions
+is refused with 409 (two approvals; two switches from one expected state to different
+targets) or, sending the same request, is answered as a repeat and changes nothing; the
+history never shows an impossible transition. Scoring while versions
 are switched: every record names the version that was active at its ``issued_at`` according
 to the history, and the shadow designated then.
 
@@ -25,12 +26,13 @@ from sqlalchemy.orm import Session, sessionmaker
 
 from service.api.recommendation_schemas import RecommendationRequest
 from service.errors import ServiceError
-from service.store import keys, lifecycle
+from service.store import keys, lifecycle, policies
 from service.store.committer import GroupCommitter
-from service.store.models import PolicyEvent, PolicyVersion, Recommendation
+from service.store.keys import Actor
+from service.store.models import PolicyEvent, Recommendation
 from service.store.scoring import DocumentCache, ScoringContext, recommend_batch
 from tests.helpers import TEST_SECRET, make_policy, make_request
-from tests.lifecycle_invariants import check_history, check_records
+from tests.lifecycle_invariants import check_history, check_records, check_state
 
 TRIES = 15
 
@@ -60,11 +62,18 @@ def _outcomes(results: list[Any]) -> list[str]:
     return sorted(r.code if isinstance(r, ServiceError) else "ok" for r in results)
 
 
+# The admin keys of the current test (set by the ``factory`` fixture).
+AUTHOR = REVIEWER = REVIEWER2 = Actor(0, "")
+
+
 @pytest.fixture
 def factory(session_factory: sessionmaker[Session]) -> sessionmaker[Session]:
+    global AUTHOR, REVIEWER, REVIEWER2
     with session_factory() as s:
-        for name in ("author", "reviewer", "reviewer2"):
-            keys.create_key(s, name, "admin")
+        AUTHOR, REVIEWER, REVIEWER2 = (
+            Actor.of(keys.create_key(s, name, "admin")[0])
+            for name in ("author", "reviewer", "reviewer2")
+        )
         s.commit()
     return session_factory
 
@@ -75,11 +84,11 @@ def _new_policy(factory: sessionmaker[Session], drafts: int, approved: int, acti
     name = f"race-{uuid.uuid4().hex[:10]}"
     with factory() as s:
         for v in range(1, drafts + 1):
-            lifecycle.submit(s, name, make_policy(name=name), "author")
+            lifecycle.submit(s, name, make_policy(name=name), AUTHOR)
             if v <= approved:
-                lifecycle.approve(s, name, v, "reviewer")
+                lifecycle.approve(s, name, v, REVIEWER)
         for v in range(1, active + 1):
-            lifecycle.activate(s, name, v, "author")
+            lifecycle.activate(s, name, v, AUTHOR, expected_current=v - 1 or None)
         s.commit()
     return name
 
@@ -92,11 +101,14 @@ def _history(factory: sessionmaker[Session], name: str) -> list[PolicyEvent]:
 
 
 def _statuses(factory: sessionmaker[Session], name: str) -> dict[int, str]:
+    """The statuses the service derives, checked against the replayed history, whose
+    active and shadow versions the state row must hold."""
+    events = _history(factory, name)
     with factory() as s:
-        rows = s.execute(
-            select(PolicyVersion.version, PolicyVersion.status).where(PolicyVersion.name == name)
-        )
-        return {int(v): str(st) for v, st in rows}
+        state = policies.get_state(s, name)
+        assert state is not None
+        check_state(events, state.active_version, state.shadow_version)
+        return {v.row.version: v.status for v in policies.version_views(s, name)}
 
 
 def test_two_approvals_of_one_draft(factory: sessionmaker[Session]) -> None:
@@ -105,8 +117,8 @@ def test_two_approvals_of_one_draft(factory: sessionmaker[Session]) -> None:
         results = _race(
             factory,
             [
-                lambda s, n=name: lifecycle.approve(s, n, 1, "reviewer"),
-                lambda s, n=name: lifecycle.approve(s, n, 1, "reviewer2"),
+                lambda s, n=name: lifecycle.approve(s, n, 1, REVIEWER),
+                lambda s, n=name: lifecycle.approve(s, n, 1, REVIEWER2),
             ],
         )
         assert _outcomes(results) == ["invalid_transition", "ok"]
@@ -115,14 +127,31 @@ def test_two_approvals_of_one_draft(factory: sessionmaker[Session]) -> None:
         check_history(_history(factory, name), _statuses(factory, name))
 
 
+def test_two_first_submissions_of_a_new_policy(factory: sessionmaker[Session]) -> None:
+    """Both wait on the one state row the first creates: versions 1 and 2, no error."""
+    for _ in range(TRIES):
+        name = f"race-{uuid.uuid4().hex[:10]}"
+        results = _race(
+            factory,
+            [lambda s, n=name: lifecycle.submit(s, n, make_policy(name=n), AUTHOR)] * 2,
+        )
+        assert sorted(r.row.version for r in results) == [1, 2], results
+        check_history(_history(factory, name), _statuses(factory, name))
+
+
 def test_two_activations_of_one_version(factory: sessionmaker[Session]) -> None:
     for _ in range(TRIES):
         name = _new_policy(factory, drafts=2, approved=2, active=1)
         results = _race(
             factory,
-            [lambda s, n=name: lifecycle.activate(s, n, 2, "author", "go") for _ in range(2)],
+            [
+                lambda s, n=name: lifecycle.activate(s, n, 2, AUTHOR, "go", expected_current=1)
+                for _ in range(2)
+            ],
         )
-        assert _outcomes(results) == ["invalid_transition", "ok"]
+        # The second is a repeat of the first: answered the same, nothing changed.
+        assert _outcomes(results) == ["ok", "ok"]
+        assert [r.row.version for r in results] == [2, 2]
         events = _history(factory, name)
         switches = [(e.from_version, e.to_version) for e in events if e.action == "activate"]
         assert switches == [(None, 1), (1, 2)]
@@ -130,19 +159,22 @@ def test_two_activations_of_one_version(factory: sessionmaker[Session]) -> None:
 
 
 def test_two_activations_of_different_versions(factory: sessionmaker[Session]) -> None:
-    """Both may succeed, one after the other: the history must chain them."""
+    """Both expecting v1: the first wins, the second is stale (409 current_changed) and
+    changes nothing; the history chains the one switch."""
     for _ in range(TRIES):
         name = _new_policy(factory, drafts=3, approved=3, active=1)
         results = _race(
             factory,
-            [lambda s, n=name, v=v: lifecycle.activate(s, n, v, "author") for v in (2, 3)],
+            [
+                lambda s, n=name, v=v: lifecycle.activate(s, n, v, AUTHOR, expected_current=1)
+                for v in (2, 3)
+            ],
         )
-        assert _outcomes(results) == ["ok", "ok"]
+        assert _outcomes(results) == ["current_changed", "ok"]
         events = _history(factory, name)
         check_history(events, _statuses(factory, name))
         switches = [(e.from_version, e.to_version) for e in events if e.action == "activate"]
-        assert switches[0] == (None, 1) and switches[1][0] == 1
-        assert switches[2][0] == switches[1][1]
+        assert switches[0] == (None, 1) and switches[1][0] == 1 and len(switches) == 2
 
 
 def test_two_rollbacks_to_one_version(factory: sessionmaker[Session]) -> None:
@@ -151,11 +183,14 @@ def test_two_rollbacks_to_one_version(factory: sessionmaker[Session]) -> None:
         results = _race(
             factory,
             [
-                lambda s, n=name: lifecycle.rollback(s, n, "author", "too many", to_version=1)
+                lambda s, n=name: lifecycle.rollback(
+                    s, n, AUTHOR, "too many", to_version=1, expected_current=2
+                )
                 for _ in range(2)
             ],
         )
-        assert _outcomes(results) == ["invalid_transition", "ok"]
+        assert _outcomes(results) == ["ok", "ok"]  # the second is a repeat
+        assert [e.action for e in _history(factory, name)].count("rollback") == 1
         check_history(_history(factory, name), _statuses(factory, name))
 
 
@@ -166,11 +201,11 @@ def test_two_identical_rollbacks_with_expected_current(factory: sessionmaker[Ses
         results = _race(
             factory,
             [
-                lambda s, n=name: lifecycle.rollback(s, n, "author", "undo", expected_current=3)
+                lambda s, n=name: lifecycle.rollback(s, n, AUTHOR, "undo", expected_current=3)
                 for _ in range(2)
             ],
         )
-        assert [r.version for r in results] == [2, 2], results
+        assert [r.row.version for r in results] == [2, 2], results
         events = _history(factory, name)
         assert [e.action for e in events].count("rollback") == 1
         assert _statuses(factory, name) == {1: "retired", 2: "active", 3: "retired"}
@@ -182,9 +217,12 @@ def test_two_shadow_designations(factory: sessionmaker[Session]) -> None:
         name = _new_policy(factory, drafts=2, approved=2, active=1)
         results = _race(
             factory,
-            [lambda s, n=name: lifecycle.set_shadow(s, n, 2, "author") for _ in range(2)],
+            [
+                lambda s, n=name: lifecycle.set_shadow(s, n, 2, AUTHOR, expected_current=None)
+                for _ in range(2)
+            ],
         )
-        assert _outcomes(results) == ["invalid_transition", "ok"]
+        assert _outcomes(results) == ["ok", "ok"]  # the second is a repeat
         events = _history(factory, name)
         assert [(e.from_version, e.to_version) for e in events if e.action == "shadow"] == [
             (None, 2)
@@ -210,10 +248,12 @@ def test_records_carry_the_version_active_at_their_issued_at(
     def switcher() -> None:
         # v1 active, v2 and v3 approved: cycle activations, rollbacks and shadows.
         steps: list[Callable[[Session], Any]] = [
-            lambda s: lifecycle.set_shadow(s, name, 3, "author"),
-            lambda s: lifecycle.rollback(s, name, "author", "swap", to_version=2),
-            lambda s: lifecycle.clear_shadow(s, name, "author"),
-            lambda s: lifecycle.rollback(s, name, "author", "swap back", to_version=1),
+            lambda s: lifecycle.set_shadow(s, name, 3, AUTHOR, expected_current=None),
+            lambda s: lifecycle.rollback(s, name, AUTHOR, "swap", to_version=2, expected_current=1),
+            lambda s: lifecycle.clear_shadow(s, name, AUTHOR, expected_current=3),
+            lambda s: lifecycle.rollback(
+                s, name, AUTHOR, "swap back", to_version=1, expected_current=2
+            ),
         ]
         k = 0
         while not stop.is_set() and k < 400:
@@ -277,7 +317,7 @@ def test_records_carry_the_version_active_at_their_issued_at(
 def _new_policy_named(factory: sessionmaker[Session], name: str) -> None:
     with factory() as s:
         for v in (1, 2, 3):
-            lifecycle.submit(s, name, make_policy(name=name), "author")
-            lifecycle.approve(s, name, v, "reviewer")
-        lifecycle.activate(s, name, 1, "author")
+            lifecycle.submit(s, name, make_policy(name=name), AUTHOR)
+            lifecycle.approve(s, name, v, REVIEWER)
+        lifecycle.activate(s, name, 1, AUTHOR, expected_current=None)
         s.commit()

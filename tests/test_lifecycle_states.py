@@ -1,11 +1,13 @@
 """Arbitrary sequences of lifecycle actions and scoring against a model of the lifecycle.
 
-A hypothesis state machine submits, approves, activates, rolls back, designates and ends
-shadows (with and without the state the caller expects, repeats and stale requests among
-them) and scores in between, on a fresh policy per example. Each step's outcome (the result
-or the error code) must be the model's, and after each step:
+A hypothesis state machine submits, approves (with the author's key too: four-eyes),
+activates, rolls back, designates and ends shadows (with the state the caller expects: the
+current one, repeats and stale requests) and scores in between, on a fresh policy per
+example. Each step's outcome (the result or the error code) must be the model's, and after
+each step:
 
-- the stored statuses are the model's and at most one version is active;
+- the derived statuses are the model's, the state row holds the model's active and shadow
+  versions, and at most one version is active;
 - the history replays without an impossible transition and ends in the stored statuses;
 - every decision names the version active, and the shadow designated, at its issued_at.
 """
@@ -33,21 +35,19 @@ from sqlalchemy.orm import Session, sessionmaker
 from service.api.recommendation_schemas import RecommendationRequest
 from service.errors import ServiceError
 from service.store import keys, lifecycle, policies
-from service.store.expected import UNCHECKED, Expected
-from service.store.models import PolicyEvent, PolicyVersion, Recommendation
+from service.store.keys import Actor
+from service.store.models import PolicyEvent, Recommendation
 from service.store.scoring import DocumentCache, ScoringContext, recommend_group
 from tests.helpers import TEST_SECRET, make_policy, make_request
-from tests.lifecycle_invariants import check_history, check_records
+from tests.lifecycle_invariants import check_history, check_records, check_state
 
 pytestmark = pytest.mark.slow
 
 # A version: mostly one in the state the action needs, else any, sometimes an unknown one.
 PICKS = st.integers(min_value=0, max_value=7)
-# What the caller says it expects: nothing, what is current, what was current before the
-# last change (a repeat or a stale request), none, or any version.
-EXPECTATIONS = st.sampled_from(
-    ["unchecked", "unchecked", "current", "current", "previous", None, 1, 2]
-)
+# What the caller says it expects: what is current, what was current before the last change
+# (a repeat or a stale request), none, or any version.
+EXPECTATIONS = st.sampled_from(["current", "current", "current", "previous", None, 1, 2])
 
 
 @dataclass
@@ -69,9 +69,7 @@ class Model:
         self.active = to
 
 
-def _expected(choice: Any, current: int | None, changes: list[Any]) -> Expected:
-    if choice == "unchecked":
-        return UNCHECKED
+def _expected(choice: Any, current: int | None, changes: list[Any]) -> int | None:
     if choice == "current":
         return current
     if choice == "previous":
@@ -79,14 +77,12 @@ def _expected(choice: Any, current: int | None, changes: list[Any]) -> Expected:
     return choice  # type: ignore[no-any-return]
 
 
-def _is_checked_and_differs(expected: Expected, current: int | None) -> bool:
-    return expected is not UNCHECKED and expected != current
-
-
 class LifecycleMachine(RuleBasedStateMachine):
     factory: sessionmaker[Session]
     engine: Engine
     ctx: ScoringContext
+    author: Actor
+    reviewer: Actor
 
     def __init__(self) -> None:
         super().__init__()
@@ -123,21 +119,22 @@ class LifecycleMachine(RuleBasedStateMachine):
     @rule()
     def submit(self) -> None:
         out = self._do(
-            lambda s: lifecycle.submit(s, self.name, make_policy(name=self.name), "author")
+            lambda s: lifecycle.submit(s, self.name, make_policy(name=self.name), self.author)
         )
         self._expect_code(out, None)
         number = len(self.model.statuses) + 1
-        assert out.version == number
+        assert out.row.version == number
         self.model.statuses[number] = "draft"
 
     @initialize()
     def first_draft(self) -> None:
         self.submit()
 
-    @rule(pick=PICKS)
-    def approve(self, pick: int) -> None:
+    @rule(pick=PICKS, own=st.booleans())
+    def approve(self, pick: int, own: bool) -> None:
         version = self._pick(pick, "draft")
-        out = self._do(lambda s: lifecycle.approve(s, self.name, version, "reviewer"))
+        approver = self.author if own else self.reviewer
+        out = self._do(lambda s: lifecycle.approve(s, self.name, version, approver))
         m = self.model
         if not m.statuses:
             self._expect_code(out, "unknown_policy")
@@ -145,6 +142,8 @@ class LifecycleMachine(RuleBasedStateMachine):
             self._expect_code(out, "unknown_version")
         elif m.statuses[version] != "draft":
             self._expect_code(out, "invalid_transition")
+        elif own:
+            self._expect_code(out, "four_eyes")  # every version is submitted by the author
         else:
             self._expect_code(out, None)
             m.statuses[version] = "approved"
@@ -156,18 +155,18 @@ class LifecycleMachine(RuleBasedStateMachine):
         expected = _expected(choice, m.active, m.switches)
         out = self._do(
             lambda s: lifecycle.activate(
-                s, self.name, version, "author", "step", expected_current=expected
+                s, self.name, version, self.author, "step", expected_current=expected
             )
         )
         if not m.statuses:
             self._expect_code(out, "unknown_policy")
         elif version not in m.statuses:
             self._expect_code(out, "unknown_version")
-        elif _is_checked_and_differs(expected, m.active):
+        elif expected != m.active:
             last = m.switches[-1] if m.switches else None
             if version == m.active and last == ("activate", expected, version):
                 self._expect_code(out, None)  # a repeat: nothing changes
-                assert out.version == version
+                assert out.row.version == version
             else:
                 self._expect_code(out, "current_changed")
                 assert out.details[0]["value"] == m.active
@@ -184,13 +183,13 @@ class LifecycleMachine(RuleBasedStateMachine):
         expected = _expected(choice, m.active, m.switches)
         out = self._do(
             lambda s: lifecycle.rollback(
-                s, self.name, "author", "undo", to_version=to, expected_current=expected
+                s, self.name, self.author, "undo", to_version=to, expected_current=expected
             )
         )
         if not m.statuses:
             self._expect_code(out, "unknown_policy")
             return
-        if _is_checked_and_differs(expected, m.active):
+        if expected != m.active:
             last = m.switches[-1] if m.switches else None
             if (
                 m.active is not None
@@ -198,7 +197,7 @@ class LifecycleMachine(RuleBasedStateMachine):
                 and last == ("rollback", expected, m.active)
             ):
                 self._expect_code(out, None)  # a repeat
-                assert out.version == m.active
+                assert out.row.version == m.active
             else:
                 self._expect_code(out, "current_changed")
             return
@@ -225,13 +224,17 @@ class LifecycleMachine(RuleBasedStateMachine):
         version = self._pick(pick, "approved")
         m = self.model
         expected = _expected(choice, m.shadow, m.shadow_changes)
-        out = self._do(lambda s: lifecycle.set_shadow(s, self.name, version, "author", expected))
+        out = self._do(
+            lambda s: lifecycle.set_shadow(
+                s, self.name, version, self.author, expected_current=expected
+            )
+        )
         last = m.shadow_changes[-1] if m.shadow_changes else None
         if not m.statuses:
             self._expect_code(out, "unknown_policy")
         elif version not in m.statuses:
             self._expect_code(out, "unknown_version")
-        elif _is_checked_and_differs(expected, m.shadow):
+        elif expected != m.shadow:
             if m.shadow == version and last == ("shadow", expected, version):
                 self._expect_code(out, None)
                 assert out.version == version
@@ -248,11 +251,13 @@ class LifecycleMachine(RuleBasedStateMachine):
     def clear_shadow(self, choice: Any) -> None:
         m = self.model
         expected = _expected(choice, m.shadow, m.shadow_changes)
-        out = self._do(lambda s: lifecycle.clear_shadow(s, self.name, "author", expected))
+        out = self._do(
+            lambda s: lifecycle.clear_shadow(s, self.name, self.author, expected_current=expected)
+        )
         last = m.shadow_changes[-1] if m.shadow_changes else None
         if not m.statuses:
             self._expect_code(out, "unknown_policy")
-        elif _is_checked_and_differs(expected, m.shadow):
+        elif expected != m.shadow:
             if m.shadow is None and last is not None and last[:2] == ("unshadow", expected):
                 self._expect_code(out, None)
             else:
@@ -289,14 +294,7 @@ class LifecycleMachine(RuleBasedStateMachine):
     @invariant()
     def stored_state_is_the_model_and_the_history_replays(self) -> None:
         with self.factory() as s:
-            statuses = {
-                int(v): str(st_)
-                for v, st_ in s.execute(
-                    select(PolicyVersion.version, PolicyVersion.status).where(
-                        PolicyVersion.name == self.name
-                    )
-                )
-            }
+            statuses = {v.row.version: v.status for v in policies.version_views(s, self.name)}
             events = list(
                 s.scalars(
                     select(PolicyEvent)
@@ -314,10 +312,14 @@ class LifecycleMachine(RuleBasedStateMachine):
                     ).where(Recommendation.policy == self.name)
                 )
             )
-            shadow = policies.get_shadow(s, self.name)
+            state = policies.get_state(s, self.name)
         assert statuses == self.model.statuses
-        assert (None if shadow is None else shadow.version) == self.model.shadow
+        active, shadow = (
+            (None, None) if state is None else (state.active_version, state.shadow_version)
+        )
+        assert (active, shadow) == (self.model.active, self.model.shadow)
         check_history(events, statuses)
+        check_state(events, active, shadow)
         check_records(events, records)
 
 
@@ -325,13 +327,14 @@ def test_any_sequence_of_lifecycle_actions_keeps_the_invariants(
     engine: Engine, session_factory: sessionmaker[Session]
 ) -> None:
     with session_factory() as s:
-        keys.create_key(s, "author", "admin")
-        keys.create_key(s, "reviewer", "admin")
+        author = Actor.of(keys.create_key(s, "author", "admin")[0])
+        reviewer = Actor.of(keys.create_key(s, "reviewer", "admin")[0])
         s.commit()
 
     class Machine(LifecycleMachine):
         pass
 
+    Machine.author, Machine.reviewer = author, reviewer
     Machine.factory = session_factory
     Machine.engine = engine
     Machine.ctx = ScoringContext(TEST_SECRET.encode(), DocumentCache())

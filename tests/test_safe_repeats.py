@@ -2,8 +2,9 @@
 
 A repeat of a request that was carried out (a double click, a client retrying after a lost
 answer) gets the same answer and changes nothing; a request whose expectation is stale is a
-409 ``current_changed`` that names the current state; without ``expected_current`` nothing
-is checked. Over HTTP, and through the CLI on the database and over HTTP.
+409 ``current_changed`` that names the current state; ``expected_current`` is required (422
+without it; the CLI's ``--expect-current``). Over HTTP, and through the CLI on the database
+and over HTTP. Each event records the expectation its request carried.
 """
 
 from __future__ import annotations
@@ -54,10 +55,15 @@ def test_activate_repeat_and_stale(
     assert state["shadow_version"]["value"] is None
     assert state["last_change"]["value"]["to_version"] == 2
     assert "v2 is" in error["message"]
-    # Without expected_current the same request is carried out.
-    ok = client.post(f"{P}/activate", json={"version": 3}, headers=admin)
+    # Without expected_current nothing is done: it is required.
+    missing = client.post(f"{P}/activate", json={"version": 3}, headers=admin)
+    assert missing.status_code == 422 and missing.json()["error"]["field"] == "expected_current"
+    ok = client.post(f"{P}/activate", json={"version": 3, "expected_current": 2}, headers=admin)
     assert ok.status_code == 200
     assert _switches(client, tokens["admin"])[-1] == ("activate", 2, 3)
+    events = client.get(f"{P}/history", headers=admin).json()
+    assert [(e["expected_sent"], e["expected_current"]) for e in events[-1:]] == [(True, 2)]
+    assert all(not e["expected_sent"] for e in events if e["action"] in ("submit", "approve"))
 
 
 def test_first_activation_expecting_none(
@@ -69,6 +75,12 @@ def test_first_activation_expecting_none(
     assert client.post(f"{P}/activate", json=body, headers=admin).status_code == 200
     assert client.post(f"{P}/activate", json=body, headers=admin).status_code == 200
     assert _switches(client, tokens["admin"]) == [("activate", None, 1)]
+    last = client.get(f"{P}/history", headers=admin).json()[-1]
+    assert (last["action"], last["expected_sent"], last["expected_current"]) == (
+        "activate",
+        True,
+        None,
+    )
 
 
 def test_rollback_double_click_changes_once(
@@ -87,9 +99,10 @@ def test_rollback_double_click_changes_once(
     # Expecting a version that is not active and did not just roll back: stale.
     stale = client.post(f"{P}/rollback", json={**body, "expected_current": 1}, headers=admin)
     assert stale.status_code == 409 and stale.json()["error"]["code"] == "current_changed"
-    # Without expected_current a second click would act again: the reason to send it.
+    # Without expected_current a second click would act again: it is required.
     legacy = client.post(f"{P}/rollback", json={"reason": "again"}, headers=admin)
-    assert legacy.status_code == 200 and legacy.json()["version"] == 3
+    assert legacy.status_code == 422
+    assert _switches(client, tokens["admin"])[-1] == ("rollback", 3, 2)
 
 
 def test_shadow_on_and_off_repeat_and_stale(
@@ -107,15 +120,17 @@ def test_shadow_on_and_off_repeat_and_stale(
     stale = client.put(f"{P}/shadow", json={"version": 3, "expected_current": None}, headers=admin)
     assert stale.status_code == 409
     assert {d["code"]: d["value"] for d in stale.json()["error"]["details"]}["shadow_version"] == 2
-    # Without expected_current, the version that is the shadow already is refused.
-    assert client.put(f"{P}/shadow", json={"version": 2}, headers=admin).status_code == 409
+    # Expecting the shadow it already is: refused, the version is the shadow already.
+    same = client.put(f"{P}/shadow", json={"version": 2, "expected_current": 2}, headers=admin)
+    assert same.status_code == 409 and same.json()["error"]["code"] == "invalid_transition"
+    assert client.put(f"{P}/shadow", json={"version": 3}, headers=admin).status_code == 422
 
     wrong = client.delete(f"{P}/shadow", params={"expected_current": 3}, headers=admin)
     assert wrong.status_code == 409 and wrong.json()["error"]["code"] == "current_changed"
     off = client.delete(f"{P}/shadow", params={"expected_current": 2}, headers=admin)
     off_again = client.delete(f"{P}/shadow", params={"expected_current": 2}, headers=admin)
     assert off.status_code == off_again.status_code == 204
-    assert client.delete(f"{P}/shadow", headers=admin).status_code == 404
+    assert client.delete(f"{P}/shadow", headers=admin).status_code == 422
     assert _switches(client, tokens["admin"])[1:] == [("shadow", None, 2), ("unshadow", 2, None)]
 
 
@@ -149,37 +164,44 @@ def over_http(
     yield ("--url", "http://testserver")
 
 
-def _published(capsys: pytest.CaptureFixture[str], tmp_path: Path) -> None:
-    """v1 and v2 activated in turn, v3 and v4 approved; admins ana and ben."""
+def _published(capsys: pytest.CaptureFixture[str], tmp_path: Path) -> dict[str, str]:
+    """v1 and v2 activated in turn, v3 and v4 approved; admins ana and ben. Returns the
+    --token-file arguments' paths of each admin."""
+    files = {}
     for name in ("ana", "ben"):
-        _cli(capsys, "keys", "create", "--role", "admin", "--name", name)
+        out = _cli(capsys, "keys", "create", "--role", "admin", "--name", name)[1]
+        files[name] = tmp_path / f"{name}.token"
+        files[name].write_text(out.splitlines()[-1] + "\n")
+    ana, ben = ("--token-file", str(files["ana"])), ("--token-file", str(files["ben"]))
     doc = tmp_path / "policy.json"
     doc.write_text(json.dumps(make_policy()))
     for v in (1, 2, 3, 4):
-        assert _cli(capsys, "policy", "submit", str(doc), "--actor", "ana")[0] == 0
-        assert _cli(capsys, "policy", "approve", "readmission", str(v), "--actor", "ben")[0] == 0
+        assert _cli(capsys, "policy", "submit", str(doc), *ana)[0] == 0
+        assert _cli(capsys, "policy", "approve", "readmission", str(v), *ben)[0] == 0
     for v in (1, 2):
-        assert _cli(capsys, "policy", "activate", "readmission", str(v), "--actor", "ana")[0] == 0
+        expect = ("--expect-current", "none" if v == 1 else str(v - 1))
+        assert _cli(capsys, "policy", "activate", "readmission", str(v), *ana, *expect)[0] == 0
+    return {name: str(path) for name, path in files.items()}
 
 
 def test_cli_expect_current_on_the_database(
     cli_env: str, capsys: pytest.CaptureFixture[str], tmp_path: Path
 ) -> None:
-    _published(capsys, tmp_path)
-    rollback = ("policy", "rollback", "readmission", "--reason", "undo", "--actor", "ana")
+    ana = ("--token-file", _published(capsys, tmp_path)["ana"])
+    rollback = ("policy", "rollback", "readmission", "--reason", "undo", *ana)
     for _ in range(2):
         code, out, _ = _cli(capsys, *rollback, "--expect-current", "2")
         assert (code, out) == (0, "readmission v1: active (by ana, approved by ben)")
-    activate = ("policy", "activate", "readmission", "3", "--actor", "ana")
+    activate = ("policy", "activate", "readmission", "3", *ana)
     code, _, err = _cli(capsys, *activate, "--expect-current", "2")
     assert code == 2 and "current_changed" in err and "v1 is" in err
     for _ in range(2):
         assert _cli(capsys, *activate, "--expect-current", "1")[0] == 0
-    shadow = ("policy", "shadow", "readmission", "4", "--actor", "ana")
+    shadow = ("policy", "shadow", "readmission", "4", *ana)
     for _ in range(2):
         code, out, _ = _cli(capsys, *shadow, "--expect-current", "none")
         assert (code, out) == (0, "readmission: v4 is the shadow")
-    clear = ("policy", "shadow", "readmission", "--clear", "--actor", "ana")
+    clear = ("policy", "shadow", "readmission", "--clear", *ana)
     for _ in range(2):
         assert _cli(capsys, *clear, "--expect-current", "4")[0] == 0
     code, out, _ = _cli(capsys, "policy", "history", "readmission")
@@ -188,16 +210,21 @@ def test_cli_expect_current_on_the_database(
     with pytest.raises(SystemExit) as exited:
         main([*rollback, "--expect-current", "v2"])
     assert exited.value.code == 2 and "version number or 'none'" in capsys.readouterr().err
+    # --expect-current is required on activate, rollback and shadow (on and off).
+    for argv in (rollback, activate, shadow, clear):
+        with pytest.raises(SystemExit) as exited:
+            main(list(argv))
+        assert exited.value.code == 2
+        assert "--expect-current" in capsys.readouterr().err
 
 
 def test_cli_expect_current_over_http(
     over_http: tuple[str, ...],
     capsys: pytest.CaptureFixture[str],
     tmp_path: Path,
-    tokens: dict[str, str],
 ) -> None:
-    _published(capsys, tmp_path)
-    http = (*over_http, "--token", tokens["admin"])
+    files = _published(capsys, tmp_path)
+    http = (*over_http, "--token-file", files["ana"])
     rollback = ("policy", "rollback", "readmission", "--reason", "undo", *http)
     for _ in range(2):
         code, out, _ = _cli(capsys, *rollback, "--expect-current", "2")

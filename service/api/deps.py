@@ -72,11 +72,16 @@ def _bearer_token(request: Request) -> str:
 
 @dataclass(frozen=True, slots=True)
 class Caller:
-    """The authenticated API key: ``name`` is the actor recorded in histories."""
+    """The authenticated API key: every change it makes is attributed to it (its id and
+    name: :attr:`actor`)."""
 
     id: int
     name: str
     role: str
+
+    @property
+    def actor(self) -> keys.Actor:
+        return keys.Actor(self.id, self.name)
 
 
 class KeyCache:
@@ -97,6 +102,10 @@ class KeyCache:
         if entry is None or entry[1] < time.monotonic():
             return None
         return entry[0]
+
+    def clear(self) -> None:
+        """Forget every entry (after a revocation: this process then asks the database)."""
+        self._entries.clear()
 
     def put(self, digest: str, caller: Caller) -> None:
         if self.ttl <= 0:

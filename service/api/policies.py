@@ -25,7 +25,6 @@ from service.errors import NotFound
 from service.policy.document import PolicyDocument
 from service.store import lifecycle
 from service.store import policies as repo
-from service.store.expected import UNCHECKED, Expected
 
 router = APIRouter(
     prefix="/v1/policies",
@@ -41,23 +40,22 @@ Version = VersionPath
 def submit_version(
     name: Name, document: PolicyDocument, session: DbSession, key: AdminKey
 ) -> VersionSummary:
-    row = lifecycle.submit(session, name, document, key.name)
+    view = lifecycle.submit(session, name, document, key.actor)
     session.commit()
-    return VersionSummary.of(row)
+    return VersionSummary.of(view)
 
 
 @router.get("", summary="All policies with their active and shadow versions")
 def list_policies(session: ReadSession, _key: AdminKey) -> list[PolicySummary]:
     out = []
     for name in repo.policy_names(session):
-        active = repo.active_version(session, name)
-        shadow = repo.get_shadow(session, name)
+        state = repo.get_state(session, name)
         out.append(
             PolicySummary(
                 name=name,
                 latest_version=repo.latest_version_number(session, name),
-                active_version=None if active is None else active.version,
-                shadow_version=None if shadow is None else shadow.version,
+                active_version=None if state is None else state.active_version,
+                shadow_version=None if state is None else state.shadow_version,
             )
         )
     return out
@@ -65,10 +63,10 @@ def list_policies(session: ReadSession, _key: AdminKey) -> list[PolicySummary]:
 
 @router.get("/{name}/versions", summary="Every version of a policy")
 def list_versions(name: Name, session: ReadSession, _key: AdminKey) -> list[VersionSummary]:
-    rows = repo.list_versions(session, name)
-    if not rows:
+    views = repo.version_views(session, name)
+    if not views:
         raise NotFound(f"no policy named {name!r}", code="unknown_policy")
-    return [VersionSummary.of(r) for r in rows]
+    return [VersionSummary.of(v) for v in views]
 
 
 @router.get("/{name}/versions/{version}", summary="One version with its document")
@@ -85,25 +83,18 @@ def get_version(
 def approve_version(
     name: Name, version: Version, session: DbSession, key: AdminKey
 ) -> VersionSummary:
-    row = lifecycle.approve(session, name, version, key.name)
+    view = lifecycle.approve(session, name, version, key.actor)
     session.commit()
-    return VersionSummary.of(row)
-
-
-def _expected(body: ActivateBody | RollbackBody | ShadowBody) -> Expected:
-    """``expected_current`` as sent: a version, None ("none"), or not checked when absent."""
-    if "expected_current" not in body.model_fields_set:
-        return UNCHECKED
-    return body.expected_current
+    return VersionSummary.of(view)
 
 
 @router.post("/{name}/activate", summary="Activate an approved version; the active one retires")
 def activate(name: Name, body: ActivateBody, session: DbSession, key: AdminKey) -> VersionSummary:
-    row = lifecycle.activate(
-        session, name, body.version, key.name, body.reason, expected_current=_expected(body)
+    view = lifecycle.activate(
+        session, name, body.version, key.actor, body.reason, expected_current=body.expected_current
     )
     session.commit()
-    return VersionSummary.of(row)
+    return VersionSummary.of(view)
 
 
 @router.post(
@@ -111,11 +102,16 @@ def activate(name: Name, body: ActivateBody, session: DbSession, key: AdminKey) 
     summary="Re-activate the previously active version (or to_version); needs a reason",
 )
 def rollback(name: Name, body: RollbackBody, session: DbSession, key: AdminKey) -> VersionSummary:
-    row = lifecycle.rollback(
-        session, name, key.name, body.reason, body.to_version, expected_current=_expected(body)
+    view = lifecycle.rollback(
+        session,
+        name,
+        key.actor,
+        body.reason,
+        body.to_version,
+        expected_current=body.expected_current,
     )
     session.commit()
-    return VersionSummary.of(row)
+    return VersionSummary.of(view)
 
 
 @router.get("/{name}/history", summary="Every lifecycle event, oldest first")
@@ -147,7 +143,7 @@ def diff(
 
 @router.get("/{name}/shadow", summary="The shadow version, if one is designated")
 def get_shadow(name: Name, session: ReadSession, _key: AdminKey) -> ShadowOut:
-    shadow = repo.get_shadow(session, name)
+    shadow = repo.shadow_view(session, name)
     if shadow is None:
         raise NotFound(f"policy {name!r} has no shadow version", code="no_shadow")
     return ShadowOut.of(shadow)
@@ -158,7 +154,9 @@ def get_shadow(name: Name, session: ReadSession, _key: AdminKey) -> ShadowOut:
     summary="Evaluate an approved version beside the active one (recorded, not returned)",
 )
 def set_shadow(name: Name, body: ShadowBody, session: DbSession, key: AdminKey) -> ShadowOut:
-    shadow = lifecycle.set_shadow(session, name, body.version, key.name, _expected(body))
+    shadow = lifecycle.set_shadow(
+        session, name, body.version, key.actor, expected_current=body.expected_current
+    )
     session.commit()
     return ShadowOut.of(shadow)
 
@@ -169,15 +167,15 @@ def clear_shadow(
     session: DbSession,
     key: AdminKey,
     expected_current: Annotated[
-        int | None,
+        int,
         Query(
             ge=1,
-            description="the shadow version you mean to end: a repeat after it ended is "
-            "answered 204 again, another shadow version is a 409 current_changed",
+            le=INT32_MAX,
+            description="required: the shadow version you mean to end. A repeat after it "
+            "ended is answered 204 again; another shadow version is a 409 current_changed",
         ),
-    ] = None,
+    ],
 ) -> Response:
-    expected: Expected = UNCHECKED if expected_current is None else expected_current
-    lifecycle.clear_shadow(session, name, key.name, expected)
+    lifecycle.clear_shadow(session, name, key.actor, expected_current=expected_current)
     session.commit()
     return Response(status_code=204)

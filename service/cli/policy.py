@@ -1,8 +1,11 @@
 """``evenhand policy submit|approve|activate|rollback|shadow|history|diff|show``.
 
-Either directly on the database (``--actor`` names the admin key acting, as in the history)
-or through the HTTP API with ``--url`` and ``--token`` (or EVENHAND_URL / EVENHAND_TOKEN).
-Both call the same policy-store functions and print the same thing.
+Either directly on the database or through the HTTP API with ``--url`` (or EVENHAND_URL).
+Every change is made with an admin key's token, read from ``--token-file PATH`` or the
+EVENHAND_TOKEN environment variable (never from the command line, where shell history and
+``ps`` would show it) and checked against the keys table as the API checks it: the change is
+attributed to that key, and four-eyes compares keys. Reading (history, diff, show) on the
+database needs no token. Both ways call the same policy-store functions and print the same.
 """
 
 from __future__ import annotations
@@ -17,13 +20,6 @@ from typing import Any
 
 from service.cli.common import CliError
 from service.errors import ServiceError
-from service.store.expected import UNCHECKED, Expected, Unchecked
-
-
-def _with_expected(body: dict[str, Any], expected: Expected) -> dict[str, Any]:
-    if not isinstance(expected, Unchecked):
-        body["expected_current"] = expected
-    return body
 
 
 class HttpBackend:
@@ -56,21 +52,19 @@ class HttpBackend:
     def approve(self, name: str, version: int) -> Any:
         return self._call("POST", f"/v1/policies/{name}/versions/{version}/approve")
 
-    def activate(self, name: str, version: int, reason: str | None, expected: Expected) -> Any:
-        body = _with_expected({"version": version, "reason": reason}, expected)
+    def activate(self, name: str, version: int, reason: str | None, expected: int | None) -> Any:
+        body = {"version": version, "reason": reason, "expected_current": expected}
         return self._call("POST", f"/v1/policies/{name}/activate", json=body)
 
-    def rollback(self, name: str, reason: str, to_version: int | None, expected: Expected) -> Any:
-        body = _with_expected({"reason": reason, "to_version": to_version}, expected)
+    def rollback(self, name: str, reason: str, to_version: int | None, expected: int | None) -> Any:
+        body = {"reason": reason, "to_version": to_version, "expected_current": expected}
         return self._call("POST", f"/v1/policies/{name}/rollback", json=body)
 
-    def shadow(self, name: str, version: int | None, expected: Expected) -> Any:
+    def shadow(self, name: str, version: int | None, expected: int | None) -> Any:
         if version is None:
-            if expected is None:
-                raise CliError("--clear with --expect-current none: there is nothing to end")
-            params = {} if isinstance(expected, Unchecked) else {"expected_current": expected}
+            params = {"expected_current": expected}
             return self._call("DELETE", f"/v1/policies/{name}/shadow", params=params)
-        body = _with_expected({"version": version}, expected)
+        body = {"version": version, "expected_current": expected}
         return self._call("PUT", f"/v1/policies/{name}/shadow", json=body)
 
     def history(self, name: str) -> Any:
@@ -89,18 +83,23 @@ class HttpBackend:
 class DirectBackend:
     """The same operations on the database; each one is its own committed transaction."""
 
-    def __init__(self, actor: str | None) -> None:
+    def __init__(self, token: str | None) -> None:
         from service.settings import Settings
         from service.store.db import create_db_engine, create_session_factory
 
         self._factory = create_session_factory(create_db_engine(Settings()))
-        self._actor = actor
+        self._token = token
 
     def _run(self, fn: Callable[..., Any], *args: Any, write: bool = False) -> Any:
+        from service.store.keys import admin_actor
+
         with self._factory() as session:
             try:
                 if write:
-                    args = (self._admin(session), *args)
+                    if self._token is None:
+                        raise CliError(_NO_TOKEN)
+                    # The same check as the API's: a live admin key, by its token's hash.
+                    args = (admin_actor(session, self._token), *args)
                 result = fn(session, *args)
                 session.commit()
             except ServiceError as exc:
@@ -108,25 +107,13 @@ class DirectBackend:
                 raise CliError(f"{exc.code}: {exc.message}{where}") from None
             return result
 
-    def _admin(self, session: Any) -> str:
-        from sqlalchemy import select
-
-        from service.store.models import ApiKey, Role
-
-        if not self._actor:
-            raise CliError("give --actor NAME (an admin key's name) to change policies directly")
-        key = session.scalar(select(ApiKey).where(ApiKey.name == self._actor))
-        if key is None or key.revoked_at is not None or key.role != Role.ADMIN.value:
-            raise CliError(f"--actor {self._actor!r} is not a live admin key (see `evenhand keys`)")
-        return str(key.name)
-
     def submit(self, name: str, document: Any) -> Any:
         from service.api.policy_schemas import VersionSummary
         from service.store import lifecycle
 
-        def op(session: Any, actor: str) -> Any:
-            row = lifecycle.submit(session, name, document, actor)
-            return VersionSummary.of(row).model_dump(mode="json")
+        def op(session: Any, actor: Any) -> Any:
+            view = lifecycle.submit(session, name, document, actor)
+            return VersionSummary.of(view).model_dump(mode="json")
 
         return self._run(op, write=True)
 
@@ -134,41 +121,45 @@ class DirectBackend:
         from service.api.policy_schemas import VersionSummary
         from service.store import lifecycle
 
-        def op(session: Any, actor: str) -> Any:
-            row = lifecycle.approve(session, name, version, actor)
-            return VersionSummary.of(row).model_dump(mode="json")
+        def op(session: Any, actor: Any) -> Any:
+            view = lifecycle.approve(session, name, version, actor)
+            return VersionSummary.of(view).model_dump(mode="json")
 
         return self._run(op, write=True)
 
-    def activate(self, name: str, version: int, reason: str | None, expected: Expected) -> Any:
+    def activate(self, name: str, version: int, reason: str | None, expected: int | None) -> Any:
         from service.api.policy_schemas import VersionSummary
         from service.store import lifecycle
 
-        def op(session: Any, actor: str) -> Any:
-            row = lifecycle.activate(session, name, version, actor, reason, expected)
-            return VersionSummary.of(row).model_dump(mode="json")
+        def op(session: Any, actor: Any) -> Any:
+            view = lifecycle.activate(
+                session, name, version, actor, reason, expected_current=expected
+            )
+            return VersionSummary.of(view).model_dump(mode="json")
 
         return self._run(op, write=True)
 
-    def rollback(self, name: str, reason: str, to_version: int | None, expected: Expected) -> Any:
+    def rollback(self, name: str, reason: str, to_version: int | None, expected: int | None) -> Any:
         from service.api.policy_schemas import VersionSummary
         from service.store import lifecycle
 
-        def op(session: Any, actor: str) -> Any:
-            row = lifecycle.rollback(session, name, actor, reason, to_version, expected)
-            return VersionSummary.of(row).model_dump(mode="json")
+        def op(session: Any, actor: Any) -> Any:
+            view = lifecycle.rollback(
+                session, name, actor, reason, to_version, expected_current=expected
+            )
+            return VersionSummary.of(view).model_dump(mode="json")
 
         return self._run(op, write=True)
 
-    def shadow(self, name: str, version: int | None, expected: Expected) -> Any:
+    def shadow(self, name: str, version: int | None, expected: int | None) -> Any:
         from service.api.policy_schemas import ShadowOut
         from service.store import lifecycle
 
-        def op(session: Any, actor: str) -> Any:
+        def op(session: Any, actor: Any) -> Any:
             if version is None:
-                lifecycle.clear_shadow(session, name, actor, expected)
+                lifecycle.clear_shadow(session, name, actor, expected_current=expected)
                 return None
-            shadow = lifecycle.set_shadow(session, name, version, actor, expected)
+            shadow = lifecycle.set_shadow(session, name, version, actor, expected_current=expected)
             return ShadowOut.of(shadow).model_dump(mode="json")
 
         return self._run(op, write=True)
@@ -198,10 +189,10 @@ class DirectBackend:
         from service.store import policies
 
         def op(session: Any) -> Any:
-            rows = policies.list_versions(session, name)
-            if not rows:
+            views = policies.version_views(session, name)
+            if not views:
                 raise CliError(f"unknown_policy: no policy named {name!r}")
-            return [VersionSummary.of(r).model_dump(mode="json") for r in rows]
+            return [VersionSummary.of(v).model_dump(mode="json") for v in views]
 
         return self._run(op)
 
@@ -217,16 +208,45 @@ class DirectBackend:
 
 
 Backend = HttpBackend | DirectBackend
+_NO_TOKEN = (
+    "this needs an admin key's token: --token-file PATH (a file holding only the token) or "
+    "the EVENHAND_TOKEN environment variable"
+)
+
+
+def _token(args: argparse.Namespace) -> str | None:
+    """The admin token from ``--token-file`` (first) or EVENHAND_TOKEN; None if neither."""
+    if args.token_file:
+        if args.token_file.startswith("eh_"):
+            raise CliError(
+                "--token-file takes the path of a file holding the token, never the token "
+                "itself (it would show in shell history and ps)"
+            )
+        try:
+            text = Path(args.token_file).read_text(encoding="utf-8")
+        except OSError as exc:
+            raise CliError(f"cannot read --token-file {args.token_file}: {exc.strerror}") from None
+        except UnicodeDecodeError:
+            raise CliError(f"--token-file {args.token_file} is not a text file") from None
+        token = text.strip()
+        if not token or len(token.split()) != 1:
+            raise CliError(
+                f"--token-file {args.token_file} must hold the token alone "
+                "(e.g. `evenhand keys create ... | tail -n 1 > FILE`)"
+            )
+        return token
+    env = os.environ.get("EVENHAND_TOKEN", "").strip()
+    return env or None
 
 
 def _backend(args: argparse.Namespace) -> Backend:
     url = args.url or os.environ.get("EVENHAND_URL")
+    token = _token(args)
     if url:
-        token = args.token or os.environ.get("EVENHAND_TOKEN")
-        if not token:
-            raise CliError("--url needs --token (or EVENHAND_TOKEN): an admin key's token")
+        if token is None:
+            raise CliError("--url " + _NO_TOKEN)
         return HttpBackend(url, token)
-    return DirectBackend(args.actor)
+    return DirectBackend(token)
 
 
 def register(sub: Any) -> None:
@@ -236,10 +256,15 @@ def register(sub: Any) -> None:
     psub = p.add_subparsers(dest="policy_command", required=True, metavar="ACTION")
 
     def add(name: str, help_text: str, handler: Callable[[argparse.Namespace], int]) -> Any:
-        c = psub.add_parser(name, help=help_text)
+        # No abbreviations: ``--token eh_...`` must not pass for ``--token-file``.
+        c = psub.add_parser(name, help=help_text, allow_abbrev=False)
         c.add_argument("--url", help="API base URL (else: work on EVENHAND_DATABASE_URL directly)")
-        c.add_argument("--token", help="admin token for --url (or EVENHAND_TOKEN)")
-        c.add_argument("--actor", help="admin key name acting, when working on the database")
+        c.add_argument(
+            "--token-file",
+            metavar="PATH",
+            help="a file holding an admin key's token (else EVENHAND_TOKEN): the key every "
+            "change is attributed to; needed for changes, and for everything with --url",
+        )
         c.set_defaults(handler=handler)
         return c
 
@@ -293,10 +318,10 @@ def _add_expect(c: argparse.ArgumentParser, what: str) -> None:
     c.add_argument(
         "--expect-current",
         type=_expected_version,
-        default=UNCHECKED,
+        required=True,
         metavar="VERSION|none",
-        help=f"the version you expect to be {what} now: a repeat of a change already made "
-        "answers as the first time and changes nothing; if the policy changed meanwhile, "
+        help=f"required: the version you expect to be {what} now. A repeat of a change already "
+        "made answers as the first time and changes nothing; if the policy changed meanwhile, "
         "nothing happens and the error says what is current",
     )
 
@@ -345,6 +370,8 @@ def _rollback(args: argparse.Namespace) -> int:
 def _shadow(args: argparse.Namespace) -> int:
     if args.clear == (args.version is not None):
         raise CliError("give a version to shadow, or --clear")
+    if args.clear and args.expect_current is None:
+        raise CliError("--clear with --expect-current none: there is nothing to end")
     out = _backend(args).shadow(
         args.name, None if args.clear else args.version, args.expect_current
     )

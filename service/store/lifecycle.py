@@ -3,201 +3,146 @@
 These functions change the session and flush; they never commit (the caller — an HTTP request
 or a CLI command — commits once at its end, so a lifecycle step and its event are one write).
 
-Concurrency: every change first locks the policy (:func:`_lock_policy`) and then reads its
-state afresh, so two admins acting at once are served one after the other and the second
-sees what the first did (two approvals of one draft: one succeeds, the other is a 409).
-Switches of the active or shadow version also take the switch lock that orders them against
-scoring (``service.store.switch_lock``).
+Every change is attributed to a credential (:class:`~service.store.keys.Actor`: the API key's
+id and name), and four-eyes compares credentials, not names: the key that submitted a version
+cannot approve it. Versions and events are insert-only; what a change moves is the policy's
+derived state row (``policy_state``: active version, shadow version, last event), updated in
+the transaction that records the event.
 
-Safe repeats: activate, rollback and shadow on/off take ``expected_current``, the version the
-caller believes is active (the shadow version, for shadow on/off; ``None`` for "none").
+Concurrency: every change first locks the policy's state row (:func:`_lock_policy`) and then
+reads its versions and events afresh, so two admins acting at once are served one after the
+other and the second sees what the first did (two approvals of one draft: one succeeds, the
+other is a 409). Switches of the active or shadow version also take the switch lock that
+orders them against scoring (``service.store.switch_lock``).
+
+Safe repeats: activate, rollback and shadow on/off require ``expected_current``, the version
+the caller believes is active (the shadow version, for shadow on/off; ``None`` for "none").
 When it is current, the change is made. When it is not, and the policy's last change of that
 kind is exactly this request's change made from that version (an activation from the
 expected version to the requested one, say), the request is a repeat: it is answered with
 the same result and changes nothing. Otherwise it is stale: 409 ``current_changed`` with the
-current state in the error's details. Without ``expected_current`` nothing is checked (a
-second rollback then rolls back again).
+current state in the error's details. The event records the expectation the request carried.
 """
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from typing import Any
 
-from pydantic import ValidationError
 from sqlalchemy import select
+from sqlalchemy.dialects.postgresql import insert as postgresql_insert
+from sqlalchemy.dialects.sqlite import insert as sqlite_insert
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
 from service.errors import Conflict, Forbidden, NotFound, Unprocessable
 from service.policy.document import PolicyDocument, content_hash, document_json
 from service.store import policies as repo
-from service.store.expected import UNCHECKED, Expected, Unchecked
+from service.store.keys import Actor
 from service.store.models import (
     LifecycleAction,
     PolicyEvent,
-    PolicyShadow,
+    PolicyState,
     PolicyVersion,
     VersionStatus,
     utcnow,
 )
+from service.store.policies import ShadowView, VersionView
 from service.store.policy_diff import Change, diff_documents
+from service.store.policy_documents import check_auditable, parse_document
+from service.store.stale_requests import current_changed
 from service.store.switch_lock import hold_for_switch
 
 
-def parse_document(data: Any) -> PolicyDocument:
-    """Validate a policy document, turning pydantic errors into one 422 with details."""
-    if isinstance(data, PolicyDocument):
-        return data
-    try:
-        return PolicyDocument.model_validate(data)
-    except ValidationError as exc:
-        details = [
-            {
-                "code": str(e["type"]),
-                "message": str(e["msg"]),
-                "field": ".".join(str(p) for p in e["loc"]) or None,
-            }
-            for e in exc.errors()
-        ]
-        first = details[0]
-        where = f"{first['field']}: " if first["field"] else ""
-        raise Unprocessable(
-            f"invalid policy document: {where}{first['message']}",
-            code="invalid_policy",
-            field=first["field"],
-            details=details,
-        ) from None
+@dataclass(frozen=True, slots=True)
+class _Locked:
+    """A policy as read under its lock: the state row (changed in place by switches) and its
+    versions with their derived statuses."""
+
+    state: PolicyState
+    versions: dict[int, PolicyVersion]
+    statuses: dict[int, str]
 
 
 def _record(
     session: Session,
-    name: str,
+    state: PolicyState,
     action: LifecycleAction,
-    actor: str,
+    actor: Actor,
     *,
     from_version: int | None = None,
     to_version: int | None = None,
     reason: str | None = None,
+    expected: tuple[int | None] | None = None,
 ) -> PolicyEvent:
+    """Insert one event and make it the state's last; ``expected``: the request's
+    ``expected_current`` as a 1-tuple, or None when the request carried none."""
     event = PolicyEvent(
-        name=name,
+        name=state.name,
         action=action.value,
-        actor=actor,
+        actor_key_id=actor.key_id,
+        actor=actor.name,
         at=utcnow(),
         from_version=from_version,
         to_version=to_version,
         reason=reason,
+        expected_sent=expected is not None,
+        expected_current=None if expected is None else expected[0],
     )
     session.add(event)
+    _flush(session)
+    state.last_event_id = event.id
     return event
 
 
-def require_version(session: Session, name: str, version: int) -> PolicyVersion:
-    row = repo.get_version(session, name, version)
-    if row is None:
+def require_version(session: Session, name: str, version: int) -> VersionView:
+    view = repo.version_view(session, name, version)
+    if view is None:
         if not repo.policy_exists(session, name):
             raise NotFound(f"no policy named {name!r}", code="unknown_policy")
         raise NotFound(f"policy {name!r} has no version {version}", code="unknown_version")
-    return row
+    return view
 
 
-def _lock_policy(
-    session: Session, name: str, *, switch: bool, must_exist: bool = True
-) -> dict[int, PolicyVersion]:
-    """Serialise lifecycle changes of ``name``; its versions by number, read afresh.
+def _create_state(session: Session, name: str) -> None:
+    """The policy's state row, if it has none yet (a first submission); two first
+    submissions at once both end up queued on the one row."""
+    conn = session.connection()
+    insert = postgresql_insert if conn.dialect.name == "postgresql" else sqlite_insert
+    conn.execute(insert(PolicyState).values(name=name).on_conflict_do_nothing())
+
+
+def _lock_policy(session: Session, name: str, *, switch: bool, create: bool = False) -> _Locked:
+    """Serialise lifecycle changes of ``name``; its state, versions and statuses, read afresh.
 
     A switch of the active or shadow version first takes the switch lock exclusively (before
-    any row lock: the lock order of ``service.store.switch_lock``). Then every version row of
-    the policy is locked (PostgreSQL ``FOR NO KEY UPDATE``: changes of one policy queue up,
-    while scoring's foreign-key checks, which take key-share locks, are not held up; SQLite
-    holds its single write lock already) and read again, replacing whatever the session had
-    loaded before: every check after this sees the latest committed state.
+    any row lock: the lock order of ``service.store.switch_lock``). Then the policy's state
+    row is locked (PostgreSQL ``FOR NO KEY UPDATE``: changes of one policy queue up; SQLite
+    holds its single write lock already) and everything is read again, replacing whatever
+    the session had loaded before: every check after this sees the latest committed state.
     """
     if switch:
         hold_for_switch(session)
-    rows = session.scalars(
-        select(PolicyVersion)
-        .where(PolicyVersion.name == name)
-        .order_by(PolicyVersion.version)
+    if create:
+        _create_state(session, name)
+    state = session.scalar(
+        select(PolicyState)
+        .where(PolicyState.name == name)
         .with_for_update(key_share=True)
         .execution_options(populate_existing=True)
-    ).all()
-    if not rows and must_exist:
+    )
+    if state is None:
         raise NotFound(f"no policy named {name!r}", code="unknown_policy")
-    return {row.version: row for row in rows}
+    rows = repo.list_versions(session, name)
+    views = repo.views_of(session, name, rows, state.active_version)
+    return _Locked(state, {r.version: r for r in rows}, {v.row.version: v.status for v in views})
 
 
-def _version_in(rows: dict[int, PolicyVersion], name: str, version: int) -> PolicyVersion:
-    row = rows.get(version)
+def _version_in(locked: _Locked, name: str, version: int) -> PolicyVersion:
+    row = locked.versions.get(version)
     if row is None:
         raise NotFound(f"policy {name!r} has no version {version}", code="unknown_version")
     return row
-
-
-def _active_in(rows: dict[int, PolicyVersion]) -> PolicyVersion | None:
-    return next((r for r in rows.values() if r.status == VersionStatus.ACTIVE.value), None)
-
-
-def _version_text(version: int | None, role: str) -> str:
-    return f"no version is {role}" if version is None else f"v{version} is {role}"
-
-
-def _current_changed(
-    session: Session, name: str, expected: int | None, what: str, current: int | None
-) -> Conflict:
-    """409 for a stale request: what the caller expected, what is current, and the state."""
-    rows = {r.version: r for r in repo.list_versions(session, name)}
-    active = _active_in(rows)
-    shadow = repo.get_shadow(session, name)
-    last = (
-        repo.last_switch(session, name)
-        if what == "active"
-        else repo.last_shadow_change(session, name)
-    )
-    since = ""
-    details: list[dict[str, Any]] = [
-        {
-            "code": "active_version",
-            "message": _version_text(None if active is None else active.version, "active"),
-            "field": "active_version",
-            "value": None if active is None else active.version,
-        },
-        {
-            "code": "shadow_version",
-            "message": _version_text(None if shadow is None else shadow.version, "the shadow"),
-            "field": "shadow_version",
-            "value": None if shadow is None else shadow.version,
-        },
-    ]
-    if last is not None:
-        move = " -> ".join(
-            "-" if v is None else f"v{v}" for v in (last.from_version, last.to_version)
-        )
-        change = f"{last.action} {move} by {last.actor} at {last.at.isoformat()}"
-        since = f" (last change: {change})"
-        details.append(
-            {
-                "code": "last_change",
-                "message": change,
-                "field": None,
-                "value": {
-                    "action": last.action,
-                    "actor": last.actor,
-                    "at": last.at.isoformat(),
-                    "from_version": last.from_version,
-                    "to_version": last.to_version,
-                },
-            }
-        )
-    expected_text = "none" if expected is None else f"v{expected}"
-    current_text = "none" if current is None else f"v{current}"
-    return Conflict(
-        f"{name}: the request expected {expected_text} as the {what} version but "
-        f"{current_text} is{since}; check the history and decide again",
-        code="current_changed",
-        field="expected_current",
-        details=details,
-    )
 
 
 def _flush(session: Session) -> None:
@@ -210,31 +155,8 @@ def _flush(session: Session) -> None:
         ) from None
 
 
-MAX_TOLERANCE = 0.5
-
-
-def check_auditable(document: PolicyDocument) -> None:
-    """A version that makes promises must say how far realized rates may stray: its audit
-    tests every gap against that tolerance, so it must be positive (never 0 by omission)."""
-    targets = document.targets
-    if targets is None:
-        return
-    tolerance = targets.tolerance
-    if tolerance is None or not 0 < tolerance <= MAX_TOLERANCE:
-        raise Unprocessable(
-            f"targets.tolerance is {tolerance}: a version with targets needs a tolerance "
-            f"greater than 0 and at most {MAX_TOLERANCE} (the largest gap that keeps the "
-            "promise; the audit tests every gap against it)",
-            code="tolerance_required",
-            field="targets.tolerance",
-        )
-
-
-def submit(session: Session, name: str, data: Any, author: str) -> PolicyVersion:
-    """Store a new draft version of policy ``name``; its number is returned on the row.
-
-    Two first submissions of a new policy at once: one gets 409 ``concurrent_change``
-    (there are no rows to lock yet); later ones queue on the policy's rows."""
+def submit(session: Session, name: str, data: Any, author: Actor) -> VersionView:
+    """Store a new draft version of policy ``name``, numbered after the last one."""
     document = parse_document(data)
     if document.name != name:
         raise Unprocessable(
@@ -243,77 +165,80 @@ def submit(session: Session, name: str, data: Any, author: str) -> PolicyVersion
             field="name",
         )
     check_auditable(document)
-    rows = _lock_policy(session, name, switch=False, must_exist=False)
-    number = max(rows, default=0) + 1
+    locked = _lock_policy(session, name, switch=False, create=True)
+    number = max(locked.versions, default=0) + 1
     row = PolicyVersion(
         name=name,
         version=number,
         document=document_json(document),
         content_hash=content_hash(document),
-        status=VersionStatus.DRAFT.value,
-        author=author,
+        author_key_id=author.key_id,
+        author=author.name,
         created_at=utcnow(),
     )
     session.add(row)
     _flush(session)
-    _record(session, name, LifecycleAction.SUBMIT, author, to_version=number)
+    _record(session, locked.state, LifecycleAction.SUBMIT, author, to_version=number)
     _flush(session)
-    return row
+    return VersionView(row, VersionStatus.DRAFT.value, None, None)
 
 
-def approve(session: Session, name: str, version: int, approver: str) -> PolicyVersion:
-    row = _version_in(_lock_policy(session, name, switch=False), name, version)
-    if row.status != VersionStatus.DRAFT.value:
+def _same_credential(row: PolicyVersion, actor: Actor) -> bool:
+    if row.author_key_id is not None:
+        return row.author_key_id == actor.key_id
+    return row.author == actor.name  # a migrated version whose author named no key
+
+
+def approve(session: Session, name: str, version: int, approver: Actor) -> VersionView:
+    locked = _lock_policy(session, name, switch=False)
+    row = _version_in(locked, name, version)
+    status = locked.statuses[version]
+    if status != VersionStatus.DRAFT.value:
         raise Conflict(
-            f"{name} v{version} is {row.status}; only a draft can be approved",
+            f"{name} v{version} is {status}; only a draft can be approved",
             code="invalid_transition",
         )
-    if row.author == approver:
+    if _same_credential(row, approver):
         raise Forbidden(
-            f"{name} v{version} was submitted by {approver!r}; a different admin key must "
-            "approve it (four-eyes rule)",
+            f"{name} v{version} was submitted with this key ({approver.name!r}); a different "
+            "admin key must approve it (four-eyes rule)",
             code="four_eyes",
         )
-    row.status = VersionStatus.APPROVED.value
-    row.approver = approver
-    row.approved_at = utcnow()
-    _record(session, name, LifecycleAction.APPROVE, approver, to_version=version)
+    event = _record(session, locked.state, LifecycleAction.APPROVE, approver, to_version=version)
     _flush(session)
-    return row
+    return VersionView(row, VersionStatus.APPROVED.value, approver.name, event.at)
 
 
 def _switch(
     session: Session,
-    name: str,
-    current: PolicyVersion | None,
-    target: PolicyVersion,
-    actor: str,
+    locked: _Locked,
+    target: int,
+    actor: Actor,
     action: LifecycleAction,
     reason: str | None,
-) -> PolicyVersion:
-    """Retire ``current`` (the active version read under the policy lock), activate
-    ``target`` and record it."""
-    if current is not None:
-        current.status = VersionStatus.RETIRED.value
-        _flush(session)  # retire first: the one-active index would refuse two at once
-    target.status = VersionStatus.ACTIVE.value
-    _flush(session)
-    shadow = repo.get_shadow(session, name)
-    if shadow is not None and shadow.version == target.version:
+    expected: int | None,
+) -> VersionView:
+    """Make ``target`` the active version (the one active under the lock retires) and
+    record it."""
+    state = locked.state
+    previous = state.active_version
+    if state.shadow_version == target:
         # Shadowing the active version itself would only duplicate it.
-        session.delete(shadow)
-        _record(session, name, LifecycleAction.UNSHADOW, actor, from_version=target.version)
+        state.shadow_version = None
+        _record(session, state, LifecycleAction.UNSHADOW, actor, from_version=target)
+    state.active_version = target
     _record(
         session,
-        name,
+        state,
         action,
         actor,
-        from_version=None if current is None else current.version,
-        to_version=target.version,
+        from_version=previous,
+        to_version=target,
         reason=reason,
+        expected=(expected,),
     )
     _flush(session)
-    return target
+    return require_version(session, state.name, target)
 
 
 def _repeats_switch(
@@ -321,19 +246,19 @@ def _repeats_switch(
     name: str,
     action: LifecycleAction,
     expected: int | None,
-    current: PolicyVersion | None,
+    current: int | None,
     to_version: int | None,
 ) -> bool:
     """The policy's last switch is this very request's: ``action`` from ``expected`` to the
     version now active (which is ``to_version`` when one is named)."""
-    if current is None or to_version not in (None, current.version):
+    if current is None or to_version not in (None, current):
         return False
     last = repo.last_switch(session, name)
     return (
         last is not None
         and last.action == action.value
         and last.from_version == expected
-        and last.to_version == current.version
+        and last.to_version == current
     )
 
 
@@ -341,146 +266,157 @@ def activate(
     session: Session,
     name: str,
     version: int,
-    actor: str,
+    actor: Actor,
     reason: str | None = None,
-    expected_current: Expected = UNCHECKED,
-) -> PolicyVersion:
+    *,
+    expected_current: int | None,
+) -> VersionView:
     """Make an approved version the active one; the previously active version retires."""
-    rows = _lock_policy(session, name, switch=True)
-    target = _version_in(rows, name, version)
-    current = _active_in(rows)
-    current_version = None if current is None else current.version
-    if not isinstance(expected_current, Unchecked) and expected_current != current_version:
+    locked = _lock_policy(session, name, switch=True)
+    _version_in(locked, name, version)
+    current = locked.state.active_version
+    if expected_current != current:
         action = LifecycleAction.ACTIVATE
         if _repeats_switch(session, name, action, expected_current, current, version):
-            return target
-        raise _current_changed(session, name, expected_current, "active", current_version)
-    if target.status != VersionStatus.APPROVED.value:
-        hint = (
-            " (use rollback to bring back a retired version)" if target.status == "retired" else ""
-        )
+            return require_version(session, name, version)
+        raise current_changed(session, locked.state, expected_current, "active")
+    status = locked.statuses[version]
+    if status != VersionStatus.APPROVED.value:
+        hint = " (use rollback to bring back a retired version)" if status == "retired" else ""
         raise Conflict(
-            f"{name} v{version} is {target.status}; only an approved version can be "
-            f"activated{hint}",
+            f"{name} v{version} is {status}; only an approved version can be activated{hint}",
             code="invalid_transition",
         )
-    return _switch(session, name, current, target, actor, LifecycleAction.ACTIVATE, reason)
+    return _switch(
+        session, locked, version, actor, LifecycleAction.ACTIVATE, reason, expected_current
+    )
 
 
 def rollback(
     session: Session,
     name: str,
-    actor: str,
+    actor: Actor,
     reason: str,
     to_version: int | None = None,
-    expected_current: Expected = UNCHECKED,
-) -> PolicyVersion:
+    *,
+    expected_current: int | None,
+) -> VersionView:
     """Re-activate the previously active version, or the named approved/retired one."""
     if not reason or not reason.strip():
         raise Unprocessable("a rollback needs a reason", code="reason_required", field="reason")
-    rows = _lock_policy(session, name, switch=True)
-    current = _active_in(rows)
-    current_version = None if current is None else current.version
-    if not isinstance(expected_current, Unchecked) and expected_current != current_version:
+    locked = _lock_policy(session, name, switch=True)
+    current = locked.state.active_version
+    if expected_current != current:
         action = LifecycleAction.ROLLBACK
         if _repeats_switch(session, name, action, expected_current, current, to_version):
             assert current is not None  # a repeat leaves a version active
-            return current
-        raise _current_changed(session, name, expected_current, "active", current_version)
+            return require_version(session, name, current)
+        raise current_changed(session, locked.state, expected_current, "active")
     if current is None:
         raise Conflict(
             f"policy {name!r} has no active version to roll back", code="no_active_version"
         )
     if to_version is None:
-        activation = repo.last_activation_of(session, name, current.version)
+        activation = repo.last_activation_of(session, name, current)
         if activation is None or activation.from_version is None:
             raise Conflict(
-                f"{name} v{current.version} was the first active version; there is nothing "
+                f"{name} v{current} was the first active version; there is nothing "
                 "to roll back to (name a version with to_version)",
                 code="nothing_to_roll_back_to",
             )
         to_version = activation.from_version
-    target = _version_in(rows, name, to_version)
-    if target.version == current.version:
+    _version_in(locked, name, to_version)
+    if to_version == current:
         raise Conflict(f"{name} v{to_version} is already active", code="invalid_transition")
-    if target.status not in (VersionStatus.APPROVED.value, VersionStatus.RETIRED.value):
+    status = locked.statuses[to_version]
+    if status not in (VersionStatus.APPROVED.value, VersionStatus.RETIRED.value):
         raise Conflict(
-            f"{name} v{to_version} is {target.status}; rollback needs an approved or retired "
-            "version",
+            f"{name} v{to_version} is {status}; rollback needs an approved or retired version",
             code="invalid_transition",
         )
-    return _switch(session, name, current, target, actor, LifecycleAction.ROLLBACK, reason.strip())
+    return _switch(
+        session,
+        locked,
+        to_version,
+        actor,
+        LifecycleAction.ROLLBACK,
+        reason.strip(),
+        expected_current,
+    )
 
 
 def set_shadow(
-    session: Session,
-    name: str,
-    version: int,
-    actor: str,
-    expected_current: Expected = UNCHECKED,
-) -> PolicyShadow:
+    session: Session, name: str, version: int, actor: Actor, *, expected_current: int | None
+) -> ShadowView:
     """Evaluate an approved version beside the active one on every recommendation.
 
     ``expected_current`` is the shadow version the caller expects (``None``: none)."""
-    rows = _lock_policy(session, name, switch=True)
-    target = _version_in(rows, name, version)
-    shadow = repo.get_shadow(session, name)
-    previous = None if shadow is None else shadow.version
-    if not isinstance(expected_current, Unchecked) and expected_current != previous:
+    locked = _lock_policy(session, name, switch=True)
+    _version_in(locked, name, version)
+    state = locked.state
+    previous = state.shadow_version
+    if expected_current != previous:
         last = repo.last_shadow_change(session, name)
         if (
-            shadow is not None
-            and previous == version
+            previous == version
             and last is not None
             and last.action == LifecycleAction.SHADOW.value
             and last.from_version == expected_current
             and last.to_version == version
         ):
-            return shadow  # a repeat: designated by this very request
-        raise _current_changed(session, name, expected_current, "shadow", previous)
+            return ShadowView(name, version, last.actor, last.at)  # a repeat
+        raise current_changed(session, state, expected_current, "shadow")
     if previous == version:
         raise Conflict(f"{name} v{version} is the shadow already", code="invalid_transition")
-    if target.status != VersionStatus.APPROVED.value:
+    status = locked.statuses[version]
+    if status != VersionStatus.APPROVED.value:
         raise Conflict(
-            f"{name} v{version} is {target.status}; only an approved (not active) version can "
+            f"{name} v{version} is {status}; only an approved (not active) version can "
             "be the shadow",
             code="invalid_transition",
         )
-    if shadow is None:
-        shadow = PolicyShadow(
-            name=name, version=version, designated_by=actor, designated_at=utcnow()
-        )
-        session.add(shadow)
-    else:
-        shadow.version = version
-        shadow.designated_by = actor
-        shadow.designated_at = utcnow()
-    _record(session, name, LifecycleAction.SHADOW, actor, from_version=previous, to_version=version)
+    state.shadow_version = version
+    event = _record(
+        session,
+        state,
+        LifecycleAction.SHADOW,
+        actor,
+        from_version=previous,
+        to_version=version,
+        expected=(expected_current,),
+    )
     _flush(session)
-    return shadow
+    return ShadowView(name, version, actor.name, event.at)
 
 
 def clear_shadow(
-    session: Session, name: str, actor: str, expected_current: Expected = UNCHECKED
+    session: Session, name: str, actor: Actor, *, expected_current: int | None
 ) -> None:
     """Stop shadow evaluation. ``expected_current``: the shadow version the caller ends."""
-    _lock_policy(session, name, switch=True)
-    shadow = repo.get_shadow(session, name)
-    previous = None if shadow is None else shadow.version
-    if not isinstance(expected_current, Unchecked) and expected_current != previous:
+    locked = _lock_policy(session, name, switch=True)
+    state = locked.state
+    previous = state.shadow_version
+    if expected_current != previous:
         last = repo.last_shadow_change(session, name)
         if (
-            shadow is None
+            previous is None
             and last is not None
             and last.action == LifecycleAction.UNSHADOW.value
             and last.from_version == expected_current
         ):
             return  # a repeat: that shadow has ended
-        raise _current_changed(session, name, expected_current, "shadow", previous)
-    if shadow is None:
+        raise current_changed(session, state, expected_current, "shadow")
+    if previous is None:
         raise NotFound(f"policy {name!r} has no shadow version", code="no_shadow")
-    _record(session, name, LifecycleAction.UNSHADOW, actor, from_version=shadow.version)
-    session.delete(shadow)
+    state.shadow_version = None
+    _record(
+        session,
+        state,
+        LifecycleAction.UNSHADOW,
+        actor,
+        from_version=previous,
+        expected=(expected_current,),
+    )
     _flush(session)
 
 
@@ -492,8 +428,8 @@ def history(session: Session, name: str) -> list[PolicyEvent]:
 
 
 def diff(session: Session, name: str, from_version: int, to_version: int) -> list[Change]:
-    a = require_version(session, name, from_version)
-    b = require_version(session, name, to_version)
+    a = require_version(session, name, from_version).row
+    b = require_version(session, name, to_version).row
     return diff_documents(
         PolicyDocument.model_validate(a.document), PolicyDocument.model_validate(b.document)
     )

@@ -20,8 +20,8 @@ short, and scoring never waits on anything but a switch in progress.
 
 SQLite needs nothing: every write transaction, scoring's and a switch's alike, holds the
 database's single write lock from ``BEGIN IMMEDIATE`` to its commit (``service.store.db``).
-The lock order is always this lock first, then a policy's rows (``lifecycle``), so a switch
-waiting for rows never holds up scoring that waits for it.
+The lock order is always this lock first, then a policy's state row (``lifecycle``), so a
+switch waiting for the row never holds up scoring that waits for it.
 """
 
 from __future__ import annotations
@@ -45,7 +45,7 @@ def hold_for_scoring(conn: Connection) -> None:
 
 def hold_for_switch(session: Session) -> None:
     """A switch: hold the lock exclusively until the session's transaction ends. Call before
-    the switch reads anything, and before it locks the policy's rows."""
+    the switch reads anything, and before it locks the policy's state row."""
     conn = session.connection()
     if conn.dialect.name == "postgresql":
         conn.exec_driver_sql(_EXCLUSIVE_SQL)
