@@ -104,15 +104,14 @@ def load(url: str, n: int) -> float:
             doc = bench_document(cut)
             conn.execute(
                 text(
-                    "INSERT INTO policy_versions (name, version, document, content_hash, status, "
-                    "author, created_at) VALUES (:n, :v, :d, :h, :s, 'bench', :t)"
+                    "INSERT INTO policy_versions (name, version, document, content_hash, "
+                    "author, created_at) VALUES (:n, :v, :d, :h, 'bench', :t)"
                 ),
                 {
                     "n": POLICY,
                     "v": version,
                     "d": json.dumps(doc),
                     "h": content_hash(PolicyDocument.model_validate(doc)),
-                    "s": "active" if version == 1 else "approved",
                     "t": "2026-09-01 00:00:00.000000" if sqlite else "2026-09-01T00:00:00Z",
                 },
             )

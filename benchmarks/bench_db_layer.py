@@ -33,12 +33,12 @@ from bench_scoring import bodies, prepare
 
 from service.api.recommendation_schemas import RecommendationRequest
 from service.demo.policy import demo_policy
+from service.log.records import record_leaf_hash
 from service.policy.document import PolicyDocument
 from service.policy.rules import evaluate
 from service.settings import Settings
 from service.store import keys, lifecycle, scoring
 from service.store.db import create_db_engine, create_session_factory
-from service.store.records import record_leaf_hash
 from service.store.scoring import DocumentCache, ScoringContext, fingerprint
 
 COLUMNS = [
@@ -80,9 +80,10 @@ def main() -> int:
         factory = create_session_factory(engine)
         doc = PolicyDocument.model_validate(demo_policy())
         with factory() as s:
-            lifecycle.submit(s, doc.name, doc, "author")
-            lifecycle.approve(s, doc.name, 1, "reviewer")
-            lifecycle.activate(s, doc.name, 1, "author", "benchmark")
+            author = keys.admin_actor(s, tokens["author"])
+            lifecycle.submit(s, doc.name, doc, author)
+            lifecycle.approve(s, doc.name, 1, keys.admin_actor(s, tokens["reviewer"]))
+            lifecycle.activate(s, doc.name, 1, author, "benchmark", expected_current=None)
             s.commit()
         ctx = ScoringContext(b"k" * 32, DocumentCache(), 10_000)
         token = tokens["scoring"]
@@ -103,15 +104,19 @@ def main() -> int:
             for r in reqs:
                 con.execute("BEGIN")
                 con.execute(
-                    "SELECT id, role, revoked_at FROM api_keys WHERE token_hash = ?", (token_hash,)
+                    "SELECT k.id, k.name, k.role FROM api_keys AS k WHERE k.token_hash = ? "
+                    "AND NOT EXISTS (SELECT 1 FROM key_events AS e "
+                    "WHERE e.key_id = k.id AND e.action = 'revoke')",
+                    (token_hash,),
                 ).fetchone()
                 con.execute(
                     "SELECT request_fingerprint FROM recommendations WHERE request_id = ?",
                     (r.request_id,),
                 ).fetchone()
                 con.execute(
-                    "SELECT version, content_hash FROM policy_versions "
-                    "WHERE name = ? AND status = 'active'",
+                    "SELECT p.active_version, v.content_hash FROM policy_state AS p "
+                    "JOIN policy_versions AS v ON v.name = p.name AND v.version = p.active_version "
+                    "WHERE p.name = ?",
                     (r.policy,),
                 ).fetchone()
                 con.execute("COMMIT")

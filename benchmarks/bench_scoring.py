@@ -308,7 +308,13 @@ def run_backend(backend: str, args: argparse.Namespace, workdir: Path) -> dict[s
         service = ServerProcess(env, workdir / f"evenhand-{backend}.log", workers=args.workers)
         with service:
             with EvenhandClient(service.base_url) as api:
-                api.publish(tokens["author"], tokens["reviewer"], document, "benchmark")
+                api.publish(
+                    tokens["author"],
+                    tokens["reviewer"],
+                    document,
+                    "benchmark",
+                    expected_current=None,
+                )
             run_load(service.port, "/v1/recommendations", tokens["scoring"], bodies(200, "w", name))
             service_result, service_cpu = measured(
                 service,

@@ -77,11 +77,11 @@ def prepare(url: str) -> Settings:
     settings = Settings(database_url=url, draw_secret="benchmark-secret")  # type: ignore[arg-type]
     factory = create_session_factory(create_db_engine(settings))
     with factory() as s:
-        keys.create_key(s, "a", "admin")
-        keys.create_key(s, "b", "admin")
-        lifecycle.submit(s, "bench", POLICY, "a")
-        lifecycle.approve(s, "bench", 1, "b")
-        lifecycle.activate(s, "bench", 1, "a")
+        a = keys.Actor.of(keys.create_key(s, "a", "admin")[0])
+        b = keys.Actor.of(keys.create_key(s, "b", "admin")[0])
+        lifecycle.submit(s, "bench", POLICY, a)
+        lifecycle.approve(s, "bench", 1, b)
+        lifecycle.activate(s, "bench", 1, a, expected_current=None)
         s.commit()
     return settings
 

@@ -10,15 +10,16 @@ from contextlib import asynccontextmanager
 import anyio.to_thread
 from fastapi import FastAPI
 
-from service.api import health, log, outcomes, policies, recommendations, reports, warnings
+from service.api import health, keys, log, outcomes, policies, recommendations, reports, warnings
 from service.api.deps import KeyCache
 from service.api.errors import error_responses, install_error_handlers
 from service.api.limits import BodySizeLimit
-from service.audit.sealer import PeriodicSealer
 from service.settings import Settings
 from service.store.committer import GroupCommitter
 from service.store.db import create_db_engine, create_session_factory
+from service.store.periodic_sealer import PeriodicSealer
 from service.store.scoring import DocumentCache, ScoringContext
+from service.store.signing import signer_from_settings
 
 WORKER_THREADS = 8
 logger = logging.getLogger("evenhand.app")
@@ -29,8 +30,10 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     warning = settings.demo_warning()
     if warning is not None:
         logger.warning(warning)
-    # Refuse to start without a usable draw secret: every recommendation needs it.
+    # Refuse to start without a usable draw secret (every recommendation needs it) or
+    # signing key (every seal of the log needs it).
     secret = settings.draw_key()
+    signer = signer_from_settings(settings)
 
     @asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
@@ -45,7 +48,13 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         app.state.committer = committer
         committer.start()
         # Background tasks (e.g. the periodic log sealer) start here and stop after `yield`.
-        sealer = PeriodicSealer(app.state.session_factory, settings.seal_interval_seconds)
+        sealer = PeriodicSealer(
+            app.state.session_factory,
+            signer,
+            settings.timezone,
+            settings.seal_interval_seconds,
+            settings.head_mirror,
+        )
         sealer.start()
         # Everything made so far (modules, the app, the engine) lives as long as the server:
         # move it out of the cyclic garbage collector's view, so the full collections that
@@ -76,6 +85,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         lifespan=lifespan,
     )
     app.state.settings = settings
+    app.state.signer = signer
     app.state.scoring = ScoringContext(secret, DocumentCache(), settings.max_batch_items)
     app.state.key_cache = KeyCache(settings.auth_cache_seconds)
     install_error_handlers(app)
@@ -84,7 +94,14 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     unavailable = error_responses(503)
     app.include_router(recommendations.router, responses=unavailable)
     app.include_router(health.router)
-    for router in (policies.router, log.router, outcomes.router, reports.router, warnings.router):
+    for router in (
+        policies.router,
+        keys.router,
+        log.router,
+        outcomes.router,
+        reports.router,
+        warnings.router,
+    ):
         app.include_router(router, responses=unavailable)
     app.add_middleware(BodySizeLimit, max_bytes=settings.max_body_bytes)
     return app

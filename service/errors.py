@@ -49,6 +49,13 @@ class Conflict(ServiceError):
     code = "conflict"
 
 
+class LogInconsistent(Conflict):
+    """The log's own records contradict each other: it was damaged or edited. Nothing is
+    computed from it until ``evenhand log verify`` has found the record."""
+
+    code = "log_inconsistent"
+
+
 class PayloadTooLarge(ServiceError):
     status_code = 413
     code = "payload_too_large"

@@ -25,6 +25,10 @@ class MissingDrawSecret(DrawSecretError):
     """Raised when scoring is attempted without ``EVENHAND_DRAW_SECRET``."""
 
 
+class SigningKeyUnavailable(RuntimeError):
+    """The signing key file is set but cannot be read."""
+
+
 class ShortDrawSecret(DrawSecretError):
     """Raised when ``EVENHAND_DRAW_SECRET`` is shorter than ``MIN_DRAW_SECRET_BYTES``."""
 
@@ -72,6 +76,26 @@ class Settings(BaseSettings):
         "asks the database); a revoked key is refused at the latest this long after",
     )
 
+    signing_key: SecretStr | None = Field(
+        default=None,
+        description="Ed25519 key that signs the log's tree heads: a 32-byte seed in hex or "
+        "base64, or a PEM private key (`evenhand log keygen` writes one). Keep it outside "
+        "the database; required to seal, except in demo mode",
+    )
+    signing_key_file: str | None = Field(
+        default=None, description="a file holding the signing key (instead of signing_key)"
+    )
+    trusted_public_keys: str = Field(
+        default="",
+        description="comma-separated raw Ed25519 public keys (64 hex digits) of earlier signing "
+        "keys: heads they signed still verify after a rotation",
+    )
+    head_mirror: str | None = Field(
+        default=None,
+        description="a file every signed tree head is appended to (JSON lines), kept apart from "
+        "the database: `evenhand log verify --heads FILE` compares the log with it",
+    )
+
     @field_validator("timezone")
     @classmethod
     def _known_zone(cls, value: str) -> str:
@@ -105,6 +129,21 @@ class Settings(BaseSettings):
                 raise ShortDrawSecret(message)
             log.warning("%s Accepted only because EVENHAND_DEMO_MODE is set.", message)
         return key
+
+    def signing_key_text(self) -> str | None:
+        """The configured signing key's text (from the file or the setting), or None."""
+        if self.signing_key_file:
+            try:
+                with open(self.signing_key_file, encoding="utf-8") as handle:
+                    return handle.read()
+            except OSError as exc:
+                raise SigningKeyUnavailable(
+                    f"EVENHAND_SIGNING_KEY_FILE {self.signing_key_file!r} cannot be read: "
+                    f"{exc.strerror or exc}"
+                ) from None
+        if self.signing_key is not None and self.signing_key.get_secret_value().strip():
+            return self.signing_key.get_secret_value()
+        return None
 
     def demo_warning(self) -> str | None:
         """The line to print at start-up when demo mode is on (None otherwise)."""

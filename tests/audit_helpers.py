@@ -48,7 +48,9 @@ def put_live(
     r = client.post(f"/v1/policies/{POLICY}/versions/1/approve", headers=approver)
     assert r.status_code == 200, r.text
     r = client.post(
-        f"/v1/policies/{POLICY}/activate", json={"version": 1, "reason": "go"}, headers=author
+        f"/v1/policies/{POLICY}/activate",
+        json={"version": 1, "reason": "go", "expected_current": None},
+        headers=author,
     )
     assert r.status_code == 200, r.text
     if shadow is not None:
@@ -56,5 +58,6 @@ def put_live(
         assert r.status_code == 201, r.text
         r = client.post(f"/v1/policies/{POLICY}/versions/2/approve", headers=approver)
         assert r.status_code == 200, r.text
-        r = client.put(f"/v1/policies/{POLICY}/shadow", json={"version": 2}, headers=author)
+        body = {"version": 2, "expected_current": None}
+        r = client.put(f"/v1/policies/{POLICY}/shadow", json=body, headers=author)
         assert r.status_code == 200, r.text

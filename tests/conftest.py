@@ -22,7 +22,11 @@ from sqlalchemy.orm import Session, sessionmaker
 from service.settings import Settings
 from service.store.db import create_db_engine, create_session_factory
 from service.store.migrate import upgrade
-from tests.helpers import TEST_SECRET, create_key
+from tests.helpers import TEST_SECRET, TEST_SIGNING_KEY, create_key
+
+# Every app, CLI command and server the tests start signs the log with the test key (the
+# tests of a missing key remove it).
+os.environ.setdefault("EVENHAND_SIGNING_KEY", TEST_SIGNING_KEY)
 
 DEFAULT_PG = "postgresql+psycopg://postgres@127.0.0.1:5432/test"
 BACKENDS = ["sqlite", "postgresql"]
@@ -175,9 +179,11 @@ def publish(client: TestClient, tokens: dict[str, str]) -> Callable[..., int]:
         )
         assert r.status_code == 200, r.text
         if activate:
+            listed = client.get("/v1/policies", headers=bearer(tokens["admin"])).json()
+            current = next(p["active_version"] for p in listed if p["name"] == name)
             r = client.post(
                 f"/v1/policies/{name}/activate",
-                json={"version": version},
+                json={"version": version, "expected_current": current},
                 headers=bearer(tokens["admin"]),
             )
             assert r.status_code == 200, r.text

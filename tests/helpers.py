@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import copy
+import hashlib
 import uuid
 from typing import Any
 
@@ -11,6 +12,8 @@ from sqlalchemy.orm import Session, sessionmaker
 from service.store import keys
 
 TEST_SECRET = "test-draw-secret-not-for-production"
+# An Ed25519 seed for the tests only (SHA-256 of a fixed phrase, so it is not a weak seed).
+TEST_SIGNING_KEY = hashlib.sha256(b"evenhand test signing key, never for production").hexdigest()
 
 _BASE_POLICY: dict[str, Any] = {
     "name": "readmission",
@@ -46,6 +49,16 @@ def create_key(factory: sessionmaker[Session], role: str, name: str | None = Non
         _, token = keys.create_key(session, name or f"{role}-{uuid.uuid4().hex[:8]}", role)
         session.commit()
     return token
+
+
+def actor(factory: sessionmaker[Session], name: str) -> keys.Actor:
+    """The :class:`~service.store.keys.Actor` of the key named ``name``."""
+    from sqlalchemy import select
+
+    from service.store.models import ApiKey
+
+    with factory() as session:
+        return keys.Actor.of(session.scalars(select(ApiKey).where(ApiKey.name == name)).one())
 
 
 def bearer(token: str) -> dict[str, str]:

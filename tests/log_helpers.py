@@ -9,9 +9,9 @@ from typing import Any
 from sqlalchemy import Engine, text
 from sqlalchemy.orm import Session, sessionmaker
 
+from service.log.records import record_leaf_hash
 from service.store.db import create_session_factory
 from service.store.models import PolicyVersion
-from service.store.records import record_leaf_hash
 
 
 class LogDb:
@@ -28,9 +28,7 @@ class LogDb:
                     version=1,
                     document={},
                     content_hash="0" * 64,
-                    status="active",
                     author="admin-a",
-                    approver="admin-b",
                 )
             )
             session.commit()

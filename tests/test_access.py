@@ -35,7 +35,13 @@ ACCESS: dict[tuple[str, str], str] = {
     ("GET", "/v1/policies/{name}/shadow"): "admin",
     ("PUT", "/v1/policies/{name}/shadow"): "admin",
     ("DELETE", "/v1/policies/{name}/shadow"): "admin",
+    ("GET", "/v1/keys"): "admin",
+    ("POST", "/v1/keys/{name}/revoke"): "admin",
     ("GET", "/v1/log/verify"): "audit",
+    ("GET", "/v1/log/keys"): PUBLIC,
+    ("GET", "/v1/log/heads"): "audit",
+    ("GET", "/v1/log/proofs/inclusion"): "audit",
+    ("GET", "/v1/log/proofs/consistency"): "audit",
     ("POST", "/v1/audits"): "audit",
     ("GET", "/v1/reports/{policy}"): "audit",
     ("GET", "/v1/reports/{policy}/{month_file}"): "audit",
@@ -93,7 +99,7 @@ def test_access_matrix(
     elif caller == "revoked":
         token = make_key("admin", "to-revoke")
         with session_factory() as session:
-            keys.revoke_key(session, "to-revoke")
+            keys.revoke_key(session, "to-revoke", "test", "operator", keep_an_admin=False)
             session.commit()
         headers = bearer(token)
     else:
@@ -136,7 +142,7 @@ def test_revocation_and_the_key_cache(
     with TestClient(create_app(settings.model_copy(update={"auth_cache_seconds": ttl}))) as c:
         assert c.get("/v1/policies", headers=bearer(token)).status_code == 200
         with session_factory() as session:
-            keys.revoke_key(session, "soon-revoked")
+            keys.revoke_key(session, "soon-revoked", "test", "operator", keep_an_admin=False)
             session.commit()
         after = c.get("/v1/policies", headers=bearer(token)).status_code
     # Without the cache the next request is refused; with it, the process keeps trusting a

@@ -9,7 +9,7 @@ from typing import Any
 from fastapi.testclient import TestClient
 from sqlalchemy.orm import Session, sessionmaker
 
-from service.store.audit_models import FinalDecision, Outcome, OutcomeCorrection
+from service.store.audit_models import FinalDecision, OutcomeRecord
 from tests.audit_helpers import POLICY, put_live
 from tests.helpers import bearer, make_request
 
@@ -62,11 +62,11 @@ def test_outcome_recorded_repeated_conflict_and_correction(
         "corrections": 1,
     }
     with session_factory() as session:
-        (row,) = session.query(Outcome).all()
-        (old,) = session.query(OutcomeCorrection).all()
-    assert row.outcome == 0  # the latest counts
-    assert (old.previous_outcome, old.new_outcome) == (1, 0)  # and the earlier one is kept
-    assert old.reason == "coding error in the extract"
+        first, latest = session.query(OutcomeRecord).order_by(OutcomeRecord.id).all()
+    # Insert-only: the correction is a new record with its reason; the first one stays.
+    assert (first.outcome, first.correction_reason) == (1, None)
+    assert (latest.outcome, latest.correction_reason) == (0, "coding error in the extract")
+    assert first.recorded_by == latest.recorded_by != ""
 
 
 def test_outcome_by_policy_and_case_and_unknown(
@@ -111,7 +111,7 @@ def test_batch_is_all_or_nothing(
     assert [(d["code"], d["field"]) for d in err["details"]] == [
         ("unknown_recommendation", "items.1.recommendation_id")
     ]
-    assert _count(session_factory, Outcome) == 0  # nothing half-written
+    assert _count(session_factory, OutcomeRecord) == 0  # nothing half-written
 
     good = [item(0, 1), item(1, 0), item(2, 1)]
     r = client.post("/v1/outcomes/batch", json={"items": good}, headers=h)
@@ -129,7 +129,7 @@ def test_batch_is_all_or_nothing(
         ("outcome_conflict", "items.2.outcome"),
     ]
     with session_factory() as session:
-        assert sorted(o.outcome for o in session.query(Outcome)) == [0, 1, 1]
+        assert sorted(o.outcome for o in session.query(OutcomeRecord)) == [0, 1, 1]
 
 
 def test_final_decision(

@@ -13,9 +13,10 @@ from sqlalchemy import select
 from sqlalchemy.orm import Session, sessionmaker
 
 from service.app import create_app
+from service.log.merkle import leaf_hash
+from service.log.records import record_bytes
 from service.settings import Settings
 from service.store.models import Recommendation
-from service.store.records import record_leaf_hash
 from tests.helpers import TEST_SECRET, bearer, count_rows, make_policy, make_request
 
 R = "/v1/recommendations"
@@ -98,8 +99,9 @@ def test_record_is_hashed_over_all_fields(
         rec = session.scalars(select(Recommendation)).one()
     assert rec.attributes == {"region": "south"}  # only what the policy groups by
     # RFC 9162 section 2.1 leaf hash: SHA-256(0x00 || entry), the entry being compact key-sorted
-    # JSON of the record's fields (rebuilt here by hand from the response).
+    # JSON of the record's fields and its kind (rebuilt here by hand from the response).
     fields = {
+        "kind": "decision",
         **{k: out[k] for k in ("recommendation_id", "request_id", "case_id", "policy", "version",
                                "group", "rule", "probability", "draw", "action", "action_label",
                                "issued_at")},
@@ -110,9 +112,8 @@ def test_record_is_hashed_over_all_fields(
         "shadow_action": None,
     }  # fmt: skip
     entry = json.dumps(fields, sort_keys=True, separators=(",", ":"), ensure_ascii=False)
-    assert rec.record_hash == hashlib.sha256(b"\x00" + entry.encode()).hexdigest()
-    assert record_leaf_hash(rec) == rec.record_hash
-    assert rec.seal_id is None
+    assert record_bytes(rec) == entry.encode()
+    assert leaf_hash(record_bytes(rec)) == hashlib.sha256(b"\x00" + entry.encode()).digest()
 
 
 def test_batch_matches_single_requests(
@@ -188,7 +189,9 @@ def test_shadow_is_recorded_not_returned(
     )
     v2 = publish(strict, activate=False)
     client.put(
-        "/v1/policies/readmission/shadow", json={"version": v2}, headers=bearer(tokens["admin"])
+        "/v1/policies/readmission/shadow",
+        json={"version": v2, "expected_current": None},
+        headers=bearer(tokens["admin"]),
     )
     body = make_request(score=0.5, attributes={"region": "north"})
     out = _post(client, tokens["scoring"], body).json()
@@ -201,7 +204,6 @@ def test_shadow_is_recorded_not_returned(
     assert [(r.shadow_version, r.shadow_probability) for r in recs] == [(2, 0.0), (2, 1.0)]
     assert recs[0].shadow_action is False
     assert recs[1].shadow_action is (reference_draw("readmission", 2, batch[0]["case_id"]) < 1.0)
-    assert all(record_leaf_hash(r) == r.record_hash for r in recs)
 
 
 def test_rollback_switches_the_deciding_version(
@@ -214,7 +216,7 @@ def test_rollback_switches_the_deciding_version(
     assert first["version"] == 2
     client.post(
         "/v1/policies/readmission/rollback",
-        json={"reason": "label wrong"},
+        json={"reason": "label wrong", "expected_current": 2},
         headers=bearer(tokens["admin"]),
     )
     out = _post(client, tokens["scoring"], make_request()).json()

@@ -11,13 +11,13 @@ import numpy as np
 import pytest
 from fastapi.testclient import TestClient
 from scipy.stats import norm
-from sqlalchemy import select
+from sqlalchemy import func, select
 from sqlalchemy.orm import Session, sessionmaker
 
 from service.audit.job import run_audit
 from service.audit.month import Month
 from service.stats.selective_labels import SelectiveCounts, selective_rates
-from service.store.audit_models import Outcome
+from service.store.audit_models import OutcomeRecord
 from service.store.models import Recommendation
 from tests.audit_helpers import POLICY, audit_policy
 from tests.helpers import bearer, make_request
@@ -34,18 +34,26 @@ def _put_live(client: TestClient, make_key: Callable[..., str], doc: dict[str, A
     r = client.post(f"/v1/policies/{POLICY}/versions/1/approve", headers=approver)
     assert r.status_code == 200, r.text
     r = client.post(
-        f"/v1/policies/{POLICY}/activate", json={"version": 1, "reason": "go"}, headers=author
+        f"/v1/policies/{POLICY}/activate",
+        json={"version": 1, "reason": "go", "expected_current": None},
+        headers=author,
     )
     assert r.status_code == 200, r.text
 
 
 def _rows(session: Session) -> list[Any]:
-    r, o = Recommendation, Outcome
+    """Every recommendation with the outcome that counts: its latest outcome record."""
+    r, o = Recommendation, OutcomeRecord
+    latest = (
+        select(o.recommendation_pk, func.max(o.id).label("id"))
+        .group_by(o.recommendation_pk)
+        .subquery()
+    )
     return list(
         session.execute(
-            select(r.group, r.score, r.probability, r.action, o.outcome).outerjoin(
-                o, o.recommendation_pk == r.id
-            )
+            select(r.group, r.score, r.probability, r.action, o.outcome)
+            .outerjoin(latest, latest.c.recommendation_pk == r.id)
+            .outerjoin(o, o.id == latest.c.id)
         )
     )
 

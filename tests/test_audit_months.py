@@ -80,7 +80,8 @@ def put_live(client: TestClient, make_key: Callable[..., str], doc: dict[str, An
     assert r.status_code == 201, r.text
     r = client.post(f"/v1/policies/{POLICY}/versions/1/approve", headers=approver)
     assert r.status_code == 200, r.text
-    r = client.post(f"/v1/policies/{POLICY}/activate", json={"version": 1}, headers=author)
+    body = {"version": 1, "expected_current": None}
+    r = client.post(f"/v1/policies/{POLICY}/activate", json=body, headers=author)
     assert r.status_code == 200, r.text
 
 

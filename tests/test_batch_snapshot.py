@@ -10,24 +10,25 @@ from __future__ import annotations
 from collections.abc import Callable, Sequence
 
 import pytest
-from sqlalchemy import Engine, text
+from sqlalchemy import Engine, select, text
 from sqlalchemy.orm import Session, sessionmaker
 
 from service.api.recommendation_schemas import RecommendationRequest
 from service.store import keys, lifecycle, scoring
+from service.store.models import Recommendation
 from service.store.scoring import DocumentCache, PreparedBatch, ScoringContext
-from tests.helpers import TEST_SECRET, make_policy, make_request
+from tests.helpers import TEST_SECRET, actor, make_policy, make_request
 
 
 @pytest.fixture
 def ctx(session_factory: sessionmaker[Session]) -> ScoringContext:
     with session_factory() as s:
-        keys.create_key(s, "author", "admin")
-        keys.create_key(s, "reviewer", "admin")
+        author = keys.Actor.of(keys.create_key(s, "author", "admin")[0])
+        reviewer = keys.Actor.of(keys.create_key(s, "reviewer", "admin")[0])
         for version in (1, 2):
-            lifecycle.submit(s, "readmission", make_policy(description=f"v{version}"), "author")
-            lifecycle.approve(s, "readmission", version, "reviewer")
-        lifecycle.activate(s, "readmission", 1, "author")
+            lifecycle.submit(s, "readmission", make_policy(description=f"v{version}"), author)
+            lifecycle.approve(s, "readmission", version, reviewer)
+        lifecycle.activate(s, "readmission", 1, author, expected_current=None)
         s.commit()
     return ScoringContext(TEST_SECRET.encode(), DocumentCache())
 
@@ -67,7 +68,10 @@ def test_a_version_switch_between_the_steps_is_seen(
 ) -> None:
     def switch() -> None:
         with session_factory() as s:
-            lifecycle.activate(s, "readmission", 2, "author", reason="switch mid-batch")
+            author = actor(session_factory, "author")
+            lifecycle.activate(
+                s, "readmission", 2, author, reason="switch mid-batch", expected_current=1
+            )
             s.commit()
 
     prepared = _between_the_steps(monkeypatch, switch)
@@ -97,8 +101,10 @@ def test_a_request_id_stored_meanwhile_is_answered_from_the_store(
     assert len(_versions(engine)) == 10
     with engine.connect() as conn:
         stored_id = conn.execute(
-            text("SELECT recommendation_id FROM recommendations WHERE request_id = :r"),
-            {"r": items[3].request_id},
+            # Through the column's type: a UUID (32 hex digits in SQLite's file).
+            select(Recommendation.recommendation_id).where(
+                Recommendation.request_id == items[3].request_id
+            )
         ).scalar_one()
     assert stored_id in responses[3]
 

@@ -14,7 +14,7 @@ from concurrent.futures import ThreadPoolExecutor
 from typing import Any
 
 import pytest
-from sqlalchemy import Engine, text
+from sqlalchemy import Engine, select, text
 from sqlalchemy.orm import Session, sessionmaker
 
 from service.api.recommendation_schemas import RecommendationRequest
@@ -24,6 +24,7 @@ from service.policy.errors import UnknownGroup
 from service.policy.rules import evaluate
 from service.store import keys, lifecycle
 from service.store.committer import CommitterStopped, GroupCommitter
+from service.store.models import Recommendation
 from service.store.scoring import DocumentCache, ScoringContext, recommend_group
 from tests.helpers import TEST_SECRET, count_rows, make_policy, make_request
 
@@ -33,11 +34,11 @@ SECRET = TEST_SECRET.encode()
 @pytest.fixture
 def ctx(session_factory: sessionmaker[Session]) -> ScoringContext:
     with session_factory() as s:
-        keys.create_key(s, "author", "admin")
-        keys.create_key(s, "reviewer", "admin")
-        lifecycle.submit(s, "readmission", make_policy(), "author")
-        lifecycle.approve(s, "readmission", 1, "reviewer")
-        lifecycle.activate(s, "readmission", 1, "author")
+        author = keys.Actor.of(keys.create_key(s, "author", "admin")[0])
+        reviewer = keys.Actor.of(keys.create_key(s, "reviewer", "admin")[0])
+        lifecycle.submit(s, "readmission", make_policy(), author)
+        lifecycle.approve(s, "readmission", 1, reviewer)
+        lifecycle.activate(s, "readmission", 1, author, expected_current=None)
         s.commit()
     return ScoringContext(SECRET, DocumentCache())
 
@@ -96,8 +97,10 @@ def test_every_answer_is_committed_before_it_returns(
         # Returned means committed: another connection sees the record.
         with engine.connect() as conn:
             found = conn.execute(
-                text("SELECT recommendation_id FROM recommendations WHERE request_id = :r"),
-                {"r": req.request_id},
+                # Through the column's type: a UUID (32 hex digits in SQLite's file).
+                select(Recommendation.recommendation_id).where(
+                    Recommendation.request_id == req.request_id
+                )
             ).scalar_one()
         assert found == json.loads(answer)["recommendation_id"]
         return "ok"

@@ -34,11 +34,11 @@ GOOD = 10
 @pytest.fixture
 def ctx(session_factory: sessionmaker[Session]) -> ScoringContext:
     with session_factory() as s:
-        keys.create_key(s, "author", "admin")
-        keys.create_key(s, "reviewer", "admin")
-        lifecycle.submit(s, "readmission", make_policy(), "author")
-        lifecycle.approve(s, "readmission", 1, "reviewer")
-        lifecycle.activate(s, "readmission", 1, "author")
+        author = keys.Actor.of(keys.create_key(s, "author", "admin")[0])
+        reviewer = keys.Actor.of(keys.create_key(s, "reviewer", "admin")[0])
+        lifecycle.submit(s, "readmission", make_policy(), author)
+        lifecycle.approve(s, "readmission", 1, reviewer)
+        lifecycle.activate(s, "readmission", 1, author, expected_current=None)
         s.commit()
     return ScoringContext(TEST_SECRET.encode(), DocumentCache())
 

@@ -29,9 +29,10 @@ BODIES: dict[tuple[str, str], Any] = {
     ("POST", "/v1/recommendations"): make_request(),
     ("POST", "/v1/recommendations/batch"): {"items": [make_request()]},
     ("POST", "/v1/policies/{name}/versions"): make_policy(),
-    ("POST", "/v1/policies/{name}/activate"): {"version": 1},
-    ("POST", "/v1/policies/{name}/rollback"): {"reason": "test"},
-    ("PUT", "/v1/policies/{name}/shadow"): {"version": 1},
+    ("POST", "/v1/policies/{name}/activate"): {"version": 1, "expected_current": None},
+    ("POST", "/v1/policies/{name}/rollback"): {"reason": "test", "expected_current": 1},
+    ("PUT", "/v1/policies/{name}/shadow"): {"version": 1, "expected_current": None},
+    ("POST", "/v1/keys/{name}/revoke"): {"reason": "test"},
     ("POST", "/v1/audits"): {"policy": "readmission", "month": "2026-10"},
     ("POST", "/v1/outcomes"): {
         "recommendation_id": "00000000-0000-4000-8000-000000000000",
@@ -57,6 +58,7 @@ BODIES: dict[tuple[str, str], Any] = {
 }
 PARAMS: dict[tuple[str, str], dict[str, str]] = {
     ("GET", "/v1/policies/{name}/diff"): {"from": "1", "to": "2"},
+    ("DELETE", "/v1/policies/{name}/shadow"): {"expected_current": "1"},
     ("GET", "/v1/reports/{policy}/history"): {"from": "2026-01", "to": "2026-10"},
     ("GET", "/v1/warnings/{policy}"): {"day": "2026-10-02"},
 }

@@ -57,7 +57,6 @@ def head(key: Ed25519PrivateKey, **changes: object) -> TreeHead:
         "root": bytes(range(32)),
         "created_at": "2026-12-04T12:00:00.000000Z",
         "key_id": key_id(key.public_key()),
-        "rollup": bytes(32),
     }
     fields.update(changes)
     return TreeHead(**fields)  # type: ignore[arg-type]
@@ -73,7 +72,7 @@ def test_a_signed_head_verifies_and_any_change_breaks_it() -> None:
         {"tree_size": 12346},
         {"root": bytes(32)},
         {"seal_id": 4},
-        {"rollup": b"\x01" * 32},
+        {"created_at": "2026-12-04T12:00:00.000001Z"},
     ):
         assert verify_head(head(key, **change), signature, keys) is not None, change
     other, _ = new_signing_key()

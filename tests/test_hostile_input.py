@@ -58,10 +58,14 @@ def test_integers_beyond_the_columns(
     p = "/v1/policies/readmission"
     _refused(client.get(f"{p}/versions/{number}", headers=admin), "version")
     _refused(client.post(f"{p}/versions/{number}/approve", headers=admin), "version")
-    _refused(client.post(f"{p}/activate", json={"version": number}, headers=admin), "version")
-    body = {"to_version": number, "reason": "r"}
+    body = {"version": number, "expected_current": None}
+    _refused(client.post(f"{p}/activate", json=body, headers=admin), "version")
+    body = {"to_version": number, "reason": "r", "expected_current": 1}
     _refused(client.post(f"{p}/rollback", json=body, headers=admin), "to_version")
-    _refused(client.put(f"{p}/shadow", json={"version": number}, headers=admin), "version")
+    body = {"version": number, "expected_current": None}
+    _refused(client.put(f"{p}/shadow", json=body, headers=admin), "version")
+    body = {"version": 2, "expected_current": number}
+    _refused(client.put(f"{p}/shadow", json=body, headers=admin), "expected_current")
     params = {"from": number, "to": 1}
     _refused(client.get(f"{p}/diff", params=params, headers=admin), "from")
     params = {"snapshot": number}
@@ -124,14 +128,14 @@ def _text_cases(rid: str) -> list[tuple[str, str, str, dict[str, Any], str]]:
                 "admin",
                 "POST",
                 "/v1/policies/readmission/rollback",
-                {"json": {"reason": bad}},
+                {"json": {"reason": bad, "expected_current": 1}},
                 "reason",
             ),
             (
                 "admin",
                 "POST",
                 "/v1/policies/readmission/activate",
-                {"json": {"version": 1, "reason": bad}},
+                {"json": {"version": 1, "reason": bad, "expected_current": 1}},
                 "reason",
             ),
             (
@@ -181,7 +185,7 @@ def test_control_characters_never_reach_the_database(
         assert err["field"] == field, where
         assert "control character" in err["message"] or "policy name" in err["message"], where
     assert count_rows(session_factory, "recommendations") == 1
-    assert count_rows(session_factory, "outcomes") == 0
+    assert count_rows(session_factory, "outcome_records") == 0
     assert count_rows(session_factory, "final_decisions") == 0
     assert count_rows(session_factory, "policy_versions") == 1
 
@@ -245,7 +249,7 @@ def test_outcomes_and_decisions_must_follow_the_recommendation(
     # A date Python cannot move to UTC is a 422, not an OverflowError.
     body = {**_outcome(rid, now), "observed_at": "0001-01-01T00:00:00+01:00"}
     _refused(client.post("/v1/outcomes", json=body, headers=h), "observed_at")
-    assert count_rows(session_factory, "outcomes") == 0
+    assert count_rows(session_factory, "outcome_records") == 0
     # Within the allowed clock difference (300 s by default) on either side: accepted.
     r = client.post("/v1/outcomes", json=_outcome(rid, now - timedelta(seconds=60)), headers=h)
     assert r.status_code == 201, r.text
@@ -320,7 +324,7 @@ def test_outcome_batch_lists_every_bad_item(
         ("items.2.observed_at", "in_the_future"),
         ("items.4.recommendation_id", "unknown_recommendation"),
     ]
-    assert count_rows(session_factory, "outcomes") == 0
+    assert count_rows(session_factory, "outcome_records") == 0
     # A batch of one bad item is still a batch error (one shape for every batch).
     r = client.post("/v1/outcomes/batch", json={"items": items[4:]}, headers=h)
     _refused(r, "items.0.recommendation_id", code="invalid_batch")

@@ -29,12 +29,12 @@ from typing import Any
 
 import httpx
 import pytest
+from service.audit.seal import seal_all_pending, verify_log
 from sqlalchemy import Engine, create_engine, select, text
 from sqlalchemy.engine import make_url
 from sqlalchemy.orm import Session, sessionmaker
 from sqlalchemy.pool import NullPool
 
-from service.audit.seal import seal_all_pending, verify_log
 from service.demo.api_client import EvenhandClient
 from service.demo.server import ServerProcess
 from service.store.models import Recommendation
@@ -247,7 +247,9 @@ def test_terminated_connections_give_no_5xx_and_lose_nothing(
     session_factory: sessionmaker[Session],
 ) -> None:
     with EvenhandClient(server.base_url) as api:
-        api.publish(keys.author, keys.reviewer, make_policy(), "first version")
+        api.publish(
+            keys.author, keys.reviewer, make_policy(), "first version", expected_current=None
+        )
     killer = create_engine(database_url, poolclass=NullPool, isolation_level="AUTOCOMMIT")
     terminated = [0]
 
@@ -323,7 +325,9 @@ def test_a_restarted_cluster_gives_no_5xx_and_loses_nothing(
 ) -> None:
     command, host = _cluster_control()
     with EvenhandClient(server.base_url) as api:
-        api.publish(keys.author, keys.reviewer, make_policy(), "first version")
+        api.publish(
+            keys.author, keys.reviewer, make_policy(), "first version", expected_current=None
+        )
 
     def restart() -> None:
         try:

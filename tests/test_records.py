@@ -11,8 +11,7 @@ from typing import Any
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from service.policy.document import canonical_json
-from service.store.records import (
+from service.log.records import (
     RECORD_FIELDS,
     RESPONSE_FIELDS,
     decision_texts,
@@ -20,6 +19,7 @@ from service.store.records import (
     leaf_hash,
     new_record_ids,
 )
+from service.policy.document import canonical_json
 
 text = st.text(max_size=20)  # any unicode: quotes, backslashes, control characters
 finite = st.floats(allow_nan=False, allow_infinity=False)

@@ -19,10 +19,10 @@ from typing import Any
 
 import httpx
 import pytest
+from service.audit.seal import seal_all_pending
 from sqlalchemy import Engine, func, select
 from sqlalchemy.orm import Session, sessionmaker
 
-from service.audit.seal import seal_all_pending
 from service.demo.api_client import EvenhandClient
 from service.demo.server import ServerProcess
 from service.store.models import Recommendation
@@ -142,7 +142,9 @@ def test_kill_9_in_a_burst_loses_no_answered_recommendation(
     server: ServerProcess, keys: Keys, session_factory: sessionmaker[Session]
 ) -> None:
     with EvenhandClient(server.base_url) as api:
-        api.publish(keys.author, keys.reviewer, make_policy(), "first version")
+        api.publish(
+            keys.author, keys.reviewer, make_policy(), "first version", expected_current=None
+        )
     bodies = _bodies(400, "crash")
     kill_at = 120
     killed = threading.Event()
@@ -223,7 +225,9 @@ def test_activate_and_roll_back_under_load(
 ) -> None:
     name = "readmission"
     with EvenhandClient(server.base_url) as api:
-        v1 = api.publish(keys.author, keys.reviewer, make_policy(), "first version")
+        v1 = api.publish(
+            keys.author, keys.reviewer, make_policy(), "first version", expected_current=None
+        )
         v2 = api.submit(keys.author, make_policy(description="lower cut for south"))
         api.approve(keys.reviewer, name, v2)
 
@@ -247,11 +251,21 @@ def test_activate_and_roll_back_under_load(
                     with progress:
                         progress.wait_for(lambda at=at: answered[0] >= at, timeout=60)
                     if k == 0:
-                        api.activate(keys.author, name, v2, "trying the lower cut")
+                        api.activate(
+                            keys.author, name, v2, "trying the lower cut", expected_current=v1
+                        )
                     elif k % 2 == 0:  # v2 is retired now: bringing it back is a rollback
-                        api.rollback(keys.author, name, "trying the lower cut again", v2)
+                        api.rollback(
+                            keys.author,
+                            name,
+                            "trying the lower cut again",
+                            v2,
+                            expected_current=v1,
+                        )
                     else:
-                        api.rollback(keys.author, name, "back to the reviewed cut")
+                        api.rollback(
+                            keys.author, name, "back to the reviewed cut", expected_current=v2
+                        )
                     switch_returned.append(datetime.now(UTC))
         except BaseException as exc:
             switch_errors.append(exc)

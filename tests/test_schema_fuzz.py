@@ -56,7 +56,8 @@ def _seed(client: TestClient, keys: dict[str, str]) -> dict[str, str]:
     admin, admin2 = bearer(keys["admin"]), bearer(keys["admin2"])
     client.post(f"/v1/policies/{POLICY}/versions", json=make_policy(), headers=admin)
     client.post(f"/v1/policies/{POLICY}/versions/1/approve", headers=admin2)
-    client.post(f"/v1/policies/{POLICY}/activate", json={"version": 1}, headers=admin)
+    body = {"version": 1, "expected_current": None}
+    client.post(f"/v1/policies/{POLICY}/activate", json=body, headers=admin)
     scoring = bearer(keys["scoring"])
     rids = [
         client.post("/v1/recommendations", json=make_request(), headers=scoring).json()[

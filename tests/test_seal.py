@@ -6,13 +6,13 @@ import itertools
 import threading
 
 import pytest
+from service.audit.seal import seal_all_pending, seal_pending, verify_log
 from sqlalchemy import Engine, select
 
 from service.audit import seal as seal_module
-from service.audit.seal import seal_all_pending, seal_pending, verify_log
 from service.log.merkle import root_from_leaves
+from service.log.records import record_bytes, record_leaf_hash
 from service.store.models import Recommendation, Seal
-from service.store.records import record_bytes, record_leaf_hash
 from tests.log_helpers import LogDb
 
 

@@ -1,35 +1,53 @@
-"""The decision log: verification for auditors (audit role)."""
+"""The log: its public keys, its signed heads, verification (audit role)."""
 
 from __future__ import annotations
 
-from typing import Annotated, Literal
+from datetime import datetime
+from typing import Annotated, Any
 
-from fastapi import APIRouter, Query
+from fastapi import APIRouter, Query, Request
 from pydantic import BaseModel, Field
+from sqlalchemy import select
 
-from service.api.deps import AuditKey, DbSession
+from service.api.deps import AuditKey, ReadSession
 from service.api.errors import error_responses
-from service.audit.seal import VerifyResult, verify_log
+from service.errors import NotFound, Unprocessable
+from service.store import log_proofs
+from service.store.audit_models import Seal, SigningKey
+from service.store.log_verify import VerifyResult, verify_log
+from service.store.sealing import signed_head
+from service.store.signing import Signer, trusted_public_keys
 
-router = APIRouter(prefix="/v1/log", tags=["decision log"])
+router = APIRouter(prefix="/v1/log", tags=["log"])
 
 
 class LogProblem(BaseModel):
-    kind: Literal["record", "seal"] = Field(description="what does not match")
-    id: int = Field(description="row id of the record or seal (0: the expected seal is missing)")
+    kind: str = Field(
+        description="what does not match: a kind of record (decision, outcome, final, "
+        "snapshot, tally_batch, policy_version, policy_event, key_event), a seal or a tree node"
+    )
+    id: int = Field(description="its row id (0 when there is none)")
     reason: str
 
 
+class SignedHead(BaseModel):
+    head: dict[str, Any] = Field(
+        description="format, seal_id, tree_size, root (hex), created_at, key_id: the signed "
+        "bytes are its canonical JSON (keys sorted, no spaces, UTF-8)"
+    )
+    signature: str = Field(description="Ed25519 signature of the head, hex")
+
+
 class VerifyResponse(BaseModel):
-    ok: bool = Field(description="every record hash, seal root and chain link matches")
+    ok: bool = Field(description="every record, seal, signature, tree node and tally matches")
     seals_checked: int
     records_checked: int
-    unsealed_records: int = Field(description="records not sealed yet (checked, not chained)")
-    head_seal_id: int | None
-    head_seal_hash: str | None = Field(
-        description="keep this outside the database: passing it back later detects a cut-back log"
+    tally_batches_checked: int
+    unsealed: dict[str, int] = Field(description="records of each kind not sealed yet")
+    head: SignedHead | None = Field(
+        description="the latest signed head: keep it outside the database"
     )
-    problem: LogProblem | None = Field(description="the first record or seal that does not match")
+    problem: LogProblem | None = Field(description="the first thing that does not match")
 
     @classmethod
     def of(cls, result: VerifyResult) -> VerifyResponse:
@@ -38,30 +56,166 @@ class VerifyResponse(BaseModel):
             ok=result.ok,
             seals_checked=result.seals_checked,
             records_checked=result.records_checked,
-            unsealed_records=result.unsealed_records,
-            head_seal_id=result.head_seal_id,
-            head_seal_hash=result.head_seal_hash,
+            tally_batches_checked=result.tally_batches_checked,
+            unsealed=result.unsealed,
+            head=None if result.head is None else SignedHead.model_validate(result.head),
             problem=None
             if problem is None
             else LogProblem(kind=problem.kind, id=problem.id, reason=problem.reason),
         )
 
 
-HexHash = Annotated[str, Query(pattern=r"^[0-9a-f]{64}$")]
+class PublicKey(BaseModel):
+    key_id: str = Field(description="first 16 bytes of SHA-256 of the raw public key, hex")
+    public_key: str = Field(description="raw 32-byte Ed25519 public key, hex")
+    first_used_at: datetime | None = Field(description="when it first signed a head")
+    current: bool = Field(description="the key the service signs with now")
+
+
+@router.get(
+    "/keys",
+    summary="The public keys that sign the log's tree heads (no credential needed)",
+    response_model=list[PublicKey],
+)
+def keys(request: Request, session: ReadSession) -> list[PublicKey]:
+    signer: Signer = request.app.state.signer
+    out = [
+        PublicKey(
+            key_id=row.key_id,
+            public_key=bytes(row.public_key).hex(),
+            first_used_at=row.first_used_at,
+            current=row.key_id == signer.key_id,
+        )
+        for row in session.scalars(select(SigningKey).order_by(SigningKey.first_used_at))
+    ]
+    if not any(k.current for k in out):
+        out.append(
+            PublicKey(
+                key_id=signer.key_id,
+                public_key=signer.public_key.hex(),
+                first_used_at=None,
+                current=True,
+            )
+        )
+    return out
+
+
+@router.get(
+    "/heads",
+    summary="Signed tree heads, oldest first",
+    response_model=list[SignedHead],
+    responses=error_responses(401, 403, 422),
+)
+def heads(
+    _key: AuditKey,
+    session: ReadSession,
+    since: Annotated[int, Query(ge=0, le=2**62, description="after this seal id")] = 0,
+    limit: Annotated[int, Query(ge=1, le=1000)] = 100,
+) -> list[SignedHead]:
+    seals = session.scalars(select(Seal).where(Seal.id > since).order_by(Seal.id).limit(limit))
+    return [SignedHead.model_validate(signed_head(seal)) for seal in seals]
 
 
 @router.get(
     "/verify",
-    summary="Recompute every record hash, seal root and the seal chain",
+    summary="Recompute every record, seal, signature, tree node and tally of the log",
     response_model=VerifyResponse,
     responses=error_responses(401, 403, 422),
 )
-def verify(
-    _key: AuditKey, session: DbSession, expected_seal_hash: HexHash | None = None
-) -> VerifyResponse:
-    """200 with ``ok: false`` and the first mismatch when the log was tampered with.
+def verify(_key: AuditKey, request: Request) -> VerifyResponse:
+    """200 with ``ok: false`` and the first problem when the log was tampered with. Heads
+    are checked against the service's own key and EVENHAND_TRUSTED_PUBLIC_KEYS."""
+    settings = request.app.state.settings
+    result = verify_log(request.app.state.session_factory, trusted_public_keys(settings))
+    return VerifyResponse.of(result)
 
-    ``expected_seal_hash``: a seal hash recorded earlier outside the database; verification
-    fails if the chain no longer contains it.
-    """
-    return VerifyResponse.of(verify_log(session, expected_seal_hash))
+
+class InclusionProofResponse(BaseModel):
+    kind: str
+    record_id: int = Field(description="the record's row id")
+    leaf_index: int = Field(description="its position among the leaves of the log")
+    leaf_hash: str = Field(description="SHA-256(0x00 || record), hex (RFC 9162 section 2.1)")
+    record: str = Field(description="the record's canonical bytes (UTF-8 JSON)")
+    path: list[str] = Field(description="the audit path, deepest sibling first, hex")
+    head: SignedHead = Field(description="the signed head the path leads to")
+
+
+class ConsistencyProofResponse(BaseModel):
+    first: SignedHead
+    second: SignedHead
+    path: list[str] = Field(description="RFC 9162 section 2.1.4 consistency proof, hex")
+
+
+KindQuery = Annotated[
+    str,
+    Query(
+        pattern=r"^[a-z_]{1,32}$",
+        description="policy_version, policy_event, key_event, decision, outcome, final, "
+        "snapshot or tally_batch",
+    ),
+]
+
+
+@router.get(
+    "/proofs/inclusion",
+    summary="An inclusion proof of one record in a signed head (RFC 9162)",
+    response_model=InclusionProofResponse,
+    responses=error_responses(401, 403, 404, 422),
+)
+def inclusion_proof(
+    _key: AuditKey,
+    session: ReadSession,
+    kind: KindQuery = "decision",
+    id: Annotated[int | None, Query(ge=1, le=2**62, description="the record's row id")] = None,
+    recommendation_id: Annotated[
+        str | None,
+        Query(max_length=64, description="for a decision: its recommendation_id instead of id"),
+    ] = None,
+    seal: Annotated[
+        int | None, Query(ge=1, le=2**62, description="the head's seal (default: the latest)")
+    ] = None,
+) -> InclusionProofResponse:
+    record_id = _record_id(session, kind, id, recommendation_id)
+    proof = log_proofs.inclusion(session, kind, record_id, seal)
+    return InclusionProofResponse(
+        kind=proof.kind,
+        record_id=proof.record_id,
+        leaf_index=proof.leaf_index,
+        leaf_hash=proof.leaf.hex(),
+        record=proof.record.decode("utf-8"),
+        path=[h.hex() for h in proof.path],
+        head=SignedHead.model_validate(proof.head),
+    )
+
+
+def _record_id(session: Any, kind: str, id: int | None, recommendation_id: str | None) -> int:
+    if (id is None) == (recommendation_id is None):
+        raise Unprocessable("give either id or recommendation_id", field="id")
+    if id is not None:
+        return id
+    if kind != "decision":
+        raise Unprocessable("recommendation_id names a decision: use kind=decision", field="kind")
+    found = log_proofs.decision_row_id(session, str(recommendation_id))
+    if found is None:
+        raise NotFound(f"no recommendation {recommendation_id!r}", code="unknown_recommendation")
+    return found
+
+
+@router.get(
+    "/proofs/consistency",
+    summary="A consistency proof between two signed heads (RFC 9162)",
+    response_model=ConsistencyProofResponse,
+    responses=error_responses(401, 403, 404, 422),
+)
+def consistency_proof(
+    _key: AuditKey,
+    session: ReadSession,
+    first: Annotated[int, Query(ge=1, le=2**62, description="the earlier seal")],
+    second: Annotated[int, Query(ge=1, le=2**62, description="the later seal")],
+) -> ConsistencyProofResponse:
+    proof = log_proofs.consistency(session, first, second)
+    return ConsistencyProofResponse(
+        first=SignedHead.model_validate(proof.first),
+        second=SignedHead.model_validate(proof.second),
+        path=[h.hex() for h in proof.path],
+    )

@@ -26,9 +26,9 @@ from service.api.outcome_schemas import (
     OutcomeResponse,
 )
 from service.errors import BatchRefused, check_batch_size, item_problem
+from service.log.records import format_timestamp
 from service.store import feedback
 from service.store.feedback import FinalReport, ItemsRefused, OutcomeReport, OutcomeResult
-from service.store.records import format_timestamp
 
 router = APIRouter(tags=["feedback"], responses=error_responses(400, 401, 403, 404, 409, 413, 422))
 
@@ -155,11 +155,11 @@ def post_final(
     )
     skew = settings.clock_skew
     try:
-        result = feedback.record_final(session, recommendation_id, report, skew)
+        result = feedback.record_final(session, recommendation_id, report, key.name, skew)
         session.commit()
     except IntegrityError:
         session.rollback()
-        result = feedback.record_final(session, recommendation_id, report, skew)
+        result = feedback.record_final(session, recommendation_id, report, key.name, skew)
         session.commit()
     if result.status == "unchanged":
         response.status_code = 200

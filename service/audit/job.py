@@ -17,16 +17,16 @@ from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
 from service import __version__
-from service.audit.counting import Progress, cells_from_tallies, count_month, quiet
+from service.audit.counting import Progress, count_month, quiet
 from service.audit.monitoring import WINDOW, MonthCounts
 from service.audit.month import Month
 from service.audit.realized import CellCounts, ScoreSums
-from service.audit.score_sums import count_score_sums
 from service.audit.snapshot import AuditInput, AuditResult, build
 from service.audit.snapshot_model import SNAPSHOT_FORMAT, ScoreSumsRow, Snapshot
+from service.audit.tally_views import by_version
 from service.audit.verdicts import DEFAULT_MIN_COUNT
 from service.audit.version_counts import VersionCounts
-from service.errors import NotFound, Unprocessable
+from service.errors import LogInconsistent, NotFound, Unprocessable
 from service.policy.document import PolicyDocument
 from service.stats.calibration import PowerSums
 from service.store.audit_models import AuditSnapshot
@@ -109,7 +109,13 @@ def run_audit(
         raise NotFound(f"unknown policy {policy!r}", code="unknown_policy", field="policy")
     span = f"{start:%Y-%m-%d %H:%M}Z to {end:%Y-%m-%d %H:%M}Z"
     progress(f"auditing {policy} for {month} ({time_zone}): {span}")
-    per_version = cells_from_tallies(count_month(session, policy, start, end, progress))
+    try:
+        per_version = by_version(count_month(session, policy, start, end, time_zone, progress))
+    except (ValueError, TypeError, KeyError) as exc:
+        raise LogInconsistent(
+            f"the counts of {policy} for {month} contradict each other ({exc}): the log was "
+            "damaged or edited; run `evenhand log verify` to find the record"
+        ) from None
     if not per_version:
         raise Unprocessable(
             f"no decisions of {policy!r} were issued in {month} ({time_zone}): nothing to audit",
@@ -117,23 +123,26 @@ def run_audit(
             code="empty_month",
         )
     documents = _load_documents(session, policy)
-    seen = {g for cells, _ in per_version.values() for g in cells}
+    seen = {g for view in per_version.values() for g in view.cells}
     _check_reference(reference_group, documents, seen)
-    selective = {v for v in per_version if documents[v][0].outcome_observed_after != "both"}
-    sums = count_score_sums(session, policy, start, end, selective)
-    progress("  counted score sums and randomization zones")
     versions = []
-    for v, (cells, shadows) in sorted(per_version.items()):
-        mode = documents[v][0].outcome_observed_after
-        zones = {g: sums.selective((v, g), mode) for g in cells}
+    for v, view in sorted(per_version.items()):
+        if v not in documents:
+            raise LogInconsistent(
+                f"decisions of {policy} name version {v}, which the policy store does not hold: "
+                "run `evenhand log verify`"
+            )
+        document, content_hash = documents[v]
+        mode = document.outcome_observed_after
+        zones = {g: z.selective(mode) for g, z in view.zones.items()}
         versions.append(
             VersionCounts(
                 v,
-                documents[v][0],
-                cells,
-                shadows,
-                documents[v][1],
-                {g: sums.scores[(v, g)] for g in cells if (v, g) in sums.scores},
+                document,
+                view.cells,
+                view.shadows,
+                content_hash,
+                view.scores,
                 {g: c for g, c in zones.items() if c is not None},
             )
         )
@@ -175,6 +184,7 @@ def run_audit(
         digest=published.digest,
         content=published.content(),
         internal=result.internal.content(),
+        internal_digest=result.internal.digest,
     )
     session.add(row)
     session.flush()

@@ -1,88 +1,196 @@
-"""``evenhand log seal|verify``: the decision log, directly on the configured database."""
+"""``evenhand log ...``: seal, verify and prove the tamper-evident log (configured database)."""
 
 from __future__ import annotations
 
 import argparse
 import json
-import re
+import os
 import sys
 from dataclasses import asdict
+from pathlib import Path
+from typing import Any
 
+from sqlalchemy import select
 from sqlalchemy.orm import Session, sessionmaker
 
-from service.audit.seal import seal_all_pending, verify_log
 from service.cli.common import CliError
+from service.log.heads import SigningKeyError, new_signing_key
 from service.settings import Settings
-from service.store.db import create_db_engine, create_session_factory
+from service.store.audit_models import Seal
+from service.store.db import begin_read_only, create_db_engine, create_session_factory
+from service.store.log_upkeep import keep_log
+from service.store.log_verify import VerifyResult, verify_log
+from service.store.sealing import signed_head
+from service.store.signing import signer_from_settings, trusted_public_keys
 
 
 def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     parser = subparsers.add_parser(
-        "log", help="seal and verify the tamper-evident decision log", description=__doc__
+        "log", help="seal, verify and prove the tamper-evident log", description=__doc__
     )
     sub = parser.add_subparsers(dest="log_command", required=True, metavar="ACTION")
 
-    seal = sub.add_parser("seal", help="seal every record not sealed yet (Merkle root, chained)")
+    seal = sub.add_parser(
+        "seal",
+        help="seal every record not sealed yet and tally what is sealed (signed tree heads)",
+    )
+    seal.add_argument(
+        "--tally-now",
+        action="store_true",
+        help="tally every sealed record now instead of when a batch is due",
+    )
     seal.set_defaults(handler=_seal)
 
     verify = sub.add_parser(
         "verify",
-        help="recompute every record hash, seal root and the chain; exit 1 on a mismatch",
+        help="recompute every record, seal, signature, tree node and tally; exit 1 on a problem",
     )
     verify.add_argument(
-        "--expect",
-        metavar="SEAL_HASH",
-        help="a seal hash kept outside the database: fail if the chain no longer holds it",
+        "--heads",
+        metavar="FILE",
+        help="signed heads kept outside the database (JSON lines, e.g. EVENHAND_HEAD_MIRROR): "
+        "fail if the database no longer matches them",
+    )
+    verify.add_argument(
+        "--trust-database-keys",
+        action="store_true",
+        help="also accept heads signed by public keys the database lists (weaker: whoever can "
+        "write the database can add a key)",
     )
     verify.add_argument("--json", action="store_true", help="print the result as JSON")
     verify.set_defaults(handler=_verify)
 
+    keygen = sub.add_parser("keygen", help="write a new Ed25519 signing key to a file")
+    keygen.add_argument("--out", required=True, metavar="FILE", help="the key file to create")
+    keygen.set_defaults(handler=_keygen)
 
-def _session_factory() -> sessionmaker[Session]:
-    return create_session_factory(create_db_engine(Settings()))
+    heads = sub.add_parser("heads", help="print signed tree heads as JSON lines")
+    heads.add_argument("--since", type=int, default=0, metavar="SEAL", help="after this seal")
+    heads.set_defaults(handler=_heads)
+
+
+def _factory(settings: Settings) -> sessionmaker[Session]:
+    return create_session_factory(create_db_engine(settings))
+
+
+def _progress(message: str) -> None:
+    print(message, file=sys.stderr, flush=True)
 
 
 def _seal(args: argparse.Namespace) -> int:
-    factory = _session_factory()
-    with factory() as session:
-        seals = seal_all_pending(session)
-    if not seals:
+    settings = Settings()
+    try:
+        signer = signer_from_settings(settings)
+    except SigningKeyError as exc:
+        raise CliError(str(exc)) from None
+    done = keep_log(
+        _factory(settings),
+        signer,
+        settings.timezone,
+        tally_now=args.tally_now,
+        mirror=settings.head_mirror,
+        progress=_progress,
+    )
+    if not done.seals:
         print("nothing to seal: every record is already sealed")
-        return 0
-    for seal in seals:
-        print(
-            f"seal {seal.id}: {seal.record_count} records "
-            f"(ids {seal.first_record_id}..{seal.last_record_id}), root {seal.root_hash}"
-        )
-    print(f"head seal hash: {seals[-1].seal_hash}")
+    for seal in done.seals:
+        kinds = ", ".join(f"{k} {r[2]}" for k, r in seal.ranges.items() if r[2])
+        print(f"seal {seal.id}: {seal.leaf_count} records ({kinds}); tree size {seal.tree_size}")
+    if done.seals:
+        last = done.seals[-1]
+        print(f"head: seal {last.id}, size {last.tree_size}, root {last.root.hex()}")
     return 0
 
 
+def _read_heads(path: str) -> list[dict[str, Any]]:
+    try:
+        lines = Path(path).read_text(encoding="utf-8").splitlines()
+    except OSError as exc:
+        raise CliError(f"--heads {path}: {exc.strerror or exc}") from None
+    heads = []
+    for number, line in enumerate(lines, 1):
+        if not line.strip():
+            continue
+        try:
+            item = json.loads(line)
+        except json.JSONDecodeError:
+            raise CliError(f"--heads {path}, line {number}: not JSON") from None
+        if not isinstance(item, dict):
+            raise CliError(f"--heads {path}, line {number}: not a signed head")
+        heads.append(item)
+    return heads
+
+
 def _verify(args: argparse.Namespace) -> int:
-    expected = args.expect
-    if expected is not None and not re.fullmatch(r"[0-9a-f]{64}", expected):
-        raise CliError("--expect takes a seal hash: 64 lowercase hex digits")
-
-    def progress(done: int) -> None:
-        print(f"verified {done} records...", file=sys.stderr)
-
-    factory = _session_factory()
-    with factory() as session:
-        result = verify_log(session, expected, progress=progress)
-    if args.json:
-        data = asdict(result)
-        data["ok"] = result.ok
-        print(json.dumps(data, indent=2))
-    else:
-        print(
-            f"checked {result.seals_checked} seals and {result.records_checked} records "
-            f"({result.unsealed_records} not sealed yet)"
+    settings = Settings()
+    heads = _read_heads(args.heads) if args.heads else []
+    try:
+        trusted = trusted_public_keys(settings)
+    except SigningKeyError as exc:
+        raise CliError(str(exc)) from None
+    if not trusted and not args.trust_database_keys:
+        raise CliError(
+            "no trusted public key: set EVENHAND_SIGNING_KEY_FILE (the service's key) or "
+            "EVENHAND_TRUSTED_PUBLIC_KEYS, or pass --trust-database-keys"
         )
-        if result.head_seal_hash is not None:
-            print(f"head seal {result.head_seal_id}: {result.head_seal_hash}")
-        if result.problem is None:
-            print("ok: every record hash, seal root and chain link matches")
-        else:
-            p = result.problem
-            print(f"MISMATCH at {p.kind} {p.id}: {p.reason}")
+    result = verify_log(
+        _factory(settings),
+        trusted,
+        trust_database_keys=args.trust_database_keys,
+        heads=heads,
+        progress=_progress,
+    )
+    if args.json:
+        print(json.dumps(result_json(result), indent=2))
+    else:
+        _print_result(result)
     return 0 if result.ok else 1
+
+
+def result_json(result: VerifyResult) -> dict[str, Any]:
+    data = asdict(result)
+    data["ok"] = result.ok
+    data["unsealed_records"] = result.unsealed_records
+    return data
+
+
+def _print_result(result: VerifyResult) -> None:
+    print(
+        f"checked {result.seals_checked} seals, {result.records_checked:,} records and "
+        f"{result.tally_batches_checked} tally batches ({result.unsealed_records:,} records not "
+        "sealed yet)"
+    )
+    if result.head is not None:
+        head = result.head["head"]
+        print(f"head: seal {head['seal_id']}, size {head['tree_size']}, root {head['root']}")
+    if result.problem is None:
+        print("ok: every record, seal, signature, tree node and tally matches")
+    else:
+        p = result.problem
+        where = f"{p.kind} #{p.id}" if p.id else p.kind
+        print(f"PROBLEM at {where}: {p.reason}")
+
+
+def _keygen(args: argparse.Namespace) -> int:
+    path = Path(args.out)
+    _key, seed_hex = new_signing_key()
+    try:
+        fd = os.open(path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
+    except FileExistsError:
+        raise CliError(f"{path} exists: a signing key is never overwritten") from None
+    except OSError as exc:
+        raise CliError(f"{path}: {exc.strerror or exc}") from None
+    with os.fdopen(fd, "w", encoding="ascii") as handle:
+        handle.write(seed_hex + "\n")
+    print(f"wrote a new signing key to {path} (mode 600); set EVENHAND_SIGNING_KEY_FILE={path}")
+    return 0
+
+
+def _heads(args: argparse.Namespace) -> int:
+    factory = _factory(Settings())
+    with factory() as session:
+        begin_read_only(session)
+        for seal in session.scalars(select(Seal).where(Seal.id > args.since).order_by(Seal.id)):
+            print(json.dumps(signed_head(seal), sort_keys=True))
+        session.rollback()
+    return 0

@@ -62,11 +62,29 @@ class EvenhandClient:
     def approve(self, token: str, name: str, version: int) -> None:
         self.post(f"/v1/policies/{name}/versions/{version}/approve", token, {})
 
-    def activate(self, token: str, name: str, version: int, reason: str | None = None) -> None:
-        self.post(f"/v1/policies/{name}/activate", token, {"version": version, "reason": reason})
+    def activate(
+        self,
+        token: str,
+        name: str,
+        version: int,
+        reason: str | None = None,
+        *,
+        expected_current: int | None,
+    ) -> None:
+        """``expected_current``: the version active now (None: none), so a retry is safe."""
+        body = {"version": version, "reason": reason, "expected_current": expected_current}
+        self.post(f"/v1/policies/{name}/activate", token, body)
 
-    def rollback(self, token: str, name: str, reason: str, to_version: int | None = None) -> int:
-        body: dict[str, Any] = {"reason": reason}
+    def rollback(
+        self,
+        token: str,
+        name: str,
+        reason: str,
+        to_version: int | None = None,
+        *,
+        expected_current: int | None,
+    ) -> int:
+        body: dict[str, Any] = {"reason": reason, "expected_current": expected_current}
         if to_version is not None:
             body["to_version"] = to_version
         version: int = self.post(f"/v1/policies/{name}/rollback", token, body)["version"]
@@ -76,11 +94,20 @@ class EvenhandClient:
         events: list[dict[str, Any]] = self.get(f"/v1/policies/{name}/history", token)
         return events
 
-    def publish(self, author: str, reviewer: str, document: dict[str, Any], reason: str) -> int:
-        """Submit (author), approve (a second admin) and activate: the four-eyes path."""
+    def publish(
+        self,
+        author: str,
+        reviewer: str,
+        document: dict[str, Any],
+        reason: str,
+        *,
+        expected_current: int | None,
+    ) -> int:
+        """Submit (author), approve (a second admin key) and activate: the four-eyes path.
+        ``expected_current``: the version active before (None: none)."""
         version = self.submit(author, document)
         self.approve(reviewer, document["name"], version)
-        self.activate(author, document["name"], version, reason)
+        self.activate(author, document["name"], version, reason, expected_current=expected_current)
         return version
 
     # -- scoring and the log ---------------------------------------------------------------
@@ -93,7 +120,6 @@ class EvenhandClient:
         out: dict[str, Any] = self.post("/v1/recommendations/batch", token, {"items": items})
         return out
 
-    def verify(self, token: str, expected_seal_hash: str | None = None) -> dict[str, Any]:
-        params = {} if expected_seal_hash is None else {"expected_seal_hash": expected_seal_hash}
-        out: dict[str, Any] = self.get("/v1/log/verify", token, **params)
+    def verify(self, token: str) -> dict[str, Any]:
+        out: dict[str, Any] = self.get("/v1/log/verify", token)
         return out

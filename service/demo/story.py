@@ -22,15 +22,17 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from service.audit.seal import seal_all_pending
 from service.demo.api_client import EvenhandClient
 from service.demo.fernhollow import DEFAULT_SEED, Discharges, generate, write_csv
 from service.demo.policy import demo_policy, group_blind_variant
 from service.demo.server import ServerProcess
+from service.log.heads import new_signing_key
 from service.settings import Settings
 from service.store import keys
 from service.store.db import create_db_engine, create_session_factory
+from service.store.log_upkeep import keep_log
 from service.store.migrate import upgrade
+from service.store.signing import signer_from_settings
 
 MARKER = ".evenhand-demo"
 CLIENT_THREADS = 4
@@ -59,6 +61,7 @@ class DemoContext:
     seed: int = DEFAULT_SEED
     database_url: str = ""
     draw_secret: str = ""
+    signing_key_file: Path | None = None
     tokens: dict[str, str] = field(default_factory=dict)  # author, reviewer, scoring, audit
     server: ServerProcess | None = None
     base_url: str = ""
@@ -99,6 +102,11 @@ def prepare_output(ctx: DemoContext) -> None:
     secret_file = out / "draw-secret.txt"
     secret_file.write_text(ctx.draw_secret + "\n")
     secret_file.chmod(0o600)
+    # Likewise its own log signing key; a real deployment keeps its key outside the database.
+    _key, seed_hex = new_signing_key()
+    ctx.signing_key_file = out / "signing-key.txt"
+    ctx.signing_key_file.write_text(seed_hex + "\n")
+    ctx.signing_key_file.chmod(0o600)
     ctx.discharges = generate(ctx.cases, seed=ctx.seed)
     write_csv(ctx.discharges, out / "discharges.csv")
     ctx.say(f"[1] output in {out}/: {ctx.cases} synthetic Fernhollow discharges (seed {ctx.seed})")
@@ -137,6 +145,8 @@ def start_server(ctx: DemoContext) -> None:
         # The demo's server says it is one (and would accept a short secret, with a warning).
         "EVENHAND_DEMO_MODE": "true",
         "EVENHAND_SEAL_INTERVAL_SECONDS": "2",
+        "EVENHAND_SIGNING_KEY_FILE": str(ctx.signing_key_file),
+        "EVENHAND_HEAD_MIRROR": str(ctx.output_dir / "heads.jsonl"),
     }
     ctx.server = ServerProcess(env, ctx.output_dir / "server.log")
     ctx.server.start()
@@ -155,7 +165,13 @@ def publish_policy(ctx: DemoContext) -> None:
         ctx.say(f"[5] admin-rivera submitted {ctx.policy_name} v{version}")
         api.approve(ctx.tokens["reviewer"], ctx.policy_name, version)
         ctx.say(f"    admin-okafor approved v{version} (the author may not approve their own)")
-        api.activate(ctx.tokens["author"], ctx.policy_name, version, "initial reviewed policy")
+        api.activate(
+            ctx.tokens["author"],
+            ctx.policy_name,
+            version,
+            "initial reviewed policy",
+            expected_current=None,
+        )
     ctx.versions["reviewed"] = version
     ctx.say(f"    v{version} is active")
 
@@ -228,7 +244,13 @@ def switch_version(ctx: DemoContext) -> None:
             ctx.tokens["author"],
             **{"from": ctx.versions["reviewed"], "to": version},
         )
-        api.activate(ctx.tokens["author"], ctx.policy_name, version, "trial of one cut for all")
+        api.activate(
+            ctx.tokens["author"],
+            ctx.policy_name,
+            version,
+            "trial of one cut for all",
+            expected_current=ctx.versions["reviewed"],
+        )
     ctx.versions["group-blind"] = version
     ctx.say(f"[7] v{version} submitted, approved by the second admin and activated; what changed:")
     for line in str(diff.get("summary", "")).splitlines()[:6]:
@@ -271,32 +293,44 @@ def _rollback_reason(ctx: DemoContext) -> str:
 def roll_back(ctx: DemoContext) -> None:
     reason = _rollback_reason(ctx)
     with ctx.client() as api:
-        version = api.rollback(ctx.tokens["author"], ctx.policy_name, reason)
+        version = api.rollback(
+            ctx.tokens["author"],
+            ctx.policy_name,
+            reason,
+            expected_current=ctx.versions["group-blind"],
+        )
     ctx.say(f"[8] rolled back to v{version}: {reason}")
     _, _, rows = _phase_rows(ctx)
     _send(ctx, rows, "after rollback")
 
 
 def seal_and_verify(ctx: DemoContext) -> None:
-    engine = create_db_engine(Settings(database_url=ctx.database_url))
+    settings = Settings(
+        database_url=ctx.database_url,
+        signing_key_file=str(ctx.signing_key_file),
+        head_mirror=str(ctx.output_dir / "heads.jsonl"),
+    )
+    engine = create_db_engine(settings)
     try:
-        with create_session_factory(engine)() as session:
-            seals = seal_all_pending(
-                session
-            )  # the server seals too; the lock makes them take turns
+        # The server seals too; seals take consecutive ids, so the two take turns.
+        done = keep_log(
+            create_session_factory(engine),
+            signer_from_settings(settings),
+            settings.timezone,
+            tally_now=True,
+            mirror=settings.head_mirror,
+        )
     finally:
         engine.dispose()
     with ctx.client() as api:
         ctx.verify = api.verify(ctx.tokens["audit"])
-    head = ctx.verify.get("head_seal_hash")
-    (ctx.output_dir / "log-head.txt").write_text(f"{head}\n")
-    status = "ok" if ctx.verify.get("ok") else f"MISMATCH: {ctx.verify.get('problem')}"
+    status = "ok" if ctx.verify.get("ok") else f"PROBLEM: {ctx.verify.get('problem')}"
     ctx.say(
-        f"[9] sealed {sum(s.record_count for s in seals)} remaining records; verify: {status} "
+        f"[9] sealed {done.sealed} remaining records; verify: {status} "
         f"({ctx.verify.get('seals_checked')} seals, {ctx.verify.get('records_checked')} records)"
     )
     if not ctx.verify.get("ok"):
-        raise DemoError("the decision log did not verify")
+        raise DemoError("the log did not verify")
 
 
 def print_summary(ctx: DemoContext) -> None:
@@ -326,10 +360,11 @@ def print_summary(ctx: DemoContext) -> None:
         rates = ", ".join(f"{c} {acted[c] / total[c]:.0%} of {total[c]}" for c in sorted(total))
         lines.append(f"  v{version}: {count} decided; follow-up offered: {rates}")
     verified = "ok" if ctx.verify.get("ok") else "NOT ok"
+    head = (ctx.verify.get("head") or {}).get("head", {})
     lines.append(
-        f"decision log: {ctx.verify.get('records_checked')} records in "
-        f"{ctx.verify.get('seals_checked')} chained seals, verified {verified}; "
-        f"head seal {ctx.verify.get('head_seal_hash')} (also in log-head.txt: keep it elsewhere)"
+        f"log: {ctx.verify.get('records_checked')} records in {ctx.verify.get('seals_checked')} "
+        f"signed seals, verified {verified}; head: seal {head.get('seal_id')}, size "
+        f"{head.get('tree_size')} (every signed head is also in heads.jsonl: keep it elsewhere)"
     )
     lines.extend(ctx.summary)
     lines.extend(

@@ -1,12 +1,11 @@
 """Signed tree heads: what a seal states about the whole log, signed with Ed25519.
 
 A tree head says: after seal ``seal_id`` the log holds ``tree_size`` leaves whose Merkle tree
-head (RFC 9162 section 2.1) is ``root``; ``rollup`` is the digest of the tallies the seal wrote
-for the audit. Its signed bytes are the canonical JSON of those fields with a format tag, and
-the signature is Ed25519 (RFC 8032) by the key named ``key_id`` (the first 16 bytes of the
-SHA-256 of the raw public key, in hex). The signing key lives outside the database (a file
-or an environment setting); public keys are published and kept, so heads signed with a key
-that has since been rotated still verify.
+head (RFC 9162 section 2.1) is ``root``. Its signed bytes are the canonical JSON of those
+fields with a format tag, and the signature is Ed25519 (RFC 8032) by the key named
+``key_id`` (the first 16 bytes of the SHA-256 of the raw public key, in hex). The signing
+key lives outside the database (a file or an environment setting); public keys are published
+and kept, so heads signed with a key that has since been rotated still verify.
 
 Standard library and ``cryptography`` only: the standalone bundle verifier imports this module.
 """
@@ -46,7 +45,6 @@ class TreeHead:
     root: bytes
     created_at: str
     key_id: str
-    rollup: bytes
 
     def payload(self) -> dict[str, Any]:
         return {
@@ -56,7 +54,6 @@ class TreeHead:
             "root": self.root.hex(),
             "created_at": self.created_at,
             "key_id": self.key_id,
-            "rollup": self.rollup.hex(),
         }
 
     def signed_bytes(self) -> bytes:
@@ -72,7 +69,6 @@ class TreeHead:
             root=bytes.fromhex(payload["root"]),
             created_at=str(payload["created_at"]),
             key_id=str(payload["key_id"]),
-            rollup=bytes.fromhex(payload["rollup"]),
         )
 
 

@@ -1,108 +1,68 @@
-"""Tables of the feedback loop and the audit: outcomes, their corrections, the person's final
-decisions, and immutable report snapshots.
+"""Tables of the feedback loop, the audit and the log's seals: outcome records, final
+decisions, report snapshots, seals, tree nodes, signing keys and tally batches. All
+insert-only (the one exception is a retention purge of whole sealed months).
 
-``outcomes`` holds the outcome that counts (one row per recommendation, keyed by the
-recommendation's row id); every value it replaced is kept in ``outcome_corrections`` with the
-reason. Outcomes and final decisions carry a copy of their recommendation's cohort fields
-(policy, version, group, shadow version, issue time, action, probability): the decision log
-is append-only, so the copy never goes stale, and the audit counts each table with a GROUP BY
-over its own index instead of joining a million rows. ``audit_snapshots`` rows are written once and
-never updated: a re-run of a month adds a new row.
+``outcome_records`` holds every outcome reported for a recommendation, first reports and
+corrections alike; the outcome that counts is the latest record of the recommendation (its
+highest id). A correction carries its reason. ``final_decisions`` holds what the person
+finally decided, once per recommendation. ``audit_snapshots`` rows are written once: a re-run
+of a month adds a new row.
 """
 
 from __future__ import annotations
 
-from datetime import datetime
+from datetime import date, datetime
 from typing import Any
 
 from sqlalchemy import (
     JSON,
     Boolean,
     CheckConstraint,
-    Double,
+    Date,
     ForeignKey,
     Index,
     Integer,
+    LargeBinary,
     SmallInteger,
     String,
     Text,
 )
 from sqlalchemy.orm import Mapped, mapped_column
 
-from service.store.models import Base, BigId, Recommendation, UTCDateTime, utcnow
+from service.store.models import Base, BigId, UTCDateTime, utcnow
 
 
-class _CohortCopy:
-    """The recommendation's fields the audit groups and counts by (copied at write time)."""
+class OutcomeRecord(Base):
+    """One outcome reported for a recommendation: a first report or a correction."""
 
-    policy: Mapped[str] = mapped_column(String(64))
-    version: Mapped[int] = mapped_column(Integer)
-    group: Mapped[str] = mapped_column(String(256))
-    shadow_version: Mapped[int | None] = mapped_column(Integer, default=None)
-    issued_at: Mapped[datetime] = mapped_column(UTCDateTime)
-    action: Mapped[bool] = mapped_column(Boolean)
-    probability: Mapped[float] = mapped_column(Double)
-    shadow_action: Mapped[bool | None] = mapped_column(Boolean, default=None)
-    score: Mapped[float] = mapped_column(Double)
-
-
-COHORT_COLUMNS = ("policy", "version", "group", "shadow_version", "issued_at")
-"""Leading columns of every audit index: equality on the first four, a range on the last."""
-
-
-class Outcome(_CohortCopy, Base):
-    """The outcome that counts for one recommendation (the latest, after corrections)."""
-
-    __tablename__ = "outcomes"
+    __tablename__ = "outcome_records"
     __table_args__ = (
         CheckConstraint("outcome IN (0, 1)", name="outcome_binary"),
-        Index(
-            "ix_outcomes_audit",
-            *COHORT_COLUMNS,
-            "outcome",
-            "action",
-            "probability",
-            "shadow_action",
-            "score",
-        ),
+        # The latest record of a recommendation: the outcome that counts.
+        Index("ix_outcome_records_recommendation", "recommendation_pk", "id"),
+        {"sqlite_autoincrement": True},
     )
 
-    recommendation_pk: Mapped[int] = mapped_column(
-        BigId, ForeignKey("recommendations.id"), primary_key=True, autoincrement=False
-    )
+    id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
+    recommendation_pk: Mapped[int] = mapped_column(BigId, ForeignKey("recommendations.id"))
     outcome: Mapped[int] = mapped_column(SmallInteger)
     observed_at: Mapped[datetime] = mapped_column(UTCDateTime)
     source: Mapped[str] = mapped_column(String(128))
+    correction_reason: Mapped[str | None] = mapped_column(Text, default=None)
+    """None for a first report; a correction's reason otherwise."""
     recorded_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
-    corrections: Mapped[int] = mapped_column(Integer, default=0)
+    recorded_by: Mapped[str] = mapped_column(String(64))
 
 
-class OutcomeCorrection(Base):
-    """An outcome value that a correction replaced, and why."""
-
-    __tablename__ = "outcome_corrections"
-
-    id: Mapped[int] = mapped_column(Integer, primary_key=True)
-    recommendation_pk: Mapped[int] = mapped_column(
-        BigId, ForeignKey("recommendations.id"), index=True
-    )
-    previous_outcome: Mapped[int] = mapped_column(SmallInteger)
-    previous_observed_at: Mapped[datetime] = mapped_column(UTCDateTime)
-    previous_source: Mapped[str] = mapped_column(String(128))
-    new_outcome: Mapped[int] = mapped_column(SmallInteger)
-    reason: Mapped[str] = mapped_column(Text)
-    corrected_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
-    corrected_by: Mapped[str] = mapped_column(String(64))
-
-
-class FinalDecision(_CohortCopy, Base):
+class FinalDecision(Base):
     """What the person finally decided: followed the recommendation, or overrode it."""
 
     __tablename__ = "final_decisions"
-    __table_args__ = (Index("ix_final_decisions_audit", *COHORT_COLUMNS, "overridden"),)
+    __table_args__ = ({"sqlite_autoincrement": True},)
 
+    id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
     recommendation_pk: Mapped[int] = mapped_column(
-        BigId, ForeignKey("recommendations.id"), primary_key=True, autoincrement=False
+        BigId, ForeignKey("recommendations.id"), unique=True
     )
     overridden: Mapped[bool] = mapped_column(Boolean)
     final_action: Mapped[bool] = mapped_column(Boolean)
@@ -110,10 +70,11 @@ class FinalDecision(_CohortCopy, Base):
     decided_at: Mapped[datetime] = mapped_column(UTCDateTime)
     decided_by: Mapped[str | None] = mapped_column(String(128), default=None)
     recorded_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
+    recorded_by: Mapped[str] = mapped_column(String(64))
 
 
 class AuditSnapshot(Base):
-    """One audit run's published result; never updated."""
+    """One audit run's published result and its internal view; never updated."""
 
     __tablename__ = "audit_snapshots"
     __table_args__ = (Index("ix_audit_snapshots_policy_month", "policy", "month"),)
@@ -131,19 +92,98 @@ class AuditSnapshot(Base):
     digest: Mapped[str] = mapped_column(String(64), unique=True)
     content: Mapped[dict[str, Any]] = mapped_column(JSON)
     # The same run without small-cell suppression: for the audit role and the cross-month
-    # monitoring only, never published. None on snapshots written before it existed.
+    # monitoring only, never published.
     internal: Mapped[dict[str, Any] | None] = mapped_column(JSON, default=None)
+    internal_digest: Mapped[str | None] = mapped_column(String(64), default=None)
+    """None only on snapshots written before the internal view existed (revision 0020)."""
 
 
-AUDIT_COVERING_INDEX = "ix_recommendations_audit"
+class Seal(Base):
+    """A signed tree head over the log after this seal's records.
 
-# Everything the audit reads from the decision log, in the order it groups by, so a month of
-# one (version, group, shadow version) is one contiguous range of this index.
-_cols = Recommendation.__table__.c
-Index(
-    AUDIT_COVERING_INDEX,
-    *(_cols[name] for name in COHORT_COLUMNS),
-    _cols.action,
-    _cols.probability,
-    _cols.shadow_action,
-)
+    ``ranges`` gives, per kind of record, ``[after, through, count]``: the seal covers the
+    records with ids in ``(after, through]`` (``count`` of them), ``after`` being the previous
+    seal's ``through``. Membership is derived from these ranges; nothing is written back to a
+    record. The seal's leaves are the records of each kind in id order, the kinds in the log's
+    fixed order; ``tree_size`` counts the leaves of this seal and of all before it, ``root``
+    is the Merkle tree head over them (RFC 9162). ``frontier`` is the roots of the perfect
+    subtrees those leaves decompose into, largest first, 32 bytes each (their sizes are the
+    binary digits of ``tree_size``): the next seal continues from it. ``tags`` holds the first
+    8 bytes of the leaf hashes of this seal's leaves in the last, incomplete block of
+    ``service.store.sealing.BLOCK`` leaves (a completed block keeps all its tags in its
+    :class:`TreeNode`), so verification can name a bad record. ``signature`` is Ed25519 over
+    the head (``service.log.heads``) by key ``key_id``.
+    """
+
+    __tablename__ = "seals"
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True, autoincrement=False)
+    created_at: Mapped[datetime] = mapped_column(UTCDateTime)
+    ranges: Mapped[dict[str, list[int]]] = mapped_column(JSON)
+    leaf_count: Mapped[int] = mapped_column(Integer)
+    tree_size: Mapped[int] = mapped_column(BigId)
+    root: Mapped[bytes] = mapped_column(LargeBinary(32))
+    frontier: Mapped[bytes] = mapped_column(LargeBinary)
+    tags: Mapped[bytes] = mapped_column(LargeBinary)
+    key_id: Mapped[str] = mapped_column(String(32), ForeignKey("signing_keys.key_id"))
+    signature: Mapped[bytes] = mapped_column(LargeBinary(64))
+
+
+class TreeNode(Base):
+    """The root of one perfect, aligned subtree of the log: 2^level leaves from
+    ``position * 2^level``, kept for every level from ``service.store.sealing.BLOCK_LEVEL``
+    up, so a proof recomputes at most one block of leaves. At the block level, ``tags`` holds
+    the first 8 bytes of each leaf hash of the block. Derived data: verification recomputes
+    and compares it, and never trusts it."""
+
+    __tablename__ = "tree_nodes"
+
+    level: Mapped[int] = mapped_column(SmallInteger, primary_key=True, autoincrement=False)
+    position: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=False)
+    hash: Mapped[bytes] = mapped_column(LargeBinary(32))
+    tags: Mapped[bytes | None] = mapped_column(LargeBinary, default=None)
+
+
+class SigningKey(Base):
+    """A public key that has signed tree heads (kept after rotation, so old heads verify)."""
+
+    __tablename__ = "signing_keys"
+
+    key_id: Mapped[str] = mapped_column(String(32), primary_key=True)
+    public_key: Mapped[bytes] = mapped_column(LargeBinary(32))
+    first_used_at: Mapped[datetime] = mapped_column(UTCDateTime)
+
+
+class TallyBatch(Base):
+    """The audit tallies of a range of sealed records of each kind (``ranges``: per kind
+    ``[after, through]``, ``after`` being the previous batch's ``through``), by the day of
+    the decision in ``time_zone``, with the SHA-256 ``digest`` of its tally rows
+    (``service.log.tallies.digest``). A record of the log itself: the next seal covers it."""
+
+    __tablename__ = "tally_batches"
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True, autoincrement=False)
+    created_at: Mapped[datetime] = mapped_column(UTCDateTime)
+    time_zone: Mapped[str] = mapped_column(String(64))
+    ranges: Mapped[dict[str, list[int]]] = mapped_column(JSON)
+    digest: Mapped[bytes] = mapped_column(LargeBinary(32))
+
+
+class Tally(Base):
+    """One cohort cell of one tally batch: the vector of ``service.log.tallies.FIELDS`` as a
+    JSON array of integers (real-valued sums in units of 2^-64 outgrow 64-bit columns)."""
+
+    __tablename__ = "tallies"
+    # The audit sums a policy's tallies over the days of a month.
+    __table_args__ = (Index("ix_tallies_policy_day", "policy", "day"),)
+
+    batch_id: Mapped[int] = mapped_column(
+        Integer, ForeignKey("tally_batches.id"), primary_key=True, autoincrement=False
+    )
+    position: Mapped[int] = mapped_column(Integer, primary_key=True, autoincrement=False)
+    policy: Mapped[str] = mapped_column(String(64))
+    version: Mapped[int] = mapped_column(Integer)
+    group: Mapped[str] = mapped_column(String(256))
+    shadow_version: Mapped[int | None] = mapped_column(Integer)
+    day: Mapped[date] = mapped_column(Date)
+    vector: Mapped[list[int]] = mapped_column(JSON)

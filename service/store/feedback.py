@@ -2,9 +2,10 @@
 
 Rules (the API and the demo go through these functions; callers commit):
 
-- The same outcome again changes nothing (``unchanged``). A different outcome for a
-  recommendation that has one is a conflict, unless it comes as a correction with a reason:
-  then the replaced value goes to ``outcome_corrections`` and the new one counts.
+- Every outcome is a new, never-changed record. The same outcome again records nothing
+  (``unchanged``). A different outcome for a recommendation that has one is a conflict,
+  unless it comes as a correction with a reason: then a new record with the reason is added,
+  and the latest record counts; the replaced one stays.
 - A final decision is recorded once; the same decision again is ``unchanged``, a different one
   a conflict.
 - A batch is applied as a whole: every item is checked first, and if any fails nothing is
@@ -16,6 +17,7 @@ Rules (the API and the demo go through these functions; callers commit):
 
 from __future__ import annotations
 
+import uuid
 from collections.abc import Sequence
 from dataclasses import dataclass
 from datetime import datetime, timedelta
@@ -32,9 +34,9 @@ from service.errors import (
     Unprocessable,
     item_problem,
 )
-from service.store.audit_models import FinalDecision, Outcome, OutcomeCorrection
+from service.log.records import format_timestamp
+from service.store.audit_models import FinalDecision, OutcomeRecord
 from service.store.models import Recommendation, utcnow
-from service.store.records import format_timestamp
 
 LOOKUP_CHUNK = 500
 DEFAULT_CLOCK_SKEW = timedelta(minutes=5)
@@ -67,26 +69,13 @@ class OutcomeResult:
 class _Target:
     pk: int
     recommendation_id: str
-    cohort: dict[str, Any]
-    """The recommendation's cohort fields, copied onto the outcome or final decision."""
+    issued_at: datetime
+    action: bool
 
 
-def _cohort_columns() -> list[Any]:
+def _target_columns() -> list[Any]:
     r = Recommendation.__table__.c
-    return [r[name] for name in COPIED]
-
-
-COPIED = (
-    "policy",
-    "version",
-    "group",
-    "shadow_version",
-    "issued_at",
-    "action",
-    "probability",
-    "shadow_action",
-    "score",
-)
+    return [r.id, r.recommendation_id, r.issued_at, r.action]
 
 
 class ItemsRefused(BatchRefused):
@@ -127,19 +116,25 @@ def _describe(item: OutcomeReport) -> str:
     return f"case {item.case_id!r} of policy {item.policy!r}"
 
 
+def canonical_recommendation_id(text: str) -> str | None:
+    """A recommendation_id in its stored form (a lowercase UUID with dashes), or None when
+    ``text`` is no UUID at all (then no recommendation has it)."""
+    try:
+        return str(uuid.UUID(text))
+    except ValueError:
+        return None
+
+
 def _resolve(session: Session, items: Sequence[OutcomeReport]) -> list[_Target | None]:
     """The recommendation of each item; None when there is none. A (policy, case_id) pair
     names the latest recommendation issued for that case under that policy."""
     by_id: dict[str, _Target] = {}
-    ids = sorted({i.recommendation_id for i in items if i.recommendation_id is not None})
+    named = {i.recommendation_id for i in items if i.recommendation_id is not None}
+    ids = sorted({c for c in map(canonical_recommendation_id, named) if c is not None})
     r = Recommendation.__table__.c
     for start in range(0, len(ids), LOOKUP_CHUNK):
         chunk = ids[start : start + LOOKUP_CHUNK]
-        rows = session.execute(
-            select(r.id, r.recommendation_id, *_cohort_columns()).where(
-                r.recommendation_id.in_(chunk)
-            )
-        )
+        rows = session.execute(select(*_target_columns()).where(r.recommendation_id.in_(chunk)))
         for row in rows:
             by_id[row.recommendation_id] = _target(row)
     by_case: dict[tuple[str, str], _Target] = {}
@@ -152,7 +147,7 @@ def _resolve(session: Session, items: Sequence[OutcomeReport]) -> list[_Target |
         for start in range(0, len(cases), LOOKUP_CHUNK):
             chunk = cases[start : start + LOOKUP_CHUNK]
             found = session.execute(
-                select(r.id, r.recommendation_id, r.case_id, *_cohort_columns())
+                select(*_target_columns(), r.case_id)
                 .where(r.policy == policy, r.case_id.in_(chunk))
                 .order_by(r.issued_at, r.id)
             )
@@ -161,7 +156,8 @@ def _resolve(session: Session, items: Sequence[OutcomeReport]) -> list[_Target |
     out: list[_Target | None] = []
     for item in items:
         if item.recommendation_id is not None:
-            out.append(by_id.get(item.recommendation_id))
+            canonical = canonical_recommendation_id(item.recommendation_id)
+            out.append(None if canonical is None else by_id.get(canonical))
         else:
             assert item.policy is not None and item.case_id is not None
             out.append(by_case.get((item.policy, item.case_id)))
@@ -169,18 +165,33 @@ def _resolve(session: Session, items: Sequence[OutcomeReport]) -> list[_Target |
 
 
 def _target(row: Any) -> _Target:
-    return _Target(
-        int(row.id), str(row.recommendation_id), {name: getattr(row, name) for name in COPIED}
-    )
+    return _Target(int(row.id), str(row.recommendation_id), row.issued_at, bool(row.action))
 
 
-def _existing(session: Session, pks: Sequence[int]) -> dict[int, Outcome]:
-    found: dict[int, Outcome] = {}
+@dataclass(slots=True)
+class _Current:
+    """The outcome that counts for a recommendation now: its latest record's value, and how
+    many of its records are corrections."""
+
+    outcome: int
+    corrections: int
+
+
+def _existing(session: Session, pks: Sequence[int]) -> dict[int, _Current]:
+    o = OutcomeRecord.__table__.c
+    found: dict[int, _Current] = {}
     unique = sorted(set(pks))
     for start in range(0, len(unique), LOOKUP_CHUNK):
         chunk = unique[start : start + LOOKUP_CHUNK]
-        for row in session.scalars(select(Outcome).where(Outcome.recommendation_pk.in_(chunk))):
-            found[row.recommendation_pk] = row
+        rows = session.execute(
+            select(o.recommendation_pk, o.outcome, o.correction_reason)
+            .where(o.recommendation_pk.in_(chunk))
+            .order_by(o.recommendation_pk, o.id)
+        )
+        for pk, outcome, reason in rows:
+            current = found.get(pk)
+            corrections = (current.corrections if current else 0) + (reason is not None)
+            found[pk] = _Current(int(outcome), corrections)
     return found
 
 
@@ -194,6 +205,7 @@ def record_outcomes(
     now = utcnow()
     targets = _resolve(session, items)
     current = _existing(session, [t.pk for t in targets if t is not None])
+    records: list[OutcomeRecord] = []
     results: list[OutcomeResult] = []
     failures: list[tuple[int, ServiceError]] = []
     for index, (item, target) in enumerate(zip(items, targets, strict=True)):
@@ -209,24 +221,23 @@ def record_outcomes(
                 )
             )
             continue
-        late = check_timing(
-            item.observed_at, target.cohort["issued_at"], clock_skew, "observed_at", now
-        )
+        late = check_timing(item.observed_at, target.issued_at, clock_skew, "observed_at", now)
         if late is not None:
             failures.append((index, late))
             continue
         row = current.get(target.pk)
         if row is None:
-            row = Outcome(
-                **target.cohort,
-                recommendation_pk=target.pk,
-                outcome=item.outcome,
-                observed_at=item.observed_at,
-                source=item.source,
-                corrections=0,
+            records.append(
+                OutcomeRecord(
+                    recommendation_pk=target.pk,
+                    outcome=item.outcome,
+                    observed_at=item.observed_at,
+                    source=item.source,
+                    recorded_at=now,
+                    recorded_by=actor,
+                )
             )
-            session.add(row)
-            current[target.pk] = row
+            current[target.pk] = _Current(item.outcome, 0)
             results.append(OutcomeResult(target.recommendation_id, "recorded", item.outcome, 0))
             continue
         if row.outcome == item.outcome:
@@ -248,27 +259,25 @@ def record_outcomes(
                 )
             )
             continue
-        session.add(
-            OutcomeCorrection(
+        records.append(
+            OutcomeRecord(
                 recommendation_pk=target.pk,
-                previous_outcome=row.outcome,
-                previous_observed_at=row.observed_at,
-                previous_source=row.source,
-                new_outcome=item.outcome,
-                reason=item.correction_reason,
-                corrected_by=actor,
+                outcome=item.outcome,
+                observed_at=item.observed_at,
+                source=item.source,
+                correction_reason=item.correction_reason,
+                recorded_at=now,
+                recorded_by=actor,
             )
         )
-        row.outcome = item.outcome
-        row.observed_at = item.observed_at
-        row.source = item.source
-        row.corrections += 1
+        current[target.pk] = row = _Current(item.outcome, row.corrections + 1)
         results.append(
             OutcomeResult(target.recommendation_id, "corrected", item.outcome, row.corrections)
         )
     if failures:
-        # Nothing is flushed yet; the caller's session is discarded without a commit.
+        # Nothing was added to the session; the caller discards it without a commit.
         raise ItemsRefused(failures, len(items))
+    session.add_all(records)
     session.flush()
     return results
 
@@ -295,25 +304,28 @@ def record_final(
     session: Session,
     recommendation_id: str,
     report: FinalReport,
+    actor: str,
     clock_skew: timedelta = DEFAULT_CLOCK_SKEW,
 ) -> FinalResult:
     r = Recommendation.__table__.c
-    found = session.execute(
-        select(r.id, r.recommendation_id, *_cohort_columns()).where(
-            r.recommendation_id == recommendation_id
-        )
-    ).first()
+    canonical = canonical_recommendation_id(recommendation_id)
+    found = (
+        None
+        if canonical is None
+        else session.execute(
+            select(*_target_columns()).where(r.recommendation_id == canonical)
+        ).first()
+    )
     if found is None:
         raise NotFound(f"no recommendation {recommendation_id!r}", code="unknown_recommendation")
     target = _target(found)
-    late = check_timing(
-        report.decided_at, target.cohort["issued_at"], clock_skew, "decided_at", utcnow()
-    )
+    now = utcnow()
+    late = check_timing(report.decided_at, target.issued_at, clock_skew, "decided_at", now)
     if late is not None:
         raise late
-    pk, action = target.pk, bool(target.cohort["action"])
-    final_action = action != report.overridden
-    row = session.get(FinalDecision, pk)
+    pk = target.pk
+    final_action = target.action != report.overridden
+    row = session.scalar(select(FinalDecision).where(FinalDecision.recommendation_pk == pk))
     if row is not None:
         same = (row.overridden, row.reason_code) == (report.overridden, report.reason_code)
         if not same:
@@ -334,13 +346,14 @@ def record_final(
         )
     session.add(
         FinalDecision(
-            **target.cohort,
             recommendation_pk=pk,
             overridden=report.overridden,
             final_action=final_action,
             reason_code=report.reason_code,
             decided_at=report.decided_at,
             decided_by=report.decided_by,
+            recorded_at=now,
+            recorded_by=actor,
         )
     )
     session.flush()

@@ -1,10 +1,10 @@
 """Database tables, as typed SQLAlchemy models.
 
 Constraint names follow one convention so migrations are stable across databases. Policy
-versions never change once written (the document and its content hash are set on insert);
-only their lifecycle status and approval fields move. Recommendations are the decision log:
-append-only, each carrying the hash of its canonical encoding (``service.store.records``) and,
-once sealed, the seal it belongs to.
+versions, their lifecycle events, API keys and key events are insert-only (PostgreSQL refuses
+UPDATE and DELETE on them: migration 0050); ``policy_state`` is the derived state the hot path
+reads. Recommendations are the decision log: insert-only too; the log's seals cover ranges of
+their ids (``service.store.sealing``) and nothing is ever written back to them.
 """
 
 from __future__ import annotations
@@ -25,11 +25,12 @@ from sqlalchemy import (
     ForeignKeyConstraint,
     Index,
     Integer,
+    LargeBinary,
     MetaData,
     String,
     Text,
     UniqueConstraint,
-    text,
+    Uuid,
 )
 from sqlalchemy.orm import DeclarativeBase, Mapped, mapped_column
 from sqlalchemy.types import TypeDecorator
@@ -93,6 +94,8 @@ class LifecycleAction(StrEnum):
     APPROVE = "approve"
     ACTIVATE = "activate"
     ROLLBACK = "rollback"
+    # Recorded only by migration 0050, for a version stored as retired that no recorded
+    # activation had made active; lifecycle actions retire a version by switching away.
     RETIRE = "retire"
     SHADOW = "shadow"
     UNSHADOW = "unshadow"
@@ -103,8 +106,15 @@ def _in(column: str, values: type[StrEnum]) -> str:
 
 
 class ApiKey(Base):
+    """A credential: insert-only (created and revoked by :class:`KeyEvent` rows)."""
+
     __tablename__ = "api_keys"
-    __table_args__ = (CheckConstraint(_in("role", Role), name="role"),)
+    __table_args__ = (
+        CheckConstraint(_in("role", Role), name="role"),
+        # The four insert-only tables never reuse an id on SQLite either (the log seals them
+        # by id ranges).
+        {"sqlite_autoincrement": True},
+    )
 
     id: Mapped[int] = mapped_column(Integer, primary_key=True)
     name: Mapped[str] = mapped_column(String(64), unique=True)
@@ -112,24 +122,47 @@ class ApiKey(Base):
     # SHA-256 hex of the token; the token itself is shown once and never stored.
     token_hash: Mapped[str] = mapped_column(String(64), unique=True)
     created_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
-    revoked_at: Mapped[datetime | None] = mapped_column(UTCDateTime, default=None)
+
+
+class KeyAction(StrEnum):
+    CREATE = "create"
+    REVOKE = "revoke"
+
+
+class KeyEvent(Base):
+    """One step of a key's life: its creation, its revocation (insert-only).
+
+    ``by_key_id`` is the admin key that acted (``POST /v1/keys/{name}/revoke``); NULL when the
+    operator acted on the database with the CLI, and ``by`` then names the operating-system
+    account that ran it. A key is created once and revoked at most once: the unique
+    (key_id, action) index also serves the authentication lookup's anti-join.
+    """
+
+    __tablename__ = "key_events"
+    __table_args__ = (
+        CheckConstraint(_in("action", KeyAction), name="action"),
+        UniqueConstraint("key_id", "action"),
+        {"sqlite_autoincrement": True},
+    )
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True)
+    key_id: Mapped[int] = mapped_column(ForeignKey("api_keys.id"))
+    action: Mapped[str] = mapped_column(String(16))
+    at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
+    by_key_id: Mapped[int | None] = mapped_column(ForeignKey("api_keys.id"), default=None)
+    by: Mapped[str] = mapped_column(String(64))
+    reason: Mapped[str | None] = mapped_column(Text, default=None)
 
 
 class PolicyVersion(Base):
+    """A stored policy document: insert-only. Its status is derived from the policy's
+    events (``service.store.policies.version_views``)."""
+
     __tablename__ = "policy_versions"
     __table_args__ = (
         UniqueConstraint("name", "version"),
-        CheckConstraint(_in("status", VersionStatus), name="status"),
-        CheckConstraint("approver IS NULL OR approver <> author", name="four_eyes"),
         CheckConstraint("version >= 1", name="version_positive"),
-        # Exactly one active version per policy name, enforced by the database itself.
-        Index(
-            "uq_policy_versions_one_active",
-            "name",
-            unique=True,
-            sqlite_where=text("status = 'active'"),
-            postgresql_where=text("status = 'active'"),
-        ),
+        {"sqlite_autoincrement": True},
     )
 
     id: Mapped[int] = mapped_column(Integer, primary_key=True)
@@ -137,79 +170,97 @@ class PolicyVersion(Base):
     version: Mapped[int] = mapped_column(Integer)
     document: Mapped[dict[str, Any]] = mapped_column(JSON)
     content_hash: Mapped[str] = mapped_column(String(64))
-    status: Mapped[str] = mapped_column(String(16), default=VersionStatus.DRAFT.value)
+    # The key that submitted it (NULL only for versions moved by migration 0050 whose author
+    # named no key) and that key's name.
+    author_key_id: Mapped[int | None] = mapped_column(ForeignKey("api_keys.id"), default=None)
     author: Mapped[str] = mapped_column(String(64))
-    approver: Mapped[str | None] = mapped_column(String(64), default=None)
     created_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
-    approved_at: Mapped[datetime | None] = mapped_column(UTCDateTime, default=None)
 
 
 class PolicyEvent(Base):
-    """One lifecycle event: who did what, when, from which version to which, and why."""
+    """One lifecycle event (insert-only): which key did what, when, from which version to
+    which, why, and the version the request expected to be current."""
 
     __tablename__ = "policy_events"
-    __table_args__ = (CheckConstraint(_in("action", LifecycleAction), name="action"),)
+    __table_args__ = (
+        CheckConstraint(_in("action", LifecycleAction), name="action"),
+        CheckConstraint("expected_sent OR expected_current IS NULL", name="expected"),
+        ForeignKeyConstraint(
+            ["name", "from_version"], ["policy_versions.name", "policy_versions.version"]
+        ),
+        ForeignKeyConstraint(
+            ["name", "to_version"], ["policy_versions.name", "policy_versions.version"]
+        ),
+        Index("ix_policy_events_name_id", "name", "id"),
+        {"sqlite_autoincrement": True},
+    )
 
     id: Mapped[int] = mapped_column(Integer, primary_key=True)
-    name: Mapped[str] = mapped_column(String(64), index=True)
+    name: Mapped[str] = mapped_column(String(64))
     action: Mapped[str] = mapped_column(String(16))
+    # The acting key (NULL only for events moved by migration 0050 whose actor named no key).
+    actor_key_id: Mapped[int | None] = mapped_column(ForeignKey("api_keys.id"), default=None)
     actor: Mapped[str] = mapped_column(String(64))
     at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
     from_version: Mapped[int | None] = mapped_column(Integer, default=None)
     to_version: Mapped[int | None] = mapped_column(Integer, default=None)
     reason: Mapped[str | None] = mapped_column(Text, default=None)
+    # Whether the request carried expected_current, and its value (NULL: "none").
+    expected_sent: Mapped[bool] = mapped_column(Boolean, default=False)
+    expected_current: Mapped[int | None] = mapped_column(Integer, default=None)
 
 
-class PolicyShadow(Base):
-    """The (at most one) approved version evaluated beside the active one of a policy."""
+class PolicyState(Base):
+    """Derived state of one policy for the hot path: its active and shadow version and its
+    last event. Not a log record: changed only by lifecycle actions, under the policy's lock,
+    in the transaction that records the event it follows from. One row per policy, so at
+    most one version is active by construction."""
 
-    __tablename__ = "policy_shadows"
+    __tablename__ = "policy_state"
     __table_args__ = (
         ForeignKeyConstraint(
-            ["name", "version"], ["policy_versions.name", "policy_versions.version"]
+            ["name", "active_version"], ["policy_versions.name", "policy_versions.version"]
+        ),
+        ForeignKeyConstraint(
+            ["name", "shadow_version"], ["policy_versions.name", "policy_versions.version"]
+        ),
+        CheckConstraint(
+            "shadow_version IS NULL OR active_version IS NULL OR shadow_version <> active_version",
+            name="shadow_not_active",
         ),
     )
 
     name: Mapped[str] = mapped_column(String(64), primary_key=True)
-    version: Mapped[int] = mapped_column(Integer)
-    designated_by: Mapped[str] = mapped_column(String(64))
-    designated_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
-
-
-class Seal(Base):
-    """A Merkle root over a set of records, chained to the previous seal's hash."""
-
-    __tablename__ = "seals"
-
-    id: Mapped[int] = mapped_column(Integer, primary_key=True)
-    created_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
-    record_count: Mapped[int] = mapped_column(Integer)
-    first_record_id: Mapped[int] = mapped_column(BigId)
-    last_record_id: Mapped[int] = mapped_column(BigId)
-    root_hash: Mapped[str] = mapped_column(String(64))
-    previous_seal_hash: Mapped[str | None] = mapped_column(String(64))
-    seal_hash: Mapped[str] = mapped_column(String(64), unique=True)
+    active_version: Mapped[int | None] = mapped_column(Integer, default=None)
+    shadow_version: Mapped[int | None] = mapped_column(Integer, default=None)
+    last_event_id: Mapped[int | None] = mapped_column(ForeignKey("policy_events.id"), default=None)
 
 
 class Recommendation(Base):
-    """One decision as issued: the decision log record."""
+    """One decision as issued: the decision log record. Never updated or deleted (the one
+    exception is a retention purge of whole sealed months); seals cover ranges of its ids."""
 
     __tablename__ = "recommendations"
     __table_args__ = (
         ForeignKeyConstraint(
             ["policy", "version"], ["policy_versions.name", "policy_versions.version"]
         ),
+        # The audit's untallied tail and boundary days, and the daily warnings.
         Index("ix_recommendations_policy_issued_at", "policy", "issued_at"),
+        # Outcomes and final decisions sent by (policy, case_id).
+        Index("ix_recommendations_policy_case_id", "policy", "case_id"),
         # Ids are never reused on SQLite, even after the last row is deleted.
         {"sqlite_autoincrement": True},
     )
 
     id: Mapped[int] = mapped_column(BigId, primary_key=True, autoincrement=True)
-    recommendation_id: Mapped[str] = mapped_column(String(36), unique=True)
+    # A UUID (16 bytes on PostgreSQL); the API's name of the decision.
+    recommendation_id: Mapped[str] = mapped_column(Uuid(as_uuid=False), unique=True)
     request_id: Mapped[str] = mapped_column(String(128), unique=True)
-    # SHA-256 of the canonical request body: a repeated request_id with another body is a 409.
-    request_fingerprint: Mapped[str] = mapped_column(String(64))
-    case_id: Mapped[str] = mapped_column(String(128), index=True)
+    # The first 16 bytes of SHA-256 of the request body: a repeated request_id with another
+    # body is a 409. Not part of the record the log hashes.
+    request_fingerprint: Mapped[bytes] = mapped_column(LargeBinary(16))
+    case_id: Mapped[str] = mapped_column(String(128))
     policy: Mapped[str] = mapped_column(String(64))
     version: Mapped[int] = mapped_column(Integer)
     score: Mapped[float] = mapped_column(Double)
@@ -224,5 +275,3 @@ class Recommendation(Base):
     shadow_version: Mapped[int | None] = mapped_column(Integer, default=None)
     shadow_probability: Mapped[float | None] = mapped_column(Double, default=None)
     shadow_action: Mapped[bool | None] = mapped_column(Boolean, default=None)
-    record_hash: Mapped[str] = mapped_column(String(64))
-    seal_id: Mapped[int | None] = mapped_column(ForeignKey("seals.id"), index=True, default=None)

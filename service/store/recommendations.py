@@ -3,9 +3,10 @@
 ``insert_records`` is the scoring hot path: one ``executemany`` with the values already in
 the database's own form, skipping SQLAlchemy's per-row parameter processing (a batch of
 5,000 would otherwise spend most of its time there). The values match what the column types
-would bind: SQLite stores UTC datetimes as naive ``YYYY-MM-DD HH:MM:SS.ffffff`` text and JSON
-as text; PostgreSQL takes aware datetimes and JSON text. Reading back through the models
-gives the same values (a test checks the stored leaf hash against the reread row).
+would bind: SQLite stores UTC datetimes as naive ``YYYY-MM-DD HH:MM:SS.ffffff`` text, JSON
+as text and UUIDs as 32 hex digits; PostgreSQL takes aware datetimes, JSON text and UUID
+text. Reading back through the models gives the same values (a test compares a row written
+here with one written through the model).
 """
 
 from __future__ import annotations
@@ -21,16 +22,15 @@ from sqlalchemy import Connection, Dialect, Table
 from service.store.models import Recommendation
 
 TABLE: Table = Recommendation.__table__  # type: ignore[assignment]
-# Every column the scoring path sets; the id is assigned by the database, seal_id later.
-INSERT_COLUMNS: tuple[str, ...] = tuple(
-    c.name for c in TABLE.columns if c.name not in ("id", "seal_id")
-)
+# Every column the scoring path sets; the id is assigned by the database.
+INSERT_COLUMNS: tuple[str, ...] = tuple(c.name for c in TABLE.columns if c.name != "id")
 _JSON = json.JSONEncoder(separators=(",", ":"), ensure_ascii=False, allow_nan=False)
 ATTRIBUTES_JSON = "_attributes_json"
 """Optional row key: the attributes already encoded (the JSON column's text)."""
 _GET_ROW = itemgetter(*INSERT_COLUMNS)
 _ATTRIBUTES_AT = INSERT_COLUMNS.index("attributes")
 _ISSUED_AT = INSERT_COLUMNS.index("issued_at")
+_RECOMMENDATION_ID = INSERT_COLUMNS.index("recommendation_id")
 _SQL_CACHE: dict[tuple[str, bool], str] = {}
 
 
@@ -108,6 +108,8 @@ def _driver_params(dialect: Dialect, rows: Sequence[dict[str, Any]]) -> list[Any
             values = list(_GET_ROW(row))
             values[_ATTRIBUTES_AT] = _attributes_text(row)
             values[_ISSUED_AT] = stamp(row["issued_at"])
+            # SQLAlchemy's Uuid keeps 32 hex digits on SQLite (a native uuid on PostgreSQL).
+            values[_RECOMMENDATION_ID] = row["recommendation_id"].replace("-", "")
             params.append(tuple(values))
         return params
     return [{**row, "attributes": _attributes_text(row)} for row in rows]

@@ -27,7 +27,7 @@ from datetime import datetime
 from functools import lru_cache
 from typing import Any, Protocol
 
-from sqlalchemy import Connection, Engine, bindparam, func, select
+from sqlalchemy import Connection, Engine, bindparam, select
 from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import aliased
 
@@ -39,28 +39,24 @@ from service.errors import (
     check_batch_size,
     item_problem,
 )
+from service.log.records import (
+    RESPONSE_FIELDS,
+    encode_attributes,
+    format_timestamp,
+    new_record_ids,
+    response_text,
+)
 from service.policy.document import PolicyDocument, resolve_rule_key
 from service.policy.errors import PolicyError
 from service.policy.rules import check_score, evaluate, evaluate_batch, rule_for
 from service.store.db import READ_ONLY
 from service.store.models import (
-    LifecycleAction,
-    PolicyEvent,
-    PolicyShadow,
+    PolicyState,
     PolicyVersion,
     Recommendation,
-    VersionStatus,
     utcnow,
 )
 from service.store.recommendations import ATTRIBUTES_JSON, insert_new_record, insert_records
-from service.store.records import (
-    RESPONSE_FIELDS,
-    decision_texts,
-    encode_attributes,
-    format_timestamp,
-    leaf_hash,
-    new_record_ids,
-)
 from service.store.switch_lock import SCORING_LOCK_SQL, hold_for_scoring
 
 AttributeValue = str | int | float | bool
@@ -131,29 +127,41 @@ class Plan:
     stored_attributes: tuple[str, ...]
 
 
+_Active = aliased(PolicyVersion)
 _Shadow = aliased(PolicyVersion)
 
-# Hot-path statements, built once (only their parameters change per request).
+# Hot-path statements, built once (only their parameters change per request). The policy's
+# state row names its active and shadow versions (one primary-key lookup, then two on the
+# versions' unique index); an unknown policy has no row, a policy without an active
+# version a row whose active version is NULL.
 _PLAN_QUERY = (
-    select(PolicyVersion.version, PolicyVersion.content_hash, _Shadow.version, _Shadow.content_hash)
-    .outerjoin(PolicyShadow, PolicyShadow.name == PolicyVersion.name)
+    select(
+        PolicyState.active_version,
+        _Active.content_hash,
+        PolicyState.shadow_version,
+        _Shadow.content_hash,
+    )
+    .select_from(PolicyState)
     .outerjoin(
-        _Shadow, (_Shadow.name == PolicyShadow.name) & (_Shadow.version == PolicyShadow.version)
+        _Active,
+        (_Active.name == PolicyState.name) & (_Active.version == PolicyState.active_version),
     )
-    .where(
-        PolicyVersion.name == bindparam("name"),
-        PolicyVersion.status == VersionStatus.ACTIVE.value,
+    .outerjoin(
+        _Shadow,
+        (_Shadow.name == PolicyState.name) & (_Shadow.version == PolicyState.shadow_version),
     )
+    .where(PolicyState.name == bindparam("name"))
 )
 # The same lookup as plain SQL for the sqlite3 driver: the hot path skips SQLAlchemy's
 # statement and result processing (the four columns are plain integers and text), which
 # halves its CPU on SQLite. On PostgreSQL the driver-level form measured slower than the
 # compiled statement (psycopg), so it keeps _PLAN_QUERY. Keep the two equal.
 _PLAN_SQL_SQLITE = (
-    "SELECT v.version, v.content_hash, s.version, s.content_hash FROM policy_versions AS v "
-    "LEFT OUTER JOIN policy_shadows AS p ON p.name = v.name "
-    "LEFT OUTER JOIN policy_versions AS s ON s.name = p.name AND s.version = p.version "
-    f"WHERE v.name = ? AND v.status = '{VersionStatus.ACTIVE.value}'"
+    "SELECT p.active_version, v.content_hash, p.shadow_version, s.content_hash "
+    "FROM policy_state AS p "
+    "LEFT OUTER JOIN policy_versions AS v ON v.name = p.name AND v.version = p.active_version "
+    "LEFT OUTER JOIN policy_versions AS s ON s.name = p.name AND s.version = p.shadow_version "
+    "WHERE p.name = ?"
 )
 _EXISTING_QUERY = select(*_STORED).where(Recommendation.request_id == bindparam("request_id"))
 _EXISTING_MANY = select(*_STORED).where(
@@ -191,9 +199,8 @@ def resolve_plan(conn: Connection, name: str, ctx: ScoringContext) -> Plan:
     else:
         row = conn.execute(_PLAN_QUERY, {"name": name}).first()
     if row is None:
-        exists = conn.scalar(select(PolicyVersion.id).where(PolicyVersion.name == name).limit(1))
-        if exists is None:
-            raise Unprocessable(f"no policy named {name!r}", code="unknown_policy", field="policy")
+        raise Unprocessable(f"no policy named {name!r}", code="unknown_policy", field="policy")
+    if row[0] is None:
         raise Conflict(
             f"policy {name!r} has no active version: an admin must activate one",
             code="no_active_version",
@@ -210,8 +217,9 @@ def resolve_plan(conn: Connection, name: str, ctx: ScoringContext) -> Plan:
     return Plan(name, int(version), document, shadow_version, shadow, tuple(attrs))
 
 
-def fingerprint(req: ScoreInput) -> str:
-    """A digest of the request body, to tell a replay from a reuse of its request_id.
+def fingerprint(req: ScoreInput) -> bytes:
+    """A digest of the request body (the first 16 bytes of SHA-256), to tell a replay from
+    a reuse of its request_id.
 
     Only ever compared with itself, so it need not be canonical JSON: ``repr`` of a tuple of
     str, float and sorted (name, value) pairs is deterministic and keeps 1, 1.0 and True apart.
@@ -223,13 +231,13 @@ def fingerprint(req: ScoreInput) -> str:
         float(req.score),
         sorted(req.attributes.items()),
     )
-    return hashlib.sha256(repr(body).encode("utf-8")).hexdigest()
+    return hashlib.sha256(repr(body).encode("utf-8")).digest()[:16]
 
 
 def response_of(values: Any) -> str:
     """The API response (JSON text) for a stored record: a row or a mapping of its values.
 
-    The same bytes as the answer first given for it (``decision_texts``), so a replay is
+    The same bytes as the answer first given for it (``response_text``), so a replay is
     byte-for-byte the original."""
     get = values.__getitem__ if isinstance(values, Mapping) else values._mapping.__getitem__
     out = {f: get(f) for f in RESPONSE_FIELDS}
@@ -241,8 +249,8 @@ def response_of(values: Any) -> str:
 _RESPONSE_JSON = json.JSONEncoder(separators=(",", ":"), ensure_ascii=False, allow_nan=False)
 
 
-def _replay(row: Any, req: ScoreInput, fp: str) -> str:
-    if row.request_fingerprint != fp:
+def _replay(row: Any, req: ScoreInput, fp: bytes) -> str:
+    if bytes(row.request_fingerprint) != fp:
         raise Conflict(
             f"request_id {req.request_id!r} was already used with a different body; use a new "
             "request_id for a new request",
@@ -284,17 +292,13 @@ def _shadow_one(plan: Plan, req: ScoreInput, secret: bytes) -> tuple[float | Non
 def _row(
     plan: Plan,
     req: ScoreInput,
-    fp: str,
+    fp: bytes,
     decision: tuple[str, str, float, float, bool],
     shadow: tuple[float | None, bool | None],
     issued_at: tuple[datetime, str],
     record_id: str,
 ) -> tuple[dict[str, Any], str]:
-    """(row to insert, response JSON) for one decision, both from the same values.
-
-    The payload is built directly in ``record_payload`` form, so the leaf hash needs no
-    second pass over the row (verify recomputes it from the stored row the general way).
-    """
+    """(row to insert, response JSON) for one decision, both from the same values."""
     group, rule, probability, draw, action = decision
     attributes = _stored_attributes(plan, req.attributes)
     attributes_json = _attributes_json(tuple((k, type(v), v) for k, v in attributes.items()))
@@ -317,10 +321,9 @@ def _row(
         "shadow_probability": shadow[0],
         "shadow_action": shadow[1],
     }
-    canonical, response = decision_texts(payload, attributes_json)
+    response = response_text(payload)
     payload["issued_at"] = issued_at[0]
     payload["request_fingerprint"] = fp
-    payload["record_hash"] = leaf_hash(canonical)
     payload[ATTRIBUTES_JSON] = attributes_json
     return payload, response
 
@@ -465,7 +468,7 @@ class PreparedBatch:
     responses: list[str]  # JSON of each item, in input order
     rows: list[dict[str, Any]]  # the new records
     versions: dict[str, tuple[int, int | None]]  # policy -> (version, shadow) decided with
-    switches: dict[str, int | None]  # policy -> id of its last switch event, read before it
+    switches: dict[str, int | None]  # policy -> id of its last event, read before it
 
 
 def recommend_batch(
@@ -477,8 +480,8 @@ def recommend_batch(
     read-only transaction (on SQLite a WAL snapshot: no write lock while thousands of
     decisions are computed, so single requests are not held up), then written in a short
     write transaction that first checks, under the switch lock, that no switch of the
-    active or shadow version happened since it was decided (the policy's last switch event
-    is the one read before deciding); the unique index on request_id refuses one stored
+    active or shadow version happened since it was decided (the policy's last event is the
+    one read before deciding); the unique index on request_id refuses one stored
     meanwhile. If either moved, the batch is decided again inside the write transaction, so
     every record names the version the history shows active at its ``issued_at`` and no
     request_id is stored twice.
@@ -502,23 +505,13 @@ def recommend_batch(
     return prepared.responses, len(prepared.rows)
 
 
-_SWITCH_ACTIONS = [
-    a.value
-    for a in (
-        LifecycleAction.ACTIVATE,
-        LifecycleAction.ROLLBACK,
-        LifecycleAction.SHADOW,
-        LifecycleAction.UNSHADOW,
-    )
-]
-_LAST_SWITCH = select(func.max(PolicyEvent.id)).where(
-    PolicyEvent.name == bindparam("name"), PolicyEvent.action.in_(_SWITCH_ACTIONS)
-)
+_LAST_EVENT = select(PolicyState.last_event_id).where(PolicyState.name == bindparam("name"))
 
 
 def _last_switch(conn: Connection, name: str) -> int | None:
-    """The id of the policy's last event that changed its active or shadow version."""
-    value = conn.scalar(_LAST_SWITCH, {"name": name})
+    """The id of the policy's last lifecycle event (any switch moves it; so do submissions
+    and approvals, which only cost a batch a second decision)."""
+    value = conn.scalar(_LAST_EVENT, {"name": name})
     return None if value is None else int(value)
 
 
@@ -606,7 +599,7 @@ def prepare_batch(
     groups: dict[int, str] = {}
     for name, members in new_by_policy.items():
         try:
-            # The last switch before the plan: a switch in between shows as a change.
+            # The last event before the plan: a switch in between shows as a change.
             switches[name] = _last_switch(conn, name)
             plans[name] = plan = resolve_plan(conn, name, ctx)
         except ServiceError as exc:
@@ -647,7 +640,7 @@ def _evaluate_policy_rows(
     idx: list[int],
     items: Sequence[ScoreInput],
     groups: dict[int, str],
-    fingerprints: list[str],
+    fingerprints: list[bytes],
     issued_at: tuple[datetime, str],
     ctx: ScoringContext,
 ) -> tuple[list[dict[str, Any]], list[str]]:

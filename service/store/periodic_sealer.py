@@ -1,8 +1,9 @@
-"""The server's periodic sealer: an asyncio task running the synchronous seal in a thread.
+"""The server's periodic sealer: an asyncio task running the log's upkeep in a thread.
 
-Every worker process may run one; the database lock in :func:`seal_pending` makes them take
-turns, so several workers or replicas are safe. A failed seal is logged and tried again at
-the next tick: unsealed records stay pending, nothing is lost.
+Every worker process may run one: seals and tally batches take consecutive ids, so of two
+processes writing the same one, one succeeds and the other finds nothing left, and several
+workers or replicas are safe. A failed round is logged and tried again at the next tick:
+unsealed records stay pending, nothing is lost.
 """
 
 from __future__ import annotations
@@ -13,21 +14,26 @@ import logging
 
 from sqlalchemy.orm import Session, sessionmaker
 
-from service.audit.seal import seal_all_pending
 from service.store.db import is_unavailable
+from service.store.log_upkeep import keep_log
+from service.store.signing import Signer
 
 logger = logging.getLogger(__name__)
 
 
-def seal_once(session_factory: sessionmaker[Session]) -> int:
-    """Seal everything pending; the number of records sealed."""
-    with session_factory() as session:
-        return sum(s.record_count for s in seal_all_pending(session))
-
-
 class PeriodicSealer:
-    def __init__(self, session_factory: sessionmaker[Session], interval_seconds: float) -> None:
+    def __init__(
+        self,
+        session_factory: sessionmaker[Session],
+        signer: Signer,
+        time_zone: str,
+        interval_seconds: float,
+        mirror: str | None = None,
+    ) -> None:
         self._session_factory = session_factory
+        self._signer = signer
+        self._time_zone = time_zone
+        self._mirror = mirror
         self._interval = interval_seconds
         self._stop = asyncio.Event()
         self._task: asyncio.Task[None] | None = None
@@ -53,7 +59,9 @@ class PeriodicSealer:
 
     async def _tick(self) -> None:
         try:
-            sealed = await asyncio.to_thread(seal_once, self._session_factory)
+            done = await asyncio.to_thread(
+                keep_log, self._session_factory, self._signer, self._time_zone, mirror=self._mirror
+            )
         except Exception as exc:
             if is_unavailable(exc):
                 logger.warning(
@@ -61,7 +69,7 @@ class PeriodicSealer:
                     type(exc).__name__,
                 )
             else:
-                logger.exception("sealing the decision log failed; trying again next interval")
+                logger.exception("sealing the log failed; trying again next interval")
             return
-        if sealed:
-            logger.info("sealed %d decision log records", sealed)
+        if done.sealed:
+            logger.info("sealed %d log records", done.sealed)

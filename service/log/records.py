@@ -1,15 +1,17 @@
-"""The canonical encoding of a decision log record and its leaf hash.
+"""The canonical encoding of a decision record, and the scoring path's response text.
 
-``record_hash`` = SHA-256(0x00 || canonical bytes), exactly the RFC 9162 section 2.1 Merkle leaf
-hash, so a seal's tree is built directly over the stored hashes and verify recomputes them from
-the stored fields. The canonical bytes are ``service.policy.document.canonical_json`` of
-every field that makes up the decision; the integer row id is left out on purpose (it is
-assigned by the database, and the Merkle tree already fixes each record's position).
+A decision's leaf in the log is SHA-256(0x00 || canonical bytes) (RFC 9162 section 2.1), the
+canonical bytes being compact, key-sorted UTF-8 JSON (``canonical``) of every field that makes
+up the decision plus ``"kind": "decision"`` (every kind of record names itself, so no record
+of one kind encodes like one of another). Nothing of the encoding is stored: the sealer
+computes it from the stored row, and so does verification. The row's integer id is left out
+on purpose (the database assigns it; the log fixes each record's position).
+
+Standard library only: the standalone bundle verifier imports this module.
 """
 
 from __future__ import annotations
 
-import hashlib
 import json
 import math
 import os
@@ -18,13 +20,17 @@ from collections.abc import Mapping
 from datetime import UTC, datetime
 from typing import Any
 
-LEAF_PREFIX = b"\x00"
+DECISION = "decision"
 
-# The same output as ``canonical_json`` (compact, key-sorted, UTF-8, no NaN); one shared
-# encoder avoids building a new one per record on the scoring hot path.
 _ENCODER = json.JSONEncoder(
     sort_keys=True, separators=(",", ":"), ensure_ascii=False, allow_nan=False
 )
+
+
+def canonical(value: Any) -> bytes:
+    """Compact, key-sorted JSON in UTF-8 (no NaN): the bytes every record kind hashes."""
+    return _ENCODER.encode(value).encode("utf-8")
+
 
 RECORD_FIELDS: tuple[str, ...] = (
     "recommendation_id",
@@ -45,6 +51,7 @@ RECORD_FIELDS: tuple[str, ...] = (
     "shadow_probability",
     "shadow_action",
 )
+"""The stored fields of a decision, in the order of the table and the response."""
 
 
 def format_timestamp(value: datetime) -> str:
@@ -79,6 +86,7 @@ def record_payload(rec: Any) -> dict[str, Any]:
     # Decided once per record, not per field: verify calls this for every record in the log.
     _get = _get_item if isinstance(rec, Mapping) else getattr
     return {
+        "kind": DECISION,
         "recommendation_id": str(_get(rec, "recommendation_id")),
         "request_id": str(_get(rec, "request_id")),
         "case_id": str(_get(rec, "case_id")),
@@ -100,43 +108,14 @@ def record_payload(rec: Any) -> dict[str, Any]:
 
 
 def record_bytes(rec: Any) -> bytes:
-    """``canonical_json(record_payload(rec))``."""
-    return _ENCODER.encode(record_payload(rec)).encode("utf-8")
-
-
-def record_leaf_hash(rec: Any) -> str:
-    """SHA-256(0x00 || canonical bytes) as lowercase hex: the record's Merkle leaf hash."""
-    return hashlib.sha256(LEAF_PREFIX + record_bytes(rec)).hexdigest()
-
-
-def _scalar(value: Any) -> str:
-    """One JSON scalar exactly as the encoder writes it (no NaN ever reaches here)."""
-    if value is None:
-        return "null"
-    if value is True:
-        return "true"
-    if value is False:
-        return "false"
-    if isinstance(value, float):
-        if value != value or value in (float("inf"), float("-inf")):
-            raise ValueError("NaN or infinity in a record")
-        return float.__repr__(value)
-    if isinstance(value, int):
-        return int.__repr__(value)
-    return _string(value)
-
-
-_string = json.encoder.encode_basestring  # the encoder's own routine (ensure_ascii=False)
-_SORTED_FIELDS = tuple(sorted(RECORD_FIELDS))
-_TEMPLATE = "{" + ",".join(f'"{k}":%s' for k in _SORTED_FIELDS) + "}"
+    """The canonical bytes of a decision record."""
+    return canonical(record_payload(rec))
 
 
 def encode_attributes(attributes: dict[str, Any]) -> str:
     """Canonical JSON text of a record's attributes (also what the JSON column stores)."""
     return _ENCODER.encode(attributes)
 
-
-# -- the scoring hot path: a fresh decision's record bytes and its API response at once -----
 
 # The response is the record without the score, the attributes and the shadow result, in
 # the record's field order (the order the API has always sent; a replay re-encodes a stored
@@ -147,91 +126,47 @@ RESPONSE_FIELDS: tuple[str, ...] = tuple(
     if f not in ("score", "attributes", "shadow_version", "shadow_probability", "shadow_action")
 )
 _RESPONSE_TEMPLATE = "{" + ",".join(f'"{k}":%s' for k in RESPONSE_FIELDS) + "}"
+_string = json.encoder.encode_basestring  # the encoder's own routine (ensure_ascii=False)
 
 
-def decision_texts(payload: dict[str, Any], attributes_json: str) -> tuple[bytes, str]:
-    """(canonical bytes, response JSON) of a new decision in :func:`record_payload` form.
-
-    Each field is encoded once, by its known type, and used in both texts: the canonical
-    bytes equal ``canonical_json(payload)`` and the response equals ``json.dumps`` of the
-    response fields, compact and UTF-8 (tests check both on generated records).
-    """
-    text = _string
-    score, probability, draw = payload["score"], payload["probability"], payload["draw"]
-    if not (math.isfinite(score) and math.isfinite(probability) and math.isfinite(draw)):
+def response_text(payload: dict[str, Any]) -> str:
+    """The API response (JSON text) of a new decision given in :func:`record_payload` form
+    (``issued_at`` already formatted): ``json.dumps`` of the response fields, compact and
+    UTF-8, each field encoded once by its known type (the scoring hot path)."""
+    probability, draw = payload["probability"], payload["draw"]
+    if not (math.isfinite(probability) and math.isfinite(draw)):
         raise ValueError("NaN or infinity in a record")
-    rid = text(payload["recommendation_id"])
-    request_id = text(payload["request_id"])
-    case_id = text(payload["case_id"])
-    policy = text(payload["policy"])
-    version = int.__repr__(payload["version"])
-    group = text(payload["group"])
-    rule = text(payload["rule"])
-    prob = float.__repr__(probability)
-    u = float.__repr__(draw)
-    action = "true" if payload["action"] else "false"
-    label = text(payload["action_label"])
-    issued = text(payload["issued_at"])
-    record = _TEMPLATE % (  # in _SORTED_FIELDS order (checked below)
-        action,
-        label,
-        attributes_json,
-        case_id,
-        u,
-        group,
-        issued,
-        policy,
-        prob,
-        rid,
-        request_id,
-        rule,
-        float.__repr__(score),
-        _scalar(payload["shadow_action"]),
-        _scalar(payload["shadow_probability"]),
-        _scalar(payload["shadow_version"]),
-        version,
+    text = _string
+    return _RESPONSE_TEMPLATE % (  # in RESPONSE_FIELDS order
+        text(payload["recommendation_id"]),
+        text(payload["request_id"]),
+        text(payload["case_id"]),
+        text(payload["policy"]),
+        int.__repr__(payload["version"]),
+        text(payload["group"]),
+        text(payload["rule"]),
+        float.__repr__(probability),
+        float.__repr__(draw),
+        "true" if payload["action"] else "false",
+        text(payload["action_label"]),
+        text(payload["issued_at"]),
     )
-    response = _RESPONSE_TEMPLATE % (  # in RESPONSE_FIELDS order
-        rid,
-        request_id,
-        case_id,
-        policy,
-        version,
-        group,
-        rule,
-        prob,
-        u,
-        action,
-        label,
-        issued,
-    )
-    return record.encode("utf-8"), response
 
 
-assert _SORTED_FIELDS == (
-    "action",
-    "action_label",
-    "attributes",
-    "case_id",
-    "draw",
-    "group",
-    "issued_at",
-    "policy",
-    "probability",
+assert RESPONSE_FIELDS == (
     "recommendation_id",
     "request_id",
-    "rule",
-    "score",
-    "shadow_action",
-    "shadow_probability",
-    "shadow_version",
+    "case_id",
+    "policy",
     "version",
-), "decision_texts writes the fields in this order"
-
-
-def leaf_hash(canonical: bytes) -> str:
-    """SHA-256(0x00 || canonical bytes) as lowercase hex."""
-    return hashlib.sha256(LEAF_PREFIX + canonical).hexdigest()
+    "group",
+    "rule",
+    "probability",
+    "draw",
+    "action",
+    "action_label",
+    "issued_at",
+), "response_text writes the fields in this order"
 
 
 def new_record_ids(count: int) -> list[str]:
