@@ -16,9 +16,9 @@ from pathlib import Path
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
+from service.audit.seal import seal_all_pending, verify_log
 from store_hot_path import on_each_database, prepare, request
 
-from service.audit.seal import seal_all_pending, verify_log
 from service.store.db import create_db_engine, create_session_factory
 from service.store.scoring import DocumentCache, ScoringContext, recommend_batch
 

@@ -70,9 +70,9 @@ from service.audit.verdicts import (
     MonthContext,
     Status,
     decide,
-    resolve_settings,
     version_checks,
 )
+from service.audit.version_settings import resolve_settings
 from service.policy.crossfit import DEFAULT_FOLDS, DEFAULT_FOLDS_SEED, assign_folds, cross_fit
 from service.policy.derive import solve
 from service.policy.derive_document import build_document

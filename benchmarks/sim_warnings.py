@@ -62,7 +62,8 @@ from sim_scenario import (
 
 from service.audit.early_warning import DAYS_PER_YEAR, DayCounts, DayWarnings, day_warnings
 from service.audit.realized import CellCounts
-from service.audit.verdicts import DEFAULT_MIN_COUNT, resolve_settings
+from service.audit.verdicts import DEFAULT_MIN_COUNT
+from service.audit.version_settings import resolve_settings
 from service.policy.derive_document import score_edges
 from service.policy.document import PolicyDocument
 from service.stats.drift import PSI_MAJOR, PSI_MODERATE

@@ -7,10 +7,10 @@ from collections.abc import Callable
 
 import pytest
 from fastapi.testclient import TestClient
-from sqlalchemy import Engine, func, select
-
 from service.audit.seal import seal_pending
 from service.audit.sealer import PeriodicSealer
+from sqlalchemy import Engine, func, select
+
 from service.cli.main import main
 from service.store.models import Recommendation, Seal
 from tests.helpers import bearer
