@@ -23,6 +23,7 @@ from service.settings import Settings
 from service.store.db import create_db_engine, create_session_factory
 from service.store.migrate import upgrade
 from tests.helpers import TEST_SECRET, TEST_SIGNING_KEY, create_key
+from tests.insert_only import changes_allowed
 
 # Every app, CLI command and server the tests start signs the log with the test key (the
 # tests of a missing key remove it).
@@ -70,12 +71,14 @@ def database_url(
     if request.param == "sqlite":
         path: Path = tmp_path_factory.mktemp("sqlite") / "evenhand.db"
         url = f"sqlite:///{path}"
-        upgrade(url)
+        with changes_allowed():
+            upgrade(url)
         yield url
         return
     url, drop = _create_postgres_database()
     try:
-        upgrade(url)
+        with changes_allowed():
+            upgrade(url)
         yield url
     finally:
         drop()
@@ -124,7 +127,8 @@ def _empty_all_tables(engine: Engine) -> None:
 def engine(_session_engine: Engine) -> Iterator[Engine]:
     """The migrated database, emptied after each test."""
     yield _session_engine
-    _empty_all_tables(_session_engine)
+    with changes_allowed():
+        _empty_all_tables(_session_engine)
 
 
 @pytest.fixture

@@ -11,7 +11,6 @@ from sqlalchemy import select
 
 from service.api.deps import AuditKey, ReadSession
 from service.api.errors import error_responses
-from service.errors import NotFound, Unprocessable
 from service.store import log_proofs
 from service.store.audit_models import Seal, SigningKey
 from service.store.log_verify import VerifyResult, verify_log
@@ -175,30 +174,9 @@ def inclusion_proof(
         int | None, Query(ge=1, le=2**62, description="the head's seal (default: the latest)")
     ] = None,
 ) -> InclusionProofResponse:
-    record_id = _record_id(session, kind, id, recommendation_id)
+    record_id = log_proofs.record_row_id(session, kind, id, recommendation_id)
     proof = log_proofs.inclusion(session, kind, record_id, seal)
-    return InclusionProofResponse(
-        kind=proof.kind,
-        record_id=proof.record_id,
-        leaf_index=proof.leaf_index,
-        leaf_hash=proof.leaf.hex(),
-        record=proof.record.decode("utf-8"),
-        path=[h.hex() for h in proof.path],
-        head=SignedHead.model_validate(proof.head),
-    )
-
-
-def _record_id(session: Any, kind: str, id: int | None, recommendation_id: str | None) -> int:
-    if (id is None) == (recommendation_id is None):
-        raise Unprocessable("give either id or recommendation_id", field="id")
-    if id is not None:
-        return id
-    if kind != "decision":
-        raise Unprocessable("recommendation_id names a decision: use kind=decision", field="kind")
-    found = log_proofs.decision_row_id(session, str(recommendation_id))
-    if found is None:
-        raise NotFound(f"no recommendation {recommendation_id!r}", code="unknown_recommendation")
-    return found
+    return InclusionProofResponse.model_validate(proof.as_json())
 
 
 @router.get(
@@ -214,8 +192,4 @@ def consistency_proof(
     second: Annotated[int, Query(ge=1, le=2**62, description="the later seal")],
 ) -> ConsistencyProofResponse:
     proof = log_proofs.consistency(session, first, second)
-    return ConsistencyProofResponse(
-        first=SignedHead.model_validate(proof.first),
-        second=SignedHead.model_validate(proof.second),
-        path=[h.hex() for h in proof.path],
-    )
+    return ConsistencyProofResponse.model_validate(proof.as_json())

@@ -16,8 +16,10 @@ from sqlalchemy.orm import Session, sessionmaker
 from service.cli.common import CliError
 from service.log.heads import SigningKeyError, new_signing_key
 from service.settings import Settings
+from service.store import log_proofs
 from service.store.audit_models import Seal
 from service.store.db import begin_read_only, create_db_engine, create_session_factory
+from service.store.log_sources import KIND_ORDER
 from service.store.log_upkeep import keep_log
 from service.store.log_verify import VerifyResult, verify_log
 from service.store.sealing import signed_head
@@ -67,6 +69,34 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
     heads = sub.add_parser("heads", help="print signed tree heads as JSON lines")
     heads.add_argument("--since", type=int, default=0, metavar="SEAL", help="after this seal")
     heads.set_defaults(handler=_heads)
+
+    proof = sub.add_parser("proof", help="print an RFC 9162 proof as JSON (as the API gives it)")
+    kinds = proof.add_subparsers(dest="proof_kind", required=True, metavar="PROOF")
+    inclusion = kinds.add_parser("inclusion", help="that one record is in a signed head")
+    inclusion.add_argument(
+        "--kind", default="decision", choices=KIND_ORDER, help="the record's kind"
+    )
+    named = inclusion.add_mutually_exclusive_group(required=True)
+    named.add_argument("--id", type=_positive, metavar="N", help="the record's row id")
+    named.add_argument("--recommendation-id", metavar="UUID", help="a decision by its id")
+    inclusion.add_argument(
+        "--seal", type=_positive, metavar="N", help="the head's seal (default: the latest)"
+    )
+    inclusion.set_defaults(handler=_inclusion)
+    between = kinds.add_parser("consistency", help="that one signed head extends another")
+    between.add_argument("first", type=_positive, metavar="FIRST", help="the earlier seal")
+    between.add_argument("second", type=_positive, metavar="SECOND", help="the later seal")
+    between.set_defaults(handler=_consistency)
+
+
+def _positive(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a whole number") from None
+    if not 1 <= value <= 2**62:
+        raise argparse.ArgumentTypeError(f"{value} is not between 1 and 2^62")
+    return value
 
 
 def _factory(settings: Settings) -> sessionmaker[Session]:
@@ -193,4 +223,23 @@ def _heads(args: argparse.Namespace) -> int:
         for seal in session.scalars(select(Seal).where(Seal.id > args.since).order_by(Seal.id)):
             print(json.dumps(signed_head(seal), sort_keys=True))
         session.rollback()
+    return 0
+
+
+def _inclusion(args: argparse.Namespace) -> int:
+    with _factory(Settings())() as session:
+        begin_read_only(session)
+        record_id = log_proofs.record_row_id(session, args.kind, args.id, args.recommendation_id)
+        proof = log_proofs.inclusion(session, args.kind, record_id, args.seal)
+        session.rollback()
+    print(json.dumps(proof.as_json(), indent=2))
+    return 0
+
+
+def _consistency(args: argparse.Namespace) -> int:
+    with _factory(Settings())() as session:
+        begin_read_only(session)
+        proof = log_proofs.consistency(session, args.first, args.second)
+        session.rollback()
+    print(json.dumps(proof.as_json(), indent=2))
     return 0

@@ -57,10 +57,15 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
+    from service.errors import ServiceError
+
     try:
         result: int = args.handler(args)
     except CliError as exc:
         print(f"evenhand: error: {exc}", file=sys.stderr)
+        return CliError.exit_code
+    except ServiceError as exc:  # what the API answers as 4xx, the CLI says in one line
+        print(f"evenhand: error: {exc.message} ({exc.code})", file=sys.stderr)
         return CliError.exit_code
     return result
 

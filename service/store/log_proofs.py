@@ -18,6 +18,7 @@ from sqlalchemy.orm import Session
 from service.errors import NotFound, Unprocessable
 from service.log.merkle import TreeBuilder, aligned_blocks, consistency_path, inclusion_path
 from service.log.merkle import leaf_hash as merkle_leaf_hash
+from service.log.records import DECISION
 from service.store.audit_models import Seal, TreeNode
 from service.store.feedback import canonical_recommendation_id
 from service.store.log_sources import KIND_ORDER, SOURCES
@@ -35,12 +36,27 @@ class InclusionProof:
     path: list[bytes]
     head: dict[str, Any]
 
+    def as_json(self) -> dict[str, Any]:
+        """The proof as the API and the CLI give it (hashes in hex, the record as text)."""
+        return {
+            "kind": self.kind,
+            "record_id": self.record_id,
+            "leaf_index": self.leaf_index,
+            "leaf_hash": self.leaf.hex(),
+            "record": self.record.decode("utf-8"),
+            "path": [h.hex() for h in self.path],
+            "head": self.head,
+        }
+
 
 @dataclass(frozen=True)
 class ConsistencyProof:
     first: dict[str, Any]
     second: dict[str, Any]
     path: list[bytes]
+
+    def as_json(self) -> dict[str, Any]:
+        return {"first": self.first, "second": self.second, "path": [h.hex() for h in self.path]}
 
 
 def _seal(session: Session, seal_id: int | None) -> Seal:
@@ -154,6 +170,22 @@ def decision_row_id(session: Session, recommendation_id: str) -> int | None:
         select(Recommendation.id).where(Recommendation.recommendation_id == canonical)
     )
     return None if found is None else int(found)
+
+
+def record_row_id(
+    session: Session, kind: str, record_id: int | None, recommendation_id: str | None
+) -> int:
+    """The row id a proof request names: a row id, or a decision's recommendation_id."""
+    if (record_id is None) == (recommendation_id is None):
+        raise Unprocessable("give either id or recommendation_id", field="id")
+    if record_id is not None:
+        return record_id
+    if kind != DECISION:
+        raise Unprocessable("recommendation_id names a decision: use kind=decision", field="kind")
+    found = decision_row_id(session, str(recommendation_id))
+    if found is None:
+        raise NotFound(f"no recommendation {recommendation_id!r}", code="unknown_recommendation")
+    return found
 
 
 def inclusion(

@@ -446,6 +446,13 @@ def _verify(
         begin_read_only(session)
         for kind in KIND_ORDER:
             t = SOURCES[kind].table
+            # Seals cover ids from 1 up: a row below that is in no range, so no seal read it.
+            planted = session.scalar(select(func.min(t.c.id)).where(t.c.id < 1))
+            if planted is not None:
+                session.rollback()
+                raise _Found(
+                    Problem(kind, int(planted), "has an id no seal can cover: it was inserted")
+                )
             result.unsealed[kind] = int(
                 session.scalar(
                     select(func.count()).select_from(t).where(t.c.id > through.get(kind, 0))

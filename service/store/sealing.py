@@ -289,7 +289,13 @@ def seal_pending(
             log.info("seal %d was written by another sealer first", seal_id)
             return None
     summary = SealSummary(
-        seal_id, seal.leaf_count, seal.tree_size, head.root, ranges, head, signature
+        seal_id,
+        builder.count - previous.tree_size,
+        builder.count,
+        head.root,
+        ranges,
+        head,
+        signature,
     )
     if mirror:
         append_heads(factory, mirror)
@@ -347,16 +353,19 @@ def append_heads(factory: sessionmaker[Session], path: str) -> int:
         last = _last_mirrored(target)
         with factory() as session:
             begin_read_only(session)
-            seals = session.scalars(select(Seal).where(Seal.id > last).order_by(Seal.id)).all()
+            heads = [
+                signed_head(seal)
+                for seal in session.scalars(select(Seal).where(Seal.id > last).order_by(Seal.id))
+            ]
             session.rollback()
-        if not seals:
+        if not heads:
             return 0
         with target.open("a", encoding="utf-8") as handle:
-            for seal in seals:
-                handle.write(json.dumps(signed_head(seal), sort_keys=True) + "\n")
+            for head in heads:
+                handle.write(json.dumps(head, sort_keys=True) + "\n")
             handle.flush()
             os.fsync(handle.fileno())
-        return len(seals)
+        return len(heads)
     except (OSError, ValueError, KeyError, TypeError) as exc:
         log.error("the head mirror %s cannot be written: %s", path, exc)
         return 0

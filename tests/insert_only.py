@@ -1,0 +1,63 @@
+"""The suite's half of the insert-only rule: any UPDATE or DELETE that the service sends to a
+table of the log fails the test that caused it (PostgreSQL's triggers are the other half).
+
+Registered on every SQLAlchemy engine of this process: the apps, CLI commands and jobs the
+tests run. Only the fixtures' cleanup, migrations and the tamper helper may change the tables,
+inside :func:`changes_allowed`.
+"""
+
+from __future__ import annotations
+
+import re
+import threading
+from collections.abc import Iterator
+from contextlib import contextmanager
+from typing import Any
+
+from sqlalchemy import Engine, event
+
+LOG_TABLES = frozenset(
+    {
+        "policy_versions",
+        "policy_events",
+        "api_keys",
+        "key_events",
+        "recommendations",
+        "outcome_records",
+        "final_decisions",
+        "audit_snapshots",
+        "seals",
+        "tree_nodes",
+        "signing_keys",
+        "tally_batches",
+        "tallies",
+    }
+)
+_CHANGE = re.compile(r'^\s*(UPDATE|DELETE\s+FROM)\s+"?([A-Za-z_]+)"?', re.IGNORECASE)
+_lock = threading.Lock()
+_allowed = 0
+
+
+@contextmanager
+def changes_allowed() -> Iterator[None]:
+    global _allowed
+    with _lock:
+        _allowed += 1
+    try:
+        yield
+    finally:
+        with _lock:
+            _allowed -= 1
+
+
+@event.listens_for(Engine, "before_cursor_execute")
+def _refuse_changes(
+    _conn: Any, _cursor: Any, statement: str, _params: Any, _context: Any, _many: bool
+) -> None:
+    if _allowed:
+        return
+    found = _CHANGE.match(statement)
+    if found and found.group(2).lower() in LOG_TABLES:
+        raise AssertionError(
+            f"{found.group(1).upper()} on the insert-only table {found.group(2)}: {statement[:200]}"
+        )
