@@ -23,11 +23,12 @@ from service.settings import Settings
 from service.store.db import create_db_engine, create_session_factory
 from service.store.migrate import upgrade
 from tests.helpers import TEST_SECRET, TEST_SIGNING_KEY, create_key
-from tests.insert_only import changes_allowed
+from tests.insert_only import allow_migrations, changes_allowed
 
 # Every app, CLI command and server the tests start signs the log with the test key (the
 # tests of a missing key remove it).
 os.environ.setdefault("EVENHAND_SIGNING_KEY", TEST_SIGNING_KEY)
+allow_migrations()
 
 DEFAULT_PG = "postgresql+psycopg://postgres@127.0.0.1:5432/test"
 BACKENDS = ["sqlite", "postgresql"]

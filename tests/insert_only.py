@@ -61,3 +61,21 @@ def _refuse_changes(
         raise AssertionError(
             f"{found.group(1).upper()} on the insert-only table {found.group(2)}: {statement[:200]}"
         )
+
+
+def allow_migrations() -> None:
+    """Migrations rewrite tables by design (migration 0060 moves the old rows into the log):
+    every Alembic upgrade or downgrade of this process runs inside :func:`changes_allowed`."""
+    from alembic import command
+
+    for name in ("upgrade", "downgrade"):
+        real = getattr(command, name)
+        if getattr(real, "_changes_allowed", False):
+            continue
+
+        def wrapped(*args: Any, _real: Any = real, **kwargs: Any) -> Any:
+            with changes_allowed():
+                return _real(*args, **kwargs)
+
+        wrapped._changes_allowed = True  # type: ignore[attr-defined]
+        setattr(command, name, wrapped)
