@@ -3,61 +3,75 @@
 from __future__ import annotations
 
 import argparse
+import importlib
 import sys
 from collections.abc import Sequence
-from types import ModuleType
 
 from service.cli.common import CliError
 
+COMMANDS: dict[str, tuple[str, str]] = {
+    "serve": ("service.cli.serve", "run the HTTP API"),
+    "migrate": ("service.cli.migrate", "apply database migrations"),
+    "keys": ("service.cli.keys", "create, revoke and list API keys"),
+    "policy": (
+        "service.cli.policy",
+        "submit, approve, activate, roll back and inspect policy versions",
+    ),
+    "log": ("service.cli.log", "seal, verify and prove the tamper-evident log"),
+    "demo": (
+        "service.cli.demo",
+        "run the Fernhollow demo: policy lifecycle, scoring over HTTP, sealed log",
+    ),
+    "demo-data": (
+        "service.cli.demo_data",
+        "write synthetic Fernhollow discharges (calibration data) to a CSV file",
+    ),
+    "derive": (
+        "service.cli.derive",
+        "derive a policy from calibration data under a parity criterion",
+    ),
+    "schema": ("service.cli.schema", "the policy document's JSON Schema (policies/schema.json)"),
+    "audit": ("service.cli.audit", "audit realized rates for one policy and month"),
+    "report": ("service.cli.report", "list, show and export audit report snapshots"),
+    "warnings": (
+        "service.cli.warnings",
+        "one day's score drift and action-rate warnings (before outcomes arrive)",
+    ),
+}
+"""Each command's module and one-line help. Only the chosen command's module is imported, so
+``evenhand --help`` and light commands do not load the statistics and the web stack
+(``tests/test_cli_start.py`` holds the help lines equal to what the modules register)."""
 
-def _command_modules() -> list[ModuleType]:
-    # Imported here so ``evenhand --help`` stays fast and one broken module names itself.
-    from service.cli import (
-        audit,
-        demo,
-        demo_data,
-        derive,
-        keys,
-        log,
-        migrate,
-        policy,
-        report,
-        schema,
-        serve,
-        warnings,
-    )
 
-    return [
-        serve,
-        migrate,
-        keys,
-        policy,
-        log,
-        demo,
-        demo_data,
-        derive,
-        schema,
-        audit,
-        report,
-        warnings,
-    ]
+def _chosen(argv: Sequence[str]) -> str | None:
+    """The command named in ``argv`` (its first word that is not an option), if any."""
+    return next((word for word in argv if not word.startswith("-")), None)
 
 
-def build_parser() -> argparse.ArgumentParser:
+def build_parser(argv: Sequence[str] | None = None) -> argparse.ArgumentParser:
+    """The parser; with ``argv``, only the chosen command's arguments are built (``None``
+    builds every command's, for the documentation and the tests)."""
     parser = argparse.ArgumentParser(
         prog="evenhand",
         description="Evenhand: governed decision policies, a keyed scoring API and parity audits.",
     )
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
-    for module in _command_modules():
-        module.register(sub)
+    chosen = None if argv is None else _chosen(argv)
+    for name, (module_name, help_text) in COMMANDS.items():
+        if argv is None or name == chosen:
+            importlib.import_module(module_name).register(sub)
+        else:
+            sub.add_parser(name, help=help_text)
     return parser
 
 
 def main(argv: Sequence[str] | None = None) -> int:
-    parser = build_parser()
-    args = parser.parse_args(argv)
+    words = list(sys.argv[1:] if argv is None else argv)
+    args = build_parser(words).parse_args(words)
+    from pydantic import ValidationError
+
     from service.errors import ServiceError
+    from service.log.heads import SigningKeyError
 
     try:
         result: int = args.handler(args)
@@ -66,6 +80,14 @@ def main(argv: Sequence[str] | None = None) -> int:
         return CliError.exit_code
     except ServiceError as exc:  # what the API answers as 4xx, the CLI says in one line
         print(f"evenhand: error: {exc.message} ({exc.code})", file=sys.stderr)
+        return CliError.exit_code
+    except SigningKeyError as exc:  # missing, unreadable or weak: say which, in one line
+        print(f"evenhand: error: {exc}", file=sys.stderr)
+        return CliError.exit_code
+    except ValidationError as exc:  # a setting out of bounds (EVENHAND_...)
+        for error in exc.errors():
+            where = ".".join(str(part) for part in error["loc"]) or exc.title
+            print(f"evenhand: error: {where}: {error['msg']}", file=sys.stderr)
         return CliError.exit_code
     return result
 
