@@ -10,6 +10,13 @@ from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 from pydantic import Field, SecretStr, field_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
+from service.log.heads import SigningKeyError
+
+MIN_RETENTION_MONTHS = 6
+"""The shortest retention: EU AI Act (Regulation (EU) 2024/1689) Art. 26(6) asks deployers of
+high-risk systems to keep the logs the system generates automatically for at least six
+months."""
+
 MIN_DRAW_SECRET_BYTES = 32
 """Shortest draw secret, in bytes of its UTF-8 encoding: 256 bits, HMAC-SHA256's output size
 (RFC 2104, section 3, strongly discourages HMAC keys shorter than the hash output)."""
@@ -25,7 +32,7 @@ class MissingDrawSecret(DrawSecretError):
     """Raised when scoring is attempted without ``EVENHAND_DRAW_SECRET``."""
 
 
-class SigningKeyUnavailable(RuntimeError):
+class SigningKeyUnavailable(SigningKeyError):
     """The signing key file is set but cannot be read."""
 
 
@@ -95,6 +102,24 @@ class Settings(BaseSettings):
         description="a file every signed tree head is appended to (JSON lines), kept apart from "
         "the database: `evenhand log verify --heads FILE` compares the log with it",
     )
+
+    retention_months: int = Field(
+        default=MIN_RETENTION_MONTHS,
+        description="whole months the log's personal-data records are kept before "
+        "`evenhand log purge` may delete them; at least 6 (EU AI Act Art. 26(6))",
+    )
+
+    @field_validator("retention_months")
+    @classmethod
+    def _long_enough(cls, value: int) -> int:
+        if value < MIN_RETENTION_MONTHS:
+            raise ValueError(
+                f"EVENHAND_RETENTION_MONTHS is {value}; it must be at least "
+                f"{MIN_RETENTION_MONTHS}: six months is the minimum retention of the logs a "
+                "high-risk AI system generates automatically for its deployers (EU AI Act, "
+                "Regulation (EU) 2024/1689, Art. 26(6))"
+            )
+        return value
 
     @field_validator("timezone")
     @classmethod

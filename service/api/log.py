@@ -23,7 +23,8 @@ router = APIRouter(prefix="/v1/log", tags=["log"])
 class LogProblem(BaseModel):
     kind: str = Field(
         description="what does not match: a kind of record (decision, outcome, final, "
-        "snapshot, tally_batch, policy_version, policy_event, key_event), a seal or a tree node"
+        "snapshot, tally_batch, policy_version, policy_event, key_event, purge), a seal, a "
+        "tree node or a tally"
     )
     id: int = Field(description="its row id (0 when there is none)")
     reason: str
@@ -42,6 +43,11 @@ class VerifyResponse(BaseModel):
     seals_checked: int
     records_checked: int
     tally_batches_checked: int
+    purged_through_seal: int = Field(
+        description="seals up to this one had their personal records purged (retention); "
+        "their leaf hashes were kept and are checked instead (0: nothing purged)"
+    )
+    purged_leaves: int = Field(description="leaves checked from kept hashes of purged records")
     unsealed: dict[str, int] = Field(description="records of each kind not sealed yet")
     head: SignedHead | None = Field(
         description="the latest signed head: keep it outside the database"
@@ -56,6 +62,8 @@ class VerifyResponse(BaseModel):
             seals_checked=result.seals_checked,
             records_checked=result.records_checked,
             tally_batches_checked=result.tally_batches_checked,
+            purged_through_seal=result.purged_through_seal,
+            purged_leaves=result.purged_leaves,
             unsealed=result.unsealed,
             head=None if result.head is None else SignedHead.model_validate(result.head),
             problem=None

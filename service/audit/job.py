@@ -32,6 +32,7 @@ from service.stats.calibration import PowerSums
 from service.store.audit_models import AuditSnapshot
 from service.store.db import begin_read_only
 from service.store.models import PolicyVersion
+from service.store.retention import purged_through_month
 
 
 def stderr_progress(message: str) -> None:
@@ -107,6 +108,15 @@ def run_audit(
     known = session.scalar(select(func.count()).where(PolicyVersion.name == policy))
     if not known:
         raise NotFound(f"unknown policy {policy!r}", code="unknown_policy", field="policy")
+    purged = purged_through_month(session)
+    if purged is not None and month <= purged:
+        raise Unprocessable(
+            f"the decisions of {month} were purged (retention: the log's personal records are "
+            f"deleted through {purged}): it can no longer be audited; its snapshots from "
+            "before the purge remain readable",
+            field="month",
+            code="purged_month",
+        )
     span = f"{start:%Y-%m-%d %H:%M}Z to {end:%Y-%m-%d %H:%M}Z"
     progress(f"auditing {policy} for {month} ({time_zone}): {span}")
     try:

@@ -1,4 +1,5 @@
-"""``evenhand log ...``: seal, verify and prove the tamper-evident log (configured database)."""
+"""``evenhand log ...``: seal, verify, prove and purge the tamper-evident log (configured
+database)."""
 
 from __future__ import annotations
 
@@ -13,10 +14,11 @@ from typing import Any
 from sqlalchemy import select
 from sqlalchemy.orm import Session, sessionmaker
 
+from service.audit.month import Month
 from service.cli.common import CliError
 from service.log.heads import SigningKeyError, new_signing_key
-from service.settings import Settings
-from service.store import log_proofs
+from service.settings import Settings, SigningKeyUnavailable
+from service.store import log_proofs, retention
 from service.store.audit_models import Seal
 from service.store.db import begin_read_only, create_db_engine, create_session_factory
 from service.store.log_sources import KIND_ORDER
@@ -87,6 +89,26 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
     between.add_argument("first", type=_positive, metavar="FIRST", help="the earlier seal")
     between.add_argument("second", type=_positive, metavar="SECOND", help="the later seal")
     between.set_defaults(handler=_consistency)
+
+    purge = sub.add_parser(
+        "purge",
+        help="delete the decisions, outcomes and final decisions of the oldest sealed months "
+        "(retention); everything else, and the months' reports, are kept",
+        description="Delete the personal-data records (decisions, outcome records, final "
+        "decisions) of every seal created before the end of month --through, which must lie at "
+        "least EVENHAND_RETENTION_MONTHS whole months before the current month. Policy "
+        "versions and events, key events, snapshots, tally batches, seals and tree nodes are "
+        "kept, with each deleted record's leaf hash, so the log still verifies. The purge is "
+        "itself a record of the log, sealed at once when a signing key is configured.",
+    )
+    purge.add_argument(
+        "--through", required=True, metavar="YYYY-MM", help="the last month to purge"
+    )
+    purge.add_argument(
+        "--dry-run", action="store_true", help="say what would be purged, delete nothing"
+    )
+    purge.add_argument("--yes", action="store_true", help="do not ask for confirmation")
+    purge.set_defaults(handler=_purge)
 
 
 def _positive(text: str) -> int:
@@ -242,4 +264,73 @@ def _consistency(args: argparse.Namespace) -> int:
         proof = log_proofs.consistency(session, args.first, args.second)
         session.rollback()
     print(json.dumps(proof.as_json(), indent=2))
+    return 0
+
+
+def _describe(plan: retention.PurgePlan) -> str:
+    counts = ", ".join(f"{n:,} {kind}" for kind, n in plan.counts.items())
+    return (
+        f"seals {plan.floor + 1} to {plan.through_seal} (through {plan.through_month}): "
+        f"{counts} records"
+    )
+
+
+def _purge(args: argparse.Namespace) -> int:
+    settings = Settings()
+    month = Month.parse(args.through, field="through")
+    factory = _factory(settings)
+
+    def run(dry_run: bool) -> retention.PurgeSummary:
+        return retention.purge(
+            factory,
+            month,
+            time_zone=settings.timezone,
+            retention_months=settings.retention_months,
+            by="cli",
+            dry_run=dry_run,
+            progress=_progress,
+        )
+
+    planned = run(dry_run=True)
+    plan = planned.plan
+    for note in plan.notes:
+        print(f"note: {note}")
+    if plan.empty:
+        print(
+            f"nothing to purge through {month}: every seal before its end is purged already "
+            f"(through seal {plan.floor})"
+        )
+        return 0
+    if args.dry_run:
+        print(f"would purge {_describe(plan)}")
+        return 0
+    if not args.yes:
+        if not sys.stdin.isatty():
+            raise CliError("not a terminal: pass --yes to purge without a question")
+        answer = input(f"purge {_describe(plan)}? This cannot be undone. Type 'purge': ")
+        if answer.strip() != "purge":
+            print("nothing purged")
+            return 1
+    done = run(dry_run=False)
+    if done.purge_id is None:
+        print("nothing to purge: another purge got there first")
+        return 0
+    print(f"purge {done.purge_id}: deleted {_describe(done.plan)}")
+    print(
+        "kept: policy versions and events, key events, snapshots, tally batches, seals, tree "
+        "nodes, signing keys, and the leaf hash of every deleted record"
+    )
+    try:
+        signer = signer_from_settings(settings)
+    except (SigningKeyError, SigningKeyUnavailable):
+        print(
+            "the purge record is not sealed yet: run `evenhand log seal` (until then verify "
+            "reports the purged records as deleted)"
+        )
+        return 0
+    sealed = keep_log(
+        factory, signer, settings.timezone, mirror=settings.head_mirror, progress=_progress
+    )
+    if sealed.seals:
+        print(f"sealed the purge record: head seal {sealed.seals[-1].id}")
     return 0

@@ -30,6 +30,13 @@ def _preflight(settings: Settings) -> None:
         settings.draw_key()
     except DrawSecretError as exc:
         raise CliError(str(exc)) from None
+    from service.log.heads import SigningKeyError
+    from service.store.signing import signer_from_settings
+
+    try:
+        signer_from_settings(settings)
+    except SigningKeyError as exc:
+        raise CliError(str(exc)) from None
     from service.store.db import create_db_engine
     from service.store.migrate import at_head
 

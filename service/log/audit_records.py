@@ -1,5 +1,5 @@
 """Canonical encodings of the records that follow a decision: outcome reports (first reports
-and corrections), final decisions, audit snapshots, and tally batches.
+and corrections), final decisions, audit snapshots, tally batches and retention purges.
 
 Each is ``service.log.records.canonical`` of a flat dict with a ``kind`` field naming the
 record kind. A record refers to its decision by the decision's ``recommendation_id`` (a UUID
@@ -21,6 +21,7 @@ OUTCOME = "outcome"
 FINAL = "final"
 SNAPSHOT = "snapshot"
 TALLY_BATCH = "tally_batch"
+PURGE = "purge"
 
 
 def _getter(row: Any) -> Any:
@@ -72,8 +73,9 @@ def final_payload(row: Any) -> dict[str, Any]:
 
 
 def snapshot_payload(row: Any) -> dict[str, Any]:
-    """An audit snapshot by what identifies it and the digests of its two views (the views
-    themselves are bound through their digests, which verification recomputes)."""
+    """An audit snapshot by what identifies it, the figures its row repeats for listings, and
+    the digests of its two views (the views themselves are bound through their digests, which
+    verification recomputes)."""
     get = _getter(row)
     return {
         "kind": SNAPSHOT,
@@ -83,6 +85,9 @@ def snapshot_payload(row: Any) -> dict[str, Any]:
         "created_by": str(get("created_by")),
         "time_zone": str(get("time_zone")),
         "code_version": str(get("code_version")),
+        "versions": [int(v) for v in get("versions")],
+        "recommendations": int(get("recommendations")),
+        "outcomes": int(get("outcomes")),
         "digest": str(get("digest")),
         "internal_digest": _opt_str(get("internal_digest")),
     }
@@ -104,6 +109,23 @@ def tally_batch_payload(row: Any) -> dict[str, Any]:
     }
 
 
+def purge_payload(row: Any) -> dict[str, Any]:
+    """A retention purge: the last seal whose personal-data records it deleted, the last month
+    it reached, the rows it deleted per kind, when and by whom."""
+    get = _getter(row)
+    counts = get("counts")
+    if not isinstance(counts, Mapping):
+        raise ValueError("a purge's counts must be an object")
+    return {
+        "kind": PURGE,
+        "through_seal": int(get("through_seal")),
+        "through_month": str(get("through_month")),
+        "counts": {str(k): int(v) for k, v in counts.items()},
+        "purged_at": format_timestamp(get("purged_at")),
+        "by": str(get("by")),
+    }
+
+
 def outcome_bytes(row: Any) -> bytes:
     return canonical(outcome_payload(row))
 
@@ -118,3 +140,7 @@ def snapshot_bytes(row: Any) -> bytes:
 
 def tally_batch_bytes(row: Any) -> bytes:
     return canonical(tally_batch_payload(row))
+
+
+def purge_bytes(row: Any) -> bytes:
+    return canonical(purge_payload(row))

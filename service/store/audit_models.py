@@ -77,7 +77,10 @@ class AuditSnapshot(Base):
     """One audit run's published result and its internal view; never updated."""
 
     __tablename__ = "audit_snapshots"
-    __table_args__ = (Index("ix_audit_snapshots_policy_month", "policy", "month"),)
+    __table_args__ = (
+        Index("ix_audit_snapshots_policy_month", "policy", "month"),
+        {"sqlite_autoincrement": True},
+    )
 
     id: Mapped[int] = mapped_column(Integer, primary_key=True)
     policy: Mapped[str] = mapped_column(String(64))
@@ -116,6 +119,7 @@ class Seal(Base):
     """
 
     __tablename__ = "seals"
+    __table_args__ = (Index("ix_seals_tree_size", "tree_size"),)
 
     id: Mapped[int] = mapped_column(Integer, primary_key=True, autoincrement=False)
     created_at: Mapped[datetime] = mapped_column(UTCDateTime)
@@ -187,3 +191,39 @@ class Tally(Base):
     shadow_version: Mapped[int | None] = mapped_column(Integer)
     day: Mapped[date] = mapped_column(Date)
     vector: Mapped[list[int]] = mapped_column(JSON)
+
+
+class LogPurge(Base):
+    """A retention purge (``service.store.retention``): the personal-data records (decisions,
+    outcome records, final decisions) of every seal up to ``through_seal`` were deleted.
+    ``through_month`` is the last month (in the audit's time zone) some of whose records are
+    gone: the month of that seal's creation. ``counts`` gives the rows deleted per kind,
+    ``by`` who ran it (a credential's name, or ``cli``). A record of the log itself (kind
+    ``purge``), written in the transaction that deletes, sealed by the next seal."""
+
+    __tablename__ = "log_purges"
+    __table_args__ = ({"sqlite_autoincrement": True},)
+
+    id: Mapped[int] = mapped_column(Integer, primary_key=True, autoincrement=True)
+    through_seal: Mapped[int] = mapped_column(Integer)
+    through_month: Mapped[str] = mapped_column(String(7))
+    counts: Mapped[dict[str, int]] = mapped_column(JSON)
+    purged_at: Mapped[datetime] = mapped_column(UTCDateTime, default=utcnow)
+    by: Mapped[str] = mapped_column(String(64))
+
+
+class PurgedLeaves(Base):
+    """The leaf hashes (32 bytes each, in tree order) of one seal's records of one purged
+    kind, kept when the records are deleted: a one-way commitment to each record, not the
+    record. Verification recomputes the seal's tree from them with the records that remain,
+    so its root, frontier, tree nodes and signature are still checked in full, and proofs of
+    any record kept (before or after the purge) still compute. Derived data like
+    :class:`TreeNode`: a wrong hash no longer gives the signed root."""
+
+    __tablename__ = "purged_leaves"
+
+    seal_id: Mapped[int] = mapped_column(
+        Integer, ForeignKey("seals.id"), primary_key=True, autoincrement=False
+    )
+    kind: Mapped[str] = mapped_column(String(16), primary_key=True)
+    hashes: Mapped[bytes] = mapped_column(LargeBinary)

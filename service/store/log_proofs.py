@@ -5,6 +5,10 @@ from the tree nodes kept at sealing for every aligned subtree of at least ``BLOC
 smaller ones are recomputed from the records (at most one block's). The caller checks a proof
 with RFC 9162's verification algorithms (``service.log.merkle.verify_inclusion`` and
 ``verify_consistency``, or any independent implementation) against the head's root.
+
+After a retention purge the purged records' leaves come from the leaf hashes kept for them
+(``purged_leaves``), so every proof of a kept record, and every consistency proof, still
+computes; a proof of a purged record is refused (404 ``purged``): the record is gone.
 """
 
 from __future__ import annotations
@@ -19,10 +23,11 @@ from service.errors import NotFound, Unprocessable
 from service.log.merkle import TreeBuilder, aligned_blocks, consistency_path, inclusion_path
 from service.log.merkle import leaf_hash as merkle_leaf_hash
 from service.log.records import DECISION
-from service.store.audit_models import Seal, TreeNode
+from service.store.audit_models import PurgedLeaves, Seal, TreeNode
 from service.store.feedback import canonical_recommendation_id
-from service.store.log_sources import KIND_ORDER, SOURCES
+from service.store.log_sources import KIND_ORDER, PURGED_KINDS, SOURCES
 from service.store.models import Recommendation
+from service.store.retention import purge_horizon
 from service.store.sealing import BLOCK, signed_head
 
 
@@ -127,14 +132,31 @@ def _leaf_hashes(session: Session, lo: int, hi: int) -> list[bytes]:
                 continue
             source = SOURCES[kind]
             take = min(hi, at + count) - lo
-            stmt = source.page(after, through, take).offset(lo - at)
-            for row in session.execute(stmt):
-                out.append(merkle_leaf_hash(source.encode(row)))
+            kept = _kept_hashes(session, seal.id, kind)
+            if kept is not None:
+                first = 32 * (lo - at)
+                out += [kept[i : i + 32] for i in range(first, first + 32 * take, 32)]
+            else:
+                stmt = source.page(after, through, take).offset(lo - at)
+                for row in session.execute(stmt):
+                    out.append(merkle_leaf_hash(source.encode(row)))
             lo += take
             at += count
             if lo >= hi:
                 break
     return out
+
+
+def _kept_hashes(session: Session, seal_id: int, kind: str) -> bytes | None:
+    """The leaf hashes a purge kept of the seal's records of ``kind`` (None when not purged)."""
+    if kind not in PURGED_KINDS:
+        return None
+    blob = session.scalar(
+        select(PurgedLeaves.hashes).where(
+            PurgedLeaves.seal_id == seal_id, PurgedLeaves.kind == kind
+        )
+    )
+    return None if blob is None else bytes(blob)
 
 
 class _Tree:
@@ -204,6 +226,12 @@ def inclusion(
             f"{kind} #{record_id} is not in the log as of seal {head_seal.id} (unknown, or "
             "not sealed yet)",
             code="not_sealed",
+        )
+    if kind in PURGED_KINDS and holder.id <= purge_horizon(session):
+        raise NotFound(
+            f"{kind} #{record_id} was deleted by a retention purge (its seal {holder.id} is "
+            "purged): the log keeps its leaf hash, not the record",
+            code="purged",
         )
     source = SOURCES[kind]
     row = session.execute(source.page(record_id - 1, record_id, 1)).first()

@@ -23,7 +23,13 @@ from sqlalchemy.orm import Session
 from service.log import audit_records, policy_records
 from service.log.records import DECISION, record_bytes
 from service.log.tallies import DecisionFacts
-from service.store.audit_models import AuditSnapshot, FinalDecision, OutcomeRecord, TallyBatch
+from service.store.audit_models import (
+    AuditSnapshot,
+    FinalDecision,
+    LogPurge,
+    OutcomeRecord,
+    TallyBatch,
+)
 from service.store.models import ApiKey, KeyEvent, PolicyEvent, PolicyVersion, Recommendation
 
 PAGE = 5_000
@@ -33,6 +39,7 @@ _OUT: Table = OutcomeRecord.__table__  # type: ignore[assignment]
 _FIN: Table = FinalDecision.__table__  # type: ignore[assignment]
 _SNAP: Table = AuditSnapshot.__table__  # type: ignore[assignment]
 _BATCH: Table = TallyBatch.__table__  # type: ignore[assignment]
+_PURGE: Table = LogPurge.__table__  # type: ignore[assignment]
 _VERSION: Table = PolicyVersion.__table__  # type: ignore[assignment]
 _EVENT: Table = PolicyEvent.__table__  # type: ignore[assignment]
 _KEY_EVENT: Table = KeyEvent.__table__  # type: ignore[assignment]
@@ -170,6 +177,9 @@ _BATCH_SOURCE = Source(
     audit_records.tally_batch_bytes,
     False,
 )
+_PURGE_SOURCE = Source(
+    audit_records.PURGE, _PURGE, tuple(_PURGE.c), _no_join, audit_records.purge_bytes, False
+)
 
 SOURCES: dict[str, Source] = {
     s.kind: s
@@ -182,11 +192,17 @@ SOURCES: dict[str, Source] = {
         _FINAL_SOURCE,
         _SNAPSHOT_SOURCE,
         _BATCH_SOURCE,
+        _PURGE_SOURCE,  # appended with revision 0070: older seals have no purge range
     )
 }
 KIND_ORDER: tuple[str, ...] = tuple(SOURCES)
-"""The order of the kinds within a seal. Never reordered: old seals are verified with it."""
+"""The order of the kinds within a seal. Never reordered: old seals are verified with it. A
+new kind is only ever appended; a seal written before it existed has no range of it, read as
+an empty one."""
 TALLIED_KINDS: tuple[str, ...] = (DECISION, audit_records.OUTCOME, audit_records.FINAL)
+PURGED_KINDS: tuple[str, ...] = TALLIED_KINDS
+"""The kinds a retention purge deletes: the records about a person (their decision, its
+outcomes, the final decision). Everything else is kept (``service.store.retention``)."""
 
 
 def decision_window(policy: str, start: Any, end: Any) -> tuple[ColumnElement[bool], ...]:

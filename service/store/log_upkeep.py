@@ -1,7 +1,7 @@
 """Keeping the log up to date: seal what is new, tally what is sealed, seal the tallies.
 
-One function for the server's periodic task, the CLI's ``log seal`` and the audit's catch-up
-before it counts a month.
+One function for the server's periodic task and the CLI's ``log seal``. The audit does not
+need it: it counts what no tally batch covers yet straight from the records.
 """
 
 from __future__ import annotations

@@ -10,6 +10,15 @@ records and must give their digest, and so must their stored rows. Signed heads 
 elsewhere (the mirror file, or heads saved from the API) are compared with the database's, so
 a log cut back or rewritten from some seal on is detected too.
 
+After a retention purge (``service.store.retention``) the decisions, outcomes and final
+decisions of the seals up to the *horizon* are gone; their leaf hashes were kept. The horizon
+is the largest ``through_seal`` among the purge records that a seal covers (the last seal's
+range of purges; a forged one there is an inserted record, found when its seal is checked; an
+unsealed purge row is ignored, so it never lets verification skip anything). Up to the
+horizon, those kinds' leaves are the kept hashes (a record found there was inserted); every
+root, frontier, tree node and signature is still checked. Tally batches within the horizon
+are checked against their stored rows only (their records are gone, so no recount).
+
 Verification stops at the first problem and reports it; no content of the database makes it
 raise (a record that cannot even be decoded is a problem like any other). Memory is bounded
 by the size of one seal, not of the log.
@@ -31,9 +40,18 @@ from service.log.audit_records import SNAPSHOT
 from service.log.heads import TreeHead, verify_head
 from service.log.merkle import TreeBuilder, leaf_hash
 from service.log.records import canonical
-from service.store.audit_models import Seal, SigningKey, Tally, TallyBatch, TreeNode
+from service.store.audit_models import (
+    LogPurge,
+    PurgedLeaves,
+    Seal,
+    SigningKey,
+    Tally,
+    TallyBatch,
+    TreeNode,
+)
 from service.store.db import begin_read_only
-from service.store.log_sources import KIND_ORDER, SOURCES, TALLIED_KINDS, rows
+from service.store.log_sources import KIND_ORDER, PURGED_KINDS, SOURCES, TALLIED_KINDS, rows
+from service.store.models import ApiKey, KeyAction, KeyEvent
 from service.store.sealing import (
     BLOCK,
     BLOCK_LEVEL,
@@ -67,6 +85,9 @@ class VerifyResult:
     seals_checked: int = 0
     records_checked: int = 0
     tally_batches_checked: int = 0
+    purged_through_seal: int = 0
+    """The horizon: the seals up to it hold kept leaf hashes instead of personal records."""
+    purged_leaves: int = 0
     unsealed: dict[str, int] = field(default_factory=dict)
     head: dict[str, Any] | None = None
     problem: Problem | None = None
@@ -89,7 +110,19 @@ class _Found(Exception):
 class _Leaf:
     kind: str
     id: int
+    """The record's row id (0 for a purged record's kept hash)."""
     hash: bytes
+
+
+@dataclass(frozen=True)
+class _Horizon:
+    seal: int = 0
+    """The largest through_seal of the sealed purge records (0: nothing purged)."""
+    purge: int = 0
+    """The purge record that names it."""
+    unsealed_seal: int = 0
+    """The same among purge rows no seal covers yet (only to explain a failure)."""
+    unsealed_purge: int = 0
 
 
 def _snapshot_problem(row: Any) -> str | None:
@@ -110,10 +143,60 @@ def _snapshot_problem(row: Any) -> str | None:
     return None
 
 
-def _leaves(session: Session, seal: Seal, prev_through: dict[str, int]) -> list[_Leaf]:
+def _kept_leaves(
+    session: Session, seal: Seal, kind: str, span: tuple[int, int, int], purge_id: int
+) -> list[_Leaf]:
+    """The kept leaf hashes of a purged seal's records of ``kind`` (none of which may remain)."""
+    after, through, count = span
+    t = SOURCES[kind].table
+    left = session.scalar(select(func.min(t.c.id)).where(t.c.id > after, t.c.id <= through))
+    blob = session.scalar(
+        select(PurgedLeaves.hashes).where(
+            PurgedLeaves.seal_id == seal.id, PurgedLeaves.kind == kind
+        )
+    )
+    if left is not None and blob is None:
+        raise _Found(
+            Problem(
+                "purge",
+                purge_id,
+                f"says the records of seal {seal.id} were purged, but its {kind} records are "
+                "there and no hashes of them were kept: the purge record was forged or edited",
+            )
+        )
+    if left is not None:
+        raise _Found(
+            Problem(
+                kind,
+                int(left),
+                f"is in the range of seal {seal.id}, whose {kind} records were purged: it was "
+                "inserted",
+            )
+        )
+    if count == 0:
+        return []
+    data = bytes(blob or b"")
+    if len(data) != 32 * count:
+        raise _Found(
+            Problem(
+                "seal",
+                seal.id,
+                f"the leaf hashes kept for its {count} purged {kind} records are missing or "
+                "incomplete",
+            )
+        )
+    return [_Leaf(kind, 0, data[i : i + 32]) for i in range(0, len(data), 32)]
+
+
+def _leaves(
+    session: Session, seal: Seal, prev_through: dict[str, int], horizon: _Horizon
+) -> list[_Leaf]:
     leaves: list[_Leaf] = []
     for kind in KIND_ORDER:
-        after, through, _count = _range(seal, kind, prev_through)
+        after, through, count = _range(seal, kind, prev_through)
+        if seal.id <= horizon.seal and kind in PURGED_KINDS:
+            leaves += _kept_leaves(session, seal, kind, (after, through, count), horizon.purge)
+            continue
         source = SOURCES[kind]
         try:
             for row in rows(session, source, after, through):
@@ -257,9 +340,10 @@ def _check_seal(
     builder: TreeBuilder,
     prev_through: dict[str, int],
     keys: dict[str, bytes],
+    horizon: _Horizon,
 ) -> list[_Leaf]:
     start = builder.count
-    leaves = _leaves(session, seal, prev_through)
+    leaves = _leaves(session, seal, prev_through, horizon)
     try:
         blocks = BlockTracker(
             LastSeal(seal.id - 1, start, builder.frontier(), prev_through), session
@@ -277,7 +361,22 @@ def _check_seal(
     size_ok = builder.count == int(seal.tree_size) and counts == found
     if not size_ok or builder.root() != bytes(seal.root):
         end = start + sum(counts.values())
-        raise _Found(_name_bad_leaf(leaves, _expected_tags(session, seal, start, end), seal))
+        bad = _name_bad_leaf(leaves, _expected_tags(session, seal, start, end), seal)
+        gone = [k for k in KIND_ORDER if counts[k] and not found[k]]
+        if gone:  # a whole kind missing: say so rather than name a neighbour as changed
+            bad = Problem(
+                "seal",
+                seal.id,
+                f"all {counts[gone[0]]} of its {gone[0]} records are missing: deleted",
+            )
+        if seal.id <= horizon.unsealed_seal:
+            bad = Problem(
+                bad.kind,
+                bad.id,
+                f"{bad.reason} (purge #{horizon.unsealed_purge} deleted records up to seal "
+                f"{horizon.unsealed_seal} but is not sealed yet: run `evenhand log seal`)",
+            )
+        raise _Found(bad)
     if bytes(seal.frontier) != pack_frontier(builder.frontier()):
         raise _Found(Problem("seal", seal.id, "its stored frontier does not match its leaves"))
     problem = verify_head(head_of(seal), bytes(seal.signature), keys)
@@ -285,6 +384,28 @@ def _check_seal(
         raise _Found(Problem("seal", seal.id, problem))
     _check_nodes(session, blocks, seal)
     return leaves
+
+
+def _horizon(session: Session) -> _Horizon:
+    last = session.scalars(select(Seal).order_by(Seal.id.desc()).limit(1)).first()
+    sealed = 0
+    if last is not None and isinstance(last.ranges, Mapping):
+        try:
+            sealed = int(last.ranges.get("purge", [0, 0, 0])[1])
+        except (TypeError, ValueError, IndexError):
+            sealed = 0  # the seal's own check reports the malformed range
+    best = (0, 0)
+    unsealed = (0, 0)
+    for purge_id, through_seal in session.execute(select(LogPurge.id, LogPurge.through_seal)):
+        try:
+            value = int(through_seal)
+        except (TypeError, ValueError):
+            continue  # an unreadable purge record is reported when its seal is checked
+        if purge_id <= sealed and value > best[0]:
+            best = (value, int(purge_id))
+        elif purge_id > sealed and value > unsealed[0]:
+            unsealed = (value, int(purge_id))
+    return _Horizon(best[0], best[1], unsealed[0], unsealed[1])
 
 
 def _keys(session: Session, trusted: Mapping[str, bytes], trust_database: bool) -> dict[str, bytes]:
@@ -297,7 +418,7 @@ def _keys(session: Session, trusted: Mapping[str, bytes], trust_database: bool) 
 
 def _check_tally_batches(
     factory: sessionmaker[Session],
-    sealed_through: dict[str, int],
+    purged_through: dict[str, int],
     result: VerifyResult,
     progress: Progress,
 ) -> None:
@@ -331,8 +452,9 @@ def _check_tally_batches(
                             f"its {kind} range does not continue the previous batch's",
                         )
                     )
-            recount, _ = tally_ranges(session, ranges, zone)
-            if tallies.digest(recount) != bytes(batch.digest):
+            purged = all(r[1] <= purged_through.get(k, 0) for k, r in ranges.items())
+            recount, _ = (None, 0) if purged else tally_ranges(session, ranges, zone)
+            if recount is not None and tallies.digest(recount) != bytes(batch.digest):
                 raise _Found(
                     Problem(
                         "tally_batch",
@@ -401,7 +523,10 @@ def _verify(
     with factory() as session:
         begin_read_only(session)
         keys = _keys(session, trusted_keys, trust_database_keys)
+        horizon = _horizon(session)
         session.rollback()
+    result.purged_through_seal = horizon.seal
+    purged_through: dict[str, int] = {}
     while True:
         with factory() as session:
             begin_read_only(session)
@@ -413,13 +538,16 @@ def _verify(
                 break
             if seal.id != last_id + 1:
                 raise _Found(Problem("seal", seal.id, f"seal {last_id + 1} before it is missing"))
-            leaves = _check_seal(session, seal, builder, through, keys)
+            leaves = _check_seal(session, seal, builder, through, keys, horizon)
             through = {kind: _range(seal, kind, through)[1] for kind in KIND_ORDER}
+            if seal.id == horizon.seal:
+                purged_through = dict(through)
             head = {"head": head_of(seal).payload(), "signature": bytes(seal.signature).hex()}
             seal_id = seal.id
             session.rollback()
         result.seals_checked += 1
-        result.records_checked += len(leaves)
+        result.records_checked += sum(1 for leaf in leaves if leaf.id)
+        result.purged_leaves += sum(1 for leaf in leaves if not leaf.id)
         result.head = head
         other = mirrored.pop(seal_id, None)
         if other is not None and dict(other) != result.head:
@@ -432,6 +560,14 @@ def _verify(
             )
         last_id = seal_id
         progress(f"verified seal {seal_id}: {result.records_checked:,} records so far")
+    if horizon.seal > last_id:
+        raise _Found(
+            Problem(
+                "purge",
+                0,
+                f"a sealed purge record names seal {horizon.seal}, after the last seal {last_id}",
+            )
+        )
     if mirrored:
         first = min(mirrored)
         raise _Found(
@@ -459,8 +595,21 @@ def _verify(
                 )
                 or 0
             )
+        # A key is logged through its events: one without a creation event never entered the
+        # log, yet it would authenticate.
+        stray = session.scalar(
+            select(func.min(ApiKey.id)).where(
+                ~select(KeyEvent.id)
+                .where(KeyEvent.key_id == ApiKey.id, KeyEvent.action == KeyAction.CREATE.value)
+                .exists()
+            )
+        )
         session.rollback()
-    _check_tally_batches(factory, through, result, progress)
+    if stray is not None:
+        raise _Found(
+            Problem("api_key", int(stray), "has no creation event in the log: it was inserted")
+        )
+    _check_tally_batches(factory, purged_through, result, progress)
 
 
 def _head_seal_id(head: Mapping[str, Any]) -> int:
