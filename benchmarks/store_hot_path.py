@@ -74,7 +74,7 @@ def request() -> RecommendationRequest:
 
 def prepare(url: str) -> Settings:
     upgrade(url)
-    settings = Settings(database_url=url, draw_secret="benchmark-secret")  # type: ignore[arg-type]
+    settings = Settings(database_url=url, draw_secret="b" * 64)  # type: ignore[arg-type]
     factory = create_session_factory(create_db_engine(settings))
     with factory() as s:
         a = keys.Actor.of(keys.create_key(s, "a", "admin")[0])
