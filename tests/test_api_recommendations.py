@@ -23,8 +23,9 @@ R = "/v1/recommendations"
 
 
 def reference_draw(name: str, version: int, case_id: str) -> float:
-    # GUIDE.md section 1: first 8 bytes of HMAC-SHA256(secret, compact JSON [name, version,
-    # case_id]), big-endian, divided by 2^64 -- computed here with the standard library only.
+    # The documented draw (docs/decision-log.md): first 8 bytes of HMAC-SHA256(secret, compact
+    # JSON [name, version, case_id]), big-endian, divided by 2^64 -- computed here with the
+    # standard library only (RFC 2104 HMAC).
     msg = json.dumps([name, version, case_id], separators=(",", ":"), ensure_ascii=False)
     digest = hmac.new(TEST_SECRET.encode(), msg.encode(), hashlib.sha256).digest()
     return int.from_bytes(digest[:8], "big") / 2**64

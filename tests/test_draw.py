@@ -8,8 +8,9 @@ from service.policy.rules import MAX_DRAW, keyed_draw, keyed_draws
 
 
 def _reference(secret: bytes, name: str, version: int, case_id: str) -> float:
-    # Definition (GUIDE.md section 1): first 8 bytes of HMAC-SHA256 over the compact JSON
-    # array [name, version, case_id], big-endian unsigned, divided by 2^64.
+    # The draw as docs/decision-log.md defines it: first 8 bytes of HMAC-SHA256 (RFC 2104,
+    # FIPS 180-4) over the compact JSON array [name, version, case_id], big-endian unsigned,
+    # divided by 2^64; computed here with the standard library's hmac only.
     message = json.dumps([name, version, case_id], separators=(",", ":"), ensure_ascii=False)
     digest = hmac.new(secret, message.encode("utf-8"), hashlib.sha256).digest()
     return int.from_bytes(digest[:8], "big") / 2**64

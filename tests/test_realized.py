@@ -93,7 +93,8 @@ def test_four_fifths_boundary_is_strict(selected: int, flagged: bool) -> None:
 
 
 def test_four_fifths_exact_arithmetic_where_floats_fail() -> None:
-    # GUIDE.md section 7: (16/25)/(20/25) is 0.7999999999999999 in floats, yet exactly 0.8.
+    # IEEE 754 doubles (common practice): (16/25)/(20/25) is 0.7999999999999999, yet exactly
+    # 0.8; the rule (29 CFR 1607.4(D), 1978) is about the exact ratio.
     assert (16 / 25) / (20 / 25) < 0.8
     assert not four_fifths_flag(16, 25, 20, 25)
     assert four_fifths_flag(15, 25, 20, 25)
@@ -138,7 +139,7 @@ def test_costs_realized_and_expected() -> None:
     observed = np.ones(n, dtype=int)
     c = counts_from_rows(act, observed, y, p)
     cost = cost_per_case(c, 1.0, 4.0, 0.6, "both")
-    # Definition (GUIDE.md section 2): (c_FP FP + c_FN FN) / N, and the same in expectation.
+    # Common practice: cost per case (c_FP FP + c_FN FN) / N, and the same in expectation.
     fp = ((act == 1) & (y == 0)).sum()
     fn = ((act == 0) & (y == 1)).sum()
     assert cost.realized == pytest.approx((fp + 4 * fn) / n)

@@ -27,7 +27,7 @@ def test_deterministic_rule_matches_sklearn_confusion_matrix() -> None:
 
 
 def test_randomized_rule_counts_are_sums_of_probabilities() -> None:
-    # Definition (GUIDE.md section 2): expected counts are sums of P(action | s_i); compared
+    # Common practice: expected counts are sums of P(action | s_i); compared
     # with sklearn's confusion_matrix weighted by the probability of each cell.
     p, y, _ = _data(2)
     counts = expected_counts(p, y)
@@ -65,8 +65,9 @@ def test_undefined_rates_are_nan_not_zero() -> None:
 
 
 def test_chouldechova_worked_example() -> None:
-    # Chouldechova 2017, Big Data 5(2):153-163; check value from GUIDE.md
-    # section 7: p = 0.4, PPV = 0.6, FNR = 0.3 -> FPR = 0.31111.
+    # Chouldechova 2017, "Fair prediction with disparate impact", Big Data 5(2):153-163,
+    # eq. (2.6): FPR = p/(1-p) (1-PPV)/PPV (1-FNR); p = 0.4, PPV = 0.6, FNR = 0.3 gives
+    # (2/3)(2/3)(0.7) = 0.31111 by hand.
     assert chouldechova_fpr(0.4, 0.6, 0.3) == pytest.approx(0.311111, abs=1e-6)
 
 
@@ -97,5 +98,7 @@ def test_wilson_for_expected_rates_matches_statsmodels() -> None:
         ours = wilson_interval_for_rate(count / nobs, nobs)
         ref = proportion_confint(count, nobs, alpha=0.05, method="wilson")
         assert ours == pytest.approx(ref, abs=1e-12)
-    # Newcombe 1998a Table I, secondary (GUIDE.md section 7): 81/263 -> 0.2553-0.3662.
+    # Newcombe 1998, "Two-sided confidence intervals for the single proportion", Statistics
+    # in Medicine 17:857-872, Table I, Wilson score method: 81/263 -> 0.2553-0.3662 (from
+    # memory; statsmodels agrees above).
     assert wilson_interval_for_rate(81 / 263, 263) == pytest.approx((0.2553, 0.3662), abs=5e-5)
