@@ -30,7 +30,10 @@ COMMANDS: dict[str, tuple[str, str]] = {
         "service.cli.derive",
         "derive a policy from calibration data under a parity criterion",
     ),
-    "schema": ("service.cli.schema", "the policy document's JSON Schema (policies/schema.json)"),
+    "schema": (
+        "service.cli.schema",
+        "the policy document's JSON Schema (service/policies/schema.json)",
+    ),
     "audit": ("service.cli.audit", "audit realized rates for one policy and month"),
     "report": ("service.cli.report", "list, show and export audit report snapshots"),
     "warnings": (
