@@ -14,6 +14,9 @@ from service.api import health, keys, log, outcomes, policies, recommendations, 
 from service.api.deps import KeyCache
 from service.api.errors import error_responses, install_error_handlers
 from service.api.limits import BodySizeLimit
+from service.observability.db_metrics import DatabaseCollector
+from service.observability.metrics import RequestMetrics, metrics_router
+from service.observability.middleware import RequestObserver
 from service.settings import Settings
 from service.store.committer import GroupCommitter
 from service.store.db import create_db_engine, create_session_factory
@@ -103,5 +106,12 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         warnings.router,
     ):
         app.include_router(router, responses=unavailable)
+    app.include_router(metrics_router(settings.metrics_access), include_in_schema=False)
+    app.state.request_metrics = RequestMetrics()
+    app.state.db_metrics = DatabaseCollector(app.state)
     app.add_middleware(BodySizeLimit, max_bytes=settings.max_body_bytes)
+    # Outermost: every request gets an id and is timed, refusals included.
+    app.add_middleware(
+        RequestObserver, metrics=app.state.request_metrics, access_log_on=settings.access_log
+    )
     return app

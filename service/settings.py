@@ -103,6 +103,21 @@ class Settings(BaseSettings):
         "the database: `evenhand log verify --heads FILE` compares the log with it",
     )
 
+    metrics_access: Literal["key", "open"] = Field(
+        default="key",
+        description="who may read GET /metrics: `key` (a key with the audit or the admin role, "
+        "sent by Prometheus as a bearer token) or `open` (anyone who can reach the port: only "
+        "on a private network)",
+    )
+    access_log: bool = Field(
+        default=True,
+        description="one log line per request (method, route template, status, duration, "
+        "request id); never the query string, headers or body",
+    )
+    log_format: Literal["json", "text"] = Field(
+        default="json", description="`evenhand serve`'s log lines: JSON objects or plain text"
+    )
+
     retention_months: int = Field(
         default=MIN_RETENTION_MONTHS,
         description="whole months the log's personal-data records are kept before "

@@ -30,8 +30,15 @@ COMMANDS: dict[str, tuple[str, str]] = {
         "service.cli.derive",
         "derive a policy from calibration data under a parity criterion",
     ),
-    "schema": ("service.cli.schema", "the policy document's JSON Schema (policies/schema.json)"),
+    "schema": (
+        "service.cli.schema",
+        "the policy document's JSON Schema (service/policies/schema.json)",
+    ),
     "audit": ("service.cli.audit", "audit realized rates for one policy and month"),
+    "jobs": (
+        "service.cli.jobs",
+        "scheduled work: audit matured months; the job runner (sealing and audits)",
+    ),
     "report": ("service.cli.report", "list, show and export audit report snapshots"),
     "warnings": (
         "service.cli.warnings",

@@ -11,7 +11,9 @@ from service.policy.schema import schema_text
 
 
 def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
-    p = sub.add_parser("schema", help="the policy document's JSON Schema (policies/schema.json)")
+    p = sub.add_parser(
+        "schema", help="the policy document's JSON Schema (service/policies/schema.json)"
+    )
     p.add_argument("--out", type=Path, help="write here instead of standard output")
     p.set_defaults(handler=run)
 

@@ -17,7 +17,12 @@ def register(sub: Any) -> None:
     p.add_argument("--host", help="interface to bind (default: EVENHAND_HOST or 127.0.0.1)")
     p.add_argument("--port", type=int, help="port (default: EVENHAND_PORT or 8000)")
     p.add_argument("--workers", type=int, help="worker processes (default: EVENHAND_WORKERS or 1)")
-    p.add_argument("--access-log", action="store_true", help="log every request")
+    p.add_argument(
+        "--access-log",
+        action="store_true",
+        help="also write uvicorn's own access log (raw paths; EVENHAND_ACCESS_LOG's JSON line "
+        "per request, with route templates, is on by default)",
+    )
     p.set_defaults(handler=run)
 
 
@@ -56,6 +61,8 @@ def _preflight(settings: Settings) -> None:
 def run(args: argparse.Namespace) -> int:
     import uvicorn
 
+    from service.observability.json_logs import log_config
+
     settings = Settings()
     _preflight(settings)
     host = args.host or settings.host
@@ -70,5 +77,8 @@ def run(args: argparse.Namespace) -> int:
         workers=workers,
         access_log=args.access_log,
         log_level="info",
+        log_config=log_config(
+            json_format=settings.log_format == "json", uvicorn_access=args.access_log
+        ),
     )
     return 0

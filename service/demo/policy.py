@@ -1,14 +1,13 @@
-"""The Fernhollow demo policy: the derived document if the repository has one, else a simple one.
+"""The Fernhollow demo policy: the derived document the package ships, else a simple one.
 
-``policies/fernhollow-follow-up.json`` is derived from the synthetic calibration data by the
-policy engine. Without it (a checkout that predates it), :func:`fallback_policy` builds a
-plain per-community document in code so the demo still runs.
+``service/policies/fernhollow-follow-up.json`` (package data) is derived from the synthetic
+calibration data by the policy engine. Without it, :func:`fallback_policy` builds a plain
+per-community document in code so the demo still runs.
 """
 
 from __future__ import annotations
 
 import json
-from pathlib import Path
 from typing import Any
 
 from service.demo.fernhollow import COMMUNITIES, LANGUAGES
@@ -20,23 +19,24 @@ from service.policy.document import (
     Rule,
     document_json,
 )
+from service.resources import policy_text
 
 POLICY_NAME = "fernhollow-follow-up"
-POLICY_PATH = Path(__file__).resolve().parents[2] / "policies" / f"{POLICY_NAME}.json"
+POLICY_FILE = f"{POLICY_NAME}.json"
 COSTS = Costs(false_positive=1.0, false_negative=4.0)
 
 
 def demo_policy() -> dict[str, Any]:
     """The document version 1 of the demo activates (validated)."""
-    if POLICY_PATH.exists():
-        data = json.loads(POLICY_PATH.read_text(encoding="utf-8"))
-        return document_json(PolicyDocument.model_validate(data))
-    return document_json(fallback_policy())
+    try:
+        text = policy_text(POLICY_FILE)
+    except FileNotFoundError:
+        return document_json(fallback_policy())
+    return document_json(PolicyDocument.model_validate(json.loads(text)))
 
 
 def fallback_policy() -> PolicyDocument:
-    # TODO(lead): remove once policies/fernhollow-follow-up.json (derived by the engine) is on
-    # main; these cuts are picked by hand, not derived.
+    # These cuts are picked by hand, not derived.
     return PolicyDocument(
         name=POLICY_NAME,
         description="Nurse follow-up after discharge (hand-set per-community cuts)",

@@ -14,5 +14,5 @@ def policy_schema() -> dict[str, Any]:
 
 
 def schema_text() -> str:
-    """The exact text committed as ``policies/schema.json``."""
+    """The exact text committed as ``service/policies/schema.json``."""
     return json.dumps(policy_schema(), indent=2, sort_keys=True, ensure_ascii=False) + "\n"

@@ -2,25 +2,19 @@
 
 from __future__ import annotations
 
-import os
-from pathlib import Path
-
 from alembic import command
 from alembic.config import Config
 from alembic.runtime.migration import MigrationContext
 from alembic.script import ScriptDirectory
 from sqlalchemy import Engine
 
-# The repository's migrations/ folder; an installed (non-editable) copy, as in the Docker
-# image, points EVENHAND_MIGRATIONS_DIR at the folder it ships.
-MIGRATIONS_DIR = Path(
-    os.environ.get("EVENHAND_MIGRATIONS_DIR", Path(__file__).resolve().parents[2] / "migrations")
-)
+from service.resources import migrations_dir
 
 
 def alembic_config(database_url: str) -> Config:
     config = Config()
-    config.set_main_option("script_location", str(MIGRATIONS_DIR))
+    # The package's own migrations/ folder (package data), wherever it is installed.
+    config.set_main_option("script_location", str(migrations_dir()))
     # ConfigParser interpolation: a literal % in a URL (escaped password) must be doubled.
     config.set_main_option("sqlalchemy.url", database_url.replace("%", "%%"))
     return config

@@ -1,4 +1,4 @@
-"""Committed files under policies/ must match what the code generates today."""
+"""Committed files under service/policies/ must match what the code generates today."""
 
 from __future__ import annotations
 
@@ -30,9 +30,10 @@ DEMO_DERIVE = (
 
 
 def test_committed_schema_is_current() -> None:
-    committed = (ROOT / "policies" / "schema.json").read_text(encoding="utf-8")
+    committed = (ROOT / "service" / "policies" / "schema.json").read_text(encoding="utf-8")
     assert committed == schema_text(), (
-        "policies/schema.json is stale: run `evenhand schema --out policies/schema.json`"
+        "service/policies/schema.json is stale: "
+        "run `evenhand schema --out service/policies/schema.json`"
     )
 
 
@@ -59,8 +60,10 @@ def test_demo_policy_is_reproducible_from_the_documented_commands(tmp_path: Path
     assert main(shlex.split(DEMO_DATA.format(csv=csv))) == 0
     assert main(shlex.split(DEMO_DERIVE.format(csv=csv, out=out, report=report))) == 0
     fresh = json.loads(out.read_text())
-    committed = json.loads((ROOT / "policies" / "fernhollow-follow-up.json").read_text())
-    assert _close(fresh, committed), "policies/fernhollow-follow-up.json is stale"
+    committed = json.loads(
+        (ROOT / "service" / "policies" / "fernhollow-follow-up.json").read_text()
+    )
+    assert _close(fresh, committed), "service/policies/fernhollow-follow-up.json is stale"
     policy = PolicyDocument.model_validate(committed)
     assert policy.action_label == "offer nurse follow-up"
     assert policy.groups.fallback.use_parent
@@ -68,4 +71,4 @@ def test_demo_policy_is_reproducible_from_the_documented_commands(tmp_path: Path
 
 @pytest.mark.parametrize("name", ["fernhollow-follow-up.json"])
 def test_committed_policies_validate(name: str) -> None:
-    PolicyDocument.model_validate_json((ROOT / "policies" / name).read_text())
+    PolicyDocument.model_validate_json((ROOT / "service" / "policies" / name).read_text())
