@@ -103,5 +103,9 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         warnings.router,
     ):
         app.include_router(router, responses=unavailable)
+    # The console for admins and auditors (server-rendered pages under /console).
+    from service.console.routes import router as console_router
+
+    app.include_router(console_router)
     app.add_middleware(BodySizeLimit, max_bytes=settings.max_body_bytes)
     return app
