@@ -44,7 +44,8 @@ Name = Annotated[str, Path(pattern=r"^[a-z0-9][a-z0-9._-]{0,63}$")]
 Version = Annotated[int, Path(ge=1, le=2_147_483_647)]
 Month = Annotated[str, Path(pattern=r"^\d{4}-(0[1-9]|1[0-2])$")]
 
-_STYLESHEET = files("service.console").joinpath("static/console.css")
+_STATIC = files("service.console").joinpath("static")
+_STATIC_TYPES = {"console.css": "text/css", "icon.svg": "image/svg+xml"}
 
 
 def _read_session(request: Request) -> Session:
@@ -62,11 +63,14 @@ def _write_session(request: Request) -> Session:
 # --- sign-in, sign-out, stylesheet -------------------------------------------------------
 
 
-@router.get("/static/console.css")
-def stylesheet() -> Response:
+@router.get("/static/{file}")
+def static_file(file: str) -> Response:
+    media_type = _STATIC_TYPES.get(file)
+    if media_type is None:
+        raise NotFound(f"no static file {file!r}")
     return Response(
-        _STYLESHEET.read_text(encoding="utf-8"),
-        media_type="text/css",
+        _STATIC.joinpath(file).read_text(encoding="utf-8"),
+        media_type=media_type,
         headers={"Cache-Control": "max-age=3600"},
     )
 
