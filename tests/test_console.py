@@ -6,6 +6,7 @@ from __future__ import annotations
 import itertools
 import re
 from collections.abc import Callable
+from datetime import UTC, datetime
 
 import pytest
 from fastapi.testclient import TestClient
@@ -13,7 +14,7 @@ from fastapi.testclient import TestClient
 from service.console.rule_view import describe_rule, rule_chart
 from service.console.sessions import SessionStore
 from service.policy.document import Rule
-from tests.helpers import bearer, make_policy
+from tests.helpers import bearer, make_policy, make_request
 
 CSRF = re.compile(r'name="csrf" value="([^"]+)"')
 
@@ -333,3 +334,38 @@ def test_rule_sentence_and_chart() -> None:
         px = round(40 + score * 308, 2)
         y = [y1 for x1, y1 in flats if x1 <= px][-1]
         assert 1 - (y - 12) / 124 == pytest.approx(rule.probability_at(score))
+
+
+def test_report_files_match_the_api_and_the_html_has_its_own_policy(
+    client: TestClient, tokens: dict[str, str], make_key: Callable[..., str]
+) -> None:
+    from tests.audit_helpers import put_live
+
+    put_live(client, make_key)
+    for i in range(6):
+        body = make_request(score=0.1 * i + 0.05, attributes={"region": ("north", "south")[i % 2]})
+        r = client.post("/v1/recommendations", json=body, headers=bearer(tokens["scoring"]))
+        assert r.status_code in (200, 201), r.text
+    month = datetime.now(UTC).strftime("%Y-%m")  # the service's time zone is UTC
+    audit = bearer(tokens["audit"])
+    r = client.post(
+        "/v1/audits",
+        json={"policy": "readmission", "month": month, "provisional": True},
+        headers=audit,
+    )
+    assert r.status_code == 201, r.text
+    sign_in(client, tokens["audit"])
+    months = client.get("/console/reports/readmission")
+    assert months.status_code == 200 and month in months.text
+    assert f"/console/reports/readmission/{month}/report.html" in months.text
+    for kind, api_suffix in (("json", ""), ("csv", ".csv"), ("html", ".html")):
+        mine = client.get(f"/console/reports/readmission/{month}/report.{kind}")
+        api = client.get(f"/v1/reports/readmission/{month}{api_suffix}", headers=audit)
+        assert mine.status_code == 200 and mine.content == api.content
+        assert mine.headers["x-content-type-options"] == "nosniff"
+    html = client.get(f"/console/reports/readmission/{month}/report.html")
+    csp = html.headers["content-security-policy"]
+    # The stored report keeps its inline stylesheet: allowed for it alone, and no script.
+    assert "style-src 'unsafe-inline'" in csp and "sandbox" in csp
+    assert "script" not in csp and "frame-ancestors 'none'" in csp
+    assert client.get(f"/console/reports/readmission/{month}/report.pdf").status_code == 404
