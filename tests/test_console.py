@@ -3,18 +3,22 @@ cookie, CSRF, security headers, roles, the confirmed lifecycle actions and repor
 
 from __future__ import annotations
 
+import hashlib
 import itertools
 import re
 from collections.abc import Callable
-from datetime import UTC, datetime
+from datetime import UTC, datetime, timedelta
 
 import pytest
 from fastapi.testclient import TestClient
+from sqlalchemy import func, select
+from sqlalchemy.orm import Session, sessionmaker
 
 from service.console.rule_view import describe_rule, rule_chart
 from service.console.sessions import SessionStore
 from service.policy.document import Rule
-from tests.helpers import bearer, make_policy, make_request
+from service.store.console_sessions import ConsoleSessionRow
+from tests.helpers import actor, bearer, make_policy, make_request
 
 CSRF = re.compile(r'name="csrf" value="([^"]+)"')
 
@@ -135,19 +139,38 @@ def test_sign_out_ends_the_session(client: TestClient, tokens: dict[str, str]) -
     assert client.get("/console/policies", follow_redirects=False).status_code == 303
 
 
-def test_session_expires_when_idle_and_after_its_lifetime() -> None:
-    now = [0.0]
-    store = SessionStore(idle_seconds=60, lifetime_seconds=300, clock=lambda: now[0])
-    sid = store.create(1, "a", "admin")
-    now[0] = 59
+def test_session_expires_when_idle_and_after_its_lifetime(
+    session_factory: sessionmaker[Session], tokens: dict[str, str]
+) -> None:
+    start = datetime(2026, 12, 1, 9, 0, tzinfo=UTC)
+    now = [start]
+    store = SessionStore(session_factory, 60, 300, clock=lambda: now[0])
+    key = actor(session_factory, "auditor").key_id
+    sid = store.create(key, "auditor", "audit")
+    now[0] = start + timedelta(seconds=59)
     assert store.get(sid) is not None
-    now[0] = 59 + 61
+    now[0] = start + timedelta(seconds=59 + 61)
     assert store.get(sid) is None  # idle too long
-    sid = store.create(1, "a", "admin")
-    for step in range(1, 7):
-        now[0] = 120 + 50 * step
+    start = now[0]
+    sid = store.create(key, "auditor", "audit")
+    for step in range(1, 8):
+        now[0] = start + timedelta(seconds=50 * step)
         seen = store.get(sid)
-        assert (seen is not None) == (50 * step <= 300)  # active, but not past its lifetime
+        assert (seen is not None) == (50 * step < 300)  # active, but not past its lifetime
+    with session_factory() as db:  # expired rows are gone, not just ignored
+        assert db.scalar(select(func.count()).select_from(ConsoleSessionRow)) == 0
+
+
+def test_the_session_table_holds_no_usable_secret(
+    client: TestClient, tokens: dict[str, str], session_factory: sessionmaker[Session]
+) -> None:
+    sign_in(client, tokens["admin"])
+    cookie = client.cookies["evenhand_console"]
+    with session_factory() as db:
+        row = db.scalars(select(ConsoleSessionRow)).one()
+    assert row.id_hash == hashlib.sha256(cookie.encode()).hexdigest()
+    assert cookie not in row.id_hash and tokens["admin"] not in repr(row.__dict__)
+    assert (row.key_name, row.role) == ("admin-author", "admin")
 
 
 def test_expired_session_is_sent_to_sign_in(client: TestClient, tokens: dict[str, str]) -> None:

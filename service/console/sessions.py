@@ -1,14 +1,11 @@
-"""Console sessions: a random session id in the cookie, mapped in this process's memory to
-the signed-in key's id, name and role and to the session's CSRF token.
+"""Console sessions: a random session id in the cookie, mapped in the database (table
+``console_sessions``) to the signed-in key's id, name and role and to the session's CSRF
+token, so every worker process serves every signed-in person.
 
-The cookie carries only the session id (32 random bytes); the store is keyed by its SHA-256,
-so not even a dump of the process's memory yields a usable cookie. The API key itself is
-never kept after sign-in. A session ends at sign-out, after ``idle`` without a request, or
-``lifetime`` after sign-in, whichever comes first.
-
-The store lives in one process: with ``EVENHAND_WORKERS`` above 1 a request may reach a
-worker that never saw the sign-in (the console then asks to sign in again), and a restart
-signs everyone out. See docs/console.md.
+The cookie carries only the session id (32 random bytes); the table is keyed by its SHA-256,
+so a copy of the table yields no usable cookie. The API key itself is never kept after
+sign-in. A session ends at sign-out, after ``idle_seconds`` without a request,
+``lifetime_seconds`` after sign-in, or when its key is revoked, whichever comes first.
 """
 
 from __future__ import annotations
@@ -16,10 +13,14 @@ from __future__ import annotations
 import hashlib
 import hmac
 import secrets
-import threading
-import time
 from collections.abc import Callable
-from dataclasses import dataclass, replace
+from dataclasses import dataclass
+from datetime import datetime, timedelta
+
+from sqlalchemy.orm import Session, sessionmaker
+
+from service.store import console_sessions as table
+from service.store.models import utcnow
 
 SESSION_ID_BYTES = 32
 CSRF_BYTES = 32
@@ -33,8 +34,8 @@ class ConsoleSession:
     key_name: str
     role: str
     csrf: str
-    started: float
-    last_seen: float
+    started: datetime
+    last_seen: datetime
 
 
 def _digest(session_id: str) -> str:
@@ -47,58 +48,64 @@ def same_token(a: str, b: str) -> bool:
 
 
 class SessionStore:
-    """Live sessions by the SHA-256 of their id; thread-safe (sync routes run in threads)."""
+    """Create, find and end sessions; each call is one short transaction of its own."""
 
     def __init__(
         self,
+        factory: sessionmaker[Session],
         idle_seconds: float,
         lifetime_seconds: float,
-        clock: Callable[[], float] = time.monotonic,
-        max_sessions: int = 10_000,
+        clock: Callable[[], datetime] = utcnow,
     ) -> None:
+        self._factory = factory
         self.idle_seconds = idle_seconds
         self.lifetime_seconds = lifetime_seconds
         self._clock = clock
-        self._max = max_sessions
-        self._lock = threading.Lock()
-        self._sessions: dict[str, ConsoleSession] = {}
 
-    def _expired(self, s: ConsoleSession, now: float) -> bool:
-        return now - s.last_seen > self.idle_seconds or now - s.started > self.lifetime_seconds
+    def _limits(self, now: datetime) -> tuple[datetime, datetime]:
+        return (
+            now - timedelta(seconds=self.idle_seconds),
+            now - timedelta(seconds=self.lifetime_seconds),
+        )
 
     def create(self, key_id: int, key_name: str, role: str) -> str:
-        """A new session for the key; returns the session id for the cookie."""
+        """A new session for the key; returns the session id for the cookie. Expired
+        sessions of anyone are deleted on the way."""
         session_id = secrets.token_urlsafe(SESSION_ID_BYTES)
         now = self._clock()
-        entry = ConsoleSession(key_id, key_name, role, secrets.token_urlsafe(CSRF_BYTES), now, now)
-        with self._lock:
-            if len(self._sessions) >= self._max:
-                self._drop_expired(now)
-            if len(self._sessions) >= self._max:  # still full: the oldest goes
-                oldest = min(self._sessions, key=lambda k: self._sessions[k].last_seen)
-                del self._sessions[oldest]
-            self._sessions[_digest(session_id)] = entry
+        with self._factory() as db:
+            table.purge_expired(db, *self._limits(now))
+            table.add(
+                db,
+                table.ConsoleSessionRow(
+                    id_hash=_digest(session_id),
+                    key_id=key_id,
+                    key_name=key_name,
+                    role=role,
+                    csrf=secrets.token_urlsafe(CSRF_BYTES),
+                    started_at=now,
+                    last_seen=now,
+                ),
+            )
+            db.commit()
         return session_id
 
     def get(self, session_id: str) -> ConsoleSession | None:
         """The live session with this id (its idle clock restarted), or None."""
-        digest = _digest(session_id)
         now = self._clock()
-        with self._lock:
-            entry = self._sessions.get(digest)
-            if entry is None:
-                return None
-            if self._expired(entry, now):
-                del self._sessions[digest]
-                return None
-            entry = replace(entry, last_seen=now)
-            self._sessions[digest] = entry
-            return entry
+        with self._factory() as db:
+            row = table.live(db, _digest(session_id), now, *self._limits(now))
+            found = (
+                None
+                if row is None
+                else ConsoleSession(
+                    row.key_id, row.key_name, row.role, row.csrf, row.started_at, row.last_seen
+                )
+            )
+            db.commit()
+        return found
 
     def end(self, session_id: str) -> None:
-        with self._lock:
-            self._sessions.pop(_digest(session_id), None)
-
-    def _drop_expired(self, now: float) -> None:
-        for digest in [k for k, s in self._sessions.items() if self._expired(s, now)]:
-            del self._sessions[digest]
+        with self._factory() as db:
+            table.end(db, _digest(session_id))
+            db.commit()

@@ -17,14 +17,10 @@ from fastapi.exceptions import RequestValidationError
 from fastapi.responses import HTMLResponse, RedirectResponse
 from fastapi.routing import APIRoute
 from jinja2 import Environment, PackageLoader, StrictUndefined, select_autoescape
-from sqlalchemy import exists, select
-from sqlalchemy.orm import Session, sessionmaker
 
 from service.console.sessions import ConsoleSession, SessionStore, same_token
 from service.errors import Forbidden, ServiceError, Unprocessable
 from service.settings import Settings
-from service.store.db import begin_read_only
-from service.store.models import ApiKey, KeyAction, KeyEvent
 
 PREFIX = "/console"
 SESSION_COOKIE = "evenhand_console"
@@ -61,7 +57,11 @@ def sessions_of(request: Request) -> SessionStore:
     store: SessionStore | None = getattr(request.app.state, "console_sessions", None)
     if store is None:  # first console request of this app
         settings: Settings = request.app.state.settings
-        store = SessionStore(settings.console_idle_minutes * 60, settings.console_max_hours * 3600)
+        store = SessionStore(
+            request.app.state.session_factory,
+            settings.console_idle_minutes * 60,
+            settings.console_max_hours * 3600,
+        )
         request.app.state.console_sessions = store
     return store
 
@@ -105,28 +105,14 @@ def redirect(url: str) -> RedirectResponse:
     return RedirectResponse(url, status_code=303)
 
 
-def _key_is_live(request: Request, key_id: int) -> bool:
-    factory: sessionmaker[Session] = request.app.state.session_factory
-    revoked = exists().where(
-        KeyEvent.key_id == ApiKey.id, KeyEvent.action == KeyAction.REVOKE.value
-    )
-    with factory() as session:
-        begin_read_only(session)
-        found = session.scalar(select(ApiKey.id).where(ApiKey.id == key_id, ~revoked))
-        session.rollback()
-    return found is not None
-
-
 def current_session(request: Request) -> ConsoleSession:
-    """The signed-in session (a dependency): the cookie's session, live, of a live key."""
+    """The signed-in session (a dependency): the cookie's session, live, of a live key.
+    A sync dependency: FastAPI runs it in the thread pool, off the event loop."""
     session_id = request.cookies.get(SESSION_COOKIE)
     if not session_id:
         raise SignInRequired
     found = sessions_of(request).get(session_id)
-    if found is None:
-        raise SignInRequired
-    if not _key_is_live(request, found.key_id):  # revoked since sign-in
-        sessions_of(request).end(session_id)
+    if found is None:  # unknown, expired, signed out, or its key revoked since sign-in
         raise SignInRequired
     return found
 
