@@ -35,15 +35,7 @@ def upgrade() -> None:
         ),
         sa.PrimaryKeyConstraint("id_hash", name=op.f("pk_console_sessions")),
     )
-    op.create_index(
-        op.f("ix_console_sessions_key_id"), "console_sessions", ["key_id"], unique=False
-    )
-    op.create_index(
-        op.f("ix_console_sessions_last_seen"), "console_sessions", ["last_seen"], unique=False
-    )
 
 
 def downgrade() -> None:
-    op.drop_index(op.f("ix_console_sessions_last_seen"), table_name="console_sessions")
-    op.drop_index(op.f("ix_console_sessions_key_id"), table_name="console_sessions")
     op.drop_table("console_sessions")

@@ -5,6 +5,9 @@ never yields a usable cookie), the key it was signed in with (id, name, role), i
 and its start and last request times. Unlike the log's tables this one is changed in place:
 ``last_seen`` moves on each request and rows are deleted at sign-out and expiry. These
 functions never commit (the console's request commits).
+
+No index beyond the primary key: a request finds its session by the hash; the purge of
+expired sessions at each sign-in scans a table holding one row per signed-in person.
 """
 
 from __future__ import annotations
@@ -21,12 +24,12 @@ class ConsoleSessionRow(Base):
     __tablename__ = "console_sessions"
 
     id_hash: Mapped[str] = mapped_column(String(64), primary_key=True)
-    key_id: Mapped[int] = mapped_column(ForeignKey("api_keys.id"), index=True)
+    key_id: Mapped[int] = mapped_column(ForeignKey("api_keys.id"))
     key_name: Mapped[str] = mapped_column(String(64))
     role: Mapped[str] = mapped_column(String(16))
     csrf: Mapped[str] = mapped_column(String(64))
     started_at: Mapped[datetime] = mapped_column(UTCDateTime)
-    last_seen: Mapped[datetime] = mapped_column(UTCDateTime, index=True)
+    last_seen: Mapped[datetime] = mapped_column(UTCDateTime)
 
 
 def add(session: Session, row: ConsoleSessionRow) -> None:
