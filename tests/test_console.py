@@ -173,6 +173,23 @@ def test_the_session_table_holds_no_usable_secret(
     assert (row.key_name, row.role) == ("admin-author", "admin")
 
 
+def test_signing_in_again_ends_the_earlier_session(
+    client: TestClient, tokens: dict[str, str]
+) -> None:
+    sign_in(client, tokens["admin"])
+    first = client.cookies["evenhand_console"]
+    sign_in(client, tokens["audit"])
+    assert client.cookies["evenhand_console"] != first
+    assert "auditor" in client.get("/console/policies").text
+    old = TestClient(client.app, cookies={"evenhand_console": first})
+    r = old.get("/console/policies", follow_redirects=False)
+    assert r.status_code == 303 and r.headers["location"] == "/console/sign-in"
+    current = TestClient(
+        client.app, cookies={"evenhand_console": client.cookies["evenhand_console"]}
+    )
+    assert current.get("/console/policies", follow_redirects=False).status_code == 200
+
+
 def test_expired_session_is_sent_to_sign_in(client: TestClient, tokens: dict[str, str]) -> None:
     sign_in(client, tokens["admin"])
     store = client.app.state.console_sessions  # type: ignore[attr-defined]

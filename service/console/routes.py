@@ -112,6 +112,9 @@ def sign_in(request: Request, form: PostedForm) -> Response:
         return _sign_in_page(
             request, 403, f"A {role!r} key cannot sign in: the console is for admin and audit keys."
         )
+    previous = request.cookies.get(SESSION_COOKIE)
+    if previous:  # signing in again (perhaps as someone else) ends the earlier session
+        sessions_of(request).end(previous)
     session_id = sessions_of(request).create(key_id, name, role)
     response = redirect(f"{PREFIX}/policies")
     set_cookie(request, response, SESSION_COOKIE, session_id)

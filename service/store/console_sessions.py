@@ -12,7 +12,7 @@ expired sessions at each sign-in scans a table holding one row per signed-in per
 
 from __future__ import annotations
 
-from datetime import datetime
+from datetime import datetime, timedelta
 
 from sqlalchemy import ForeignKey, String, delete, exists, or_, select
 from sqlalchemy.orm import Mapped, Session, mapped_column
@@ -37,11 +37,18 @@ def add(session: Session, row: ConsoleSessionRow) -> None:
     session.flush()
 
 
+TOUCH_EVERY = timedelta(seconds=30)
+"""``last_seen`` moves at most this often, so most console requests write nothing (on
+SQLite a write waits for, and holds up, the scoring path's writer); a session may therefore
+end up to this much earlier than its idle time says."""
+
+
 def live(
     session: Session, id_hash: str, now: datetime, idle_since: datetime, started_since: datetime
 ) -> ConsoleSessionRow | None:
     """The session if it is live (seen after ``idle_since``, started after ``started_since``)
-    and its key is not revoked; its ``last_seen`` becomes ``now``. A dead one is deleted."""
+    and its key is not revoked; its ``last_seen`` becomes ``now`` (at most every
+    ``TOUCH_EVERY``). A dead one is deleted."""
     row = session.get(ConsoleSessionRow, id_hash, with_for_update=True)
     if row is None:
         return None
@@ -55,8 +62,9 @@ def live(
         session.delete(row)
         session.flush()
         return None
-    row.last_seen = now
-    session.flush()
+    if now - row.last_seen >= TOUCH_EVERY:  # most requests only read
+        row.last_seen = now
+        session.flush()
     return row
 
 
