@@ -1,9 +1,10 @@
 """The console in a real browser: Debian's Chromium driven by Playwright against
 ``evenhand serve`` on a real port and a temporary SQLite database.
 
-An admin signs in, opens a policy's draft, approves it through the confirmation page and
-finds the approval in the history; the browser reports no console error on the way (a
-Content-Security-Policy violation is one). Skipped when Chromium or Playwright is missing,
+The draft's author is refused the approval (four-eyes) and a form stripped of its CSRF token
+is refused; a second admin signs in, opens the draft, approves it through the confirmation
+page and finds the approval in the history; the browser reports no console error on the
+way (a Content-Security-Policy violation is one). Skipped when Chromium or Playwright is missing,
 except under CI=true, where that fails.
 """
 
@@ -82,11 +83,30 @@ def test_admin_approves_a_draft_in_the_browser(
                 lambda r: errors.append(f"{r.status} {r.url}") if r.status >= 400 else None,
             )
 
-            page.goto(f"{server.base_url}/console")
-            assert page.url.endswith("/console/sign-in")
-            page.get_by_label("API key").fill(tokens["approver"])
-            page.get_by_role("button", name="Sign in").click()
-            page.wait_for_url("**/console/policies")
+            def sign_in(token: str) -> None:
+                page.goto(f"{server.base_url}/console")
+                assert page.url.endswith("/console/sign-in")
+                page.get_by_label("API key").fill(token)
+                page.get_by_role("button", name="Sign in").click()
+                page.wait_for_url("**/console/policies")
+
+            # The author cannot approve their own draft: the page shows the service's refusal.
+            sign_in(tokens["author"])
+            page.goto(f"{server.base_url}/console/policies/readmission/confirm/approve?version=1")
+            with page.expect_response(lambda r: r.request.method == "POST") as refused:
+                page.get_by_role("button", name="Confirm: Approve readmission v1").click()
+            assert refused.value.status == 403
+            assert "four-eyes rule" in page.get_by_role("alert").inner_text()
+            # A form whose CSRF token was taken out is refused too.
+            page.locator("input[name=csrf]").first.evaluate("e => e.remove()")
+            page.get_by_role("button", name="Sign out").click()
+            assert "CSRF" in page.get_by_role("alert").inner_text()
+            errors.clear()  # the two refusals above are expected 403s
+            page.goto(f"{server.base_url}/console/policies")
+            page.get_by_role("button", name="Sign out").click()
+            page.wait_for_url("**/console/sign-in")
+
+            sign_in(tokens["approver"])
 
             page.get_by_role("link", name="readmission").click()
             page.get_by_role("link", name="v1", exact=True).click()
