@@ -106,6 +106,10 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         warnings.router,
     ):
         app.include_router(router, responses=unavailable)
+    # The console for admins and auditors (server-rendered pages under /console).
+    from service.console.routes import router as console_router
+
+    app.include_router(console_router)
     app.include_router(metrics_router(settings.metrics_access), include_in_schema=False)
     app.state.request_metrics = RequestMetrics()
     app.state.db_metrics = DatabaseCollector(app.state)

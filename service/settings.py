@@ -124,6 +124,24 @@ class Settings(BaseSettings):
         "`evenhand log purge` may delete them; at least 6 (EU AI Act Art. 26(6))",
     )
 
+    console_idle_minutes: float = Field(
+        default=30.0,
+        gt=0,
+        le=24 * 60,
+        description="a console session ends after this many minutes without a request",
+    )
+    console_max_hours: float = Field(
+        default=8.0,
+        gt=0,
+        le=7 * 24,
+        description="a console session ends this many hours after sign-in, however active",
+    )
+    console_secure_cookie: bool = Field(
+        default=False,
+        description="always mark the console's cookies Secure (set it behind a TLS-terminating "
+        "proxy; requests that arrive over HTTPS get Secure cookies anyway)",
+    )
+
     @field_validator("retention_months")
     @classmethod
     def _long_enough(cls, value: int) -> int:

@@ -1,0 +1,1 @@
+"""The console: server-rendered pages for admins and auditors (docs/console.md)."""

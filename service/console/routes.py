@@ -1,0 +1,292 @@
+"""The console's pages: sign-in and sign-out, policies (admins act, auditors read), the
+confirmed lifecycle actions and the audit reports. See docs/console.md."""
+
+from __future__ import annotations
+
+import secrets
+from importlib.resources import files
+from typing import Annotated, Any
+
+from fastapi import APIRouter, Depends, Path, Request, Response
+from sqlalchemy.orm import Session, sessionmaker
+
+from service.console import actions
+from service.console.rule_view import describe_rule, rule_chart
+from service.console.sessions import ConsoleSession
+from service.console.web import (
+    CONSOLE_ROLES,
+    PREFIX,
+    SESSION_COOKIE,
+    SIGN_IN_COOKIE,
+    ConsoleRoute,
+    Form,
+    check_csrf,
+    clear_cookie,
+    current_session,
+    read_form,
+    redirect,
+    render,
+    require_admin,
+    sessions_of,
+    set_cookie,
+)
+from service.errors import Forbidden, NotFound, ServiceError
+from service.policy.document import PolicyDocument
+from service.store import keys, lifecycle
+from service.store import policies as repo
+from service.store.db import begin_read_only
+
+router = APIRouter(prefix=PREFIX, route_class=ConsoleRoute, include_in_schema=False)
+
+Who = Annotated[ConsoleSession, Depends(current_session)]
+PostedForm = Annotated[Form, Depends(read_form)]
+Name = Annotated[str, Path(pattern=r"^[a-z0-9][a-z0-9._-]{0,63}$")]
+Version = Annotated[int, Path(ge=1, le=2_147_483_647)]
+Month = Annotated[str, Path(pattern=r"^\d{4}-(0[1-9]|1[0-2])$")]
+
+_STATIC = files("service.console").joinpath("static")
+_STATIC_TYPES = {"console.css": "text/css", "icon.svg": "image/svg+xml"}
+
+
+def _read_session(request: Request) -> Session:
+    factory: sessionmaker[Session] = request.app.state.session_factory
+    session = factory()
+    begin_read_only(session)
+    return session
+
+
+def _write_session(request: Request) -> Session:
+    factory: sessionmaker[Session] = request.app.state.session_factory
+    return factory()
+
+
+# --- sign-in, sign-out, stylesheet -------------------------------------------------------
+
+
+@router.get("/static/{file}")
+def static_file(file: str) -> Response:
+    media_type = _STATIC_TYPES.get(file)
+    if media_type is None:
+        raise NotFound(f"no static file {file!r}")
+    return Response(
+        _STATIC.joinpath(file).read_text(encoding="utf-8"),
+        media_type=media_type,
+        headers={"Cache-Control": "max-age=3600"},
+    )
+
+
+@router.get("")
+def home(request: Request) -> Response:
+    session_id = request.cookies.get(SESSION_COOKIE)
+    signed_in = bool(session_id) and sessions_of(request).get(session_id or "") is not None
+    return redirect(f"{PREFIX}/policies" if signed_in else f"{PREFIX}/sign-in")
+
+
+def _sign_in_page(request: Request, status_code: int = 200, message: str | None = None) -> Response:
+    token = secrets.token_urlsafe(32)
+    response = render(
+        request, "sign_in.html", status_code, title="Sign in", csrf=token, message=message
+    )
+    set_cookie(request, response, SIGN_IN_COOKIE, token)
+    return response
+
+
+@router.get("/sign-in")
+def sign_in_form(request: Request) -> Response:
+    return _sign_in_page(request)
+
+
+@router.post("/sign-in")
+def sign_in(request: Request, form: PostedForm) -> Response:
+    # The sign-in form has no session yet: its CSRF token is the one set in its own cookie.
+    check_csrf(form, request.cookies.get(SIGN_IN_COOKIE))
+    token = form.get("api_key")
+    with _read_session(request) as session:
+        key = keys.authenticate(session, token) if keys.well_formed(token) else None
+        found = None if key is None else (key.id, key.name, key.role)
+        session.rollback()
+    if found is None:
+        return _sign_in_page(request, 401, "Unknown or revoked API key.")
+    key_id, name, role = found
+    if role not in CONSOLE_ROLES:
+        return _sign_in_page(
+            request, 403, f"A {role!r} key cannot sign in: the console is for admin and audit keys."
+        )
+    previous = request.cookies.get(SESSION_COOKIE)
+    if previous:  # signing in again (perhaps as someone else) ends the earlier session
+        sessions_of(request).end(previous)
+    session_id = sessions_of(request).create(key_id, name, role)
+    response = redirect(f"{PREFIX}/policies")
+    set_cookie(request, response, SESSION_COOKIE, session_id)
+    clear_cookie(request, response, SIGN_IN_COOKIE)
+    return response
+
+
+@router.post("/sign-out")
+def sign_out(request: Request, who: Who, form: PostedForm) -> Response:
+    check_csrf(form, who.csrf)
+    sessions_of(request).end(request.cookies.get(SESSION_COOKIE, ""))
+    response = redirect(f"{PREFIX}/sign-in")
+    clear_cookie(request, response, SESSION_COOKIE)
+    return response
+
+
+# --- policies ------------------------------------------------------------------------------
+
+
+@router.get("/policies")
+def policy_list(request: Request, who: Who) -> Response:
+    with _read_session(request) as session:
+        rows = []
+        for name in repo.policy_names(session):
+            state = repo.get_state(session, name)
+            rows.append(
+                {
+                    "name": name,
+                    "latest": repo.latest_version_number(session, name),
+                    "active": None if state is None else state.active_version,
+                    "shadow": None if state is None else state.shadow_version,
+                }
+            )
+    return render(request, "policies.html", who=who, title="Policies", policies=rows)
+
+
+@router.get("/policies/{name}")
+def policy_page(request: Request, who: Who, name: Name) -> Response:
+    with _read_session(request) as session:
+        views = repo.version_views(session, name)
+        if not views:
+            raise NotFound(f"no policy named {name!r}", code="unknown_policy")
+        state = repo.get_state(session, name)
+        events = lifecycle.history(session, name)
+        page = actions.policy_overview(name, views, state, events)
+    return render(request, "policy.html", who=who, title=name, page=page)
+
+
+@router.get("/policies/{name}/versions/{version}")
+def version_page(request: Request, who: Who, name: Name, version: Version) -> Response:
+    with _read_session(request) as session:
+        view = lifecycle.require_version(session, name, version)
+        state = repo.get_state(session, name)
+    document = PolicyDocument.model_validate(view.row.document)
+    score_range = (float(document.score_range[0]), float(document.score_range[1]))
+    rules = [
+        {
+            "group": group,
+            "sentence": describe_rule(rule),
+            "chart": rule_chart(rule, score_range),
+        }
+        for group, rule in document.rules.items()
+    ]
+    default = document.groups.fallback.default
+    if default is not None:
+        rules.append(
+            {
+                "group": "fallback (default rule)",
+                "sentence": describe_rule(default),
+                "chart": rule_chart(default, score_range),
+            }
+        )
+    return render(
+        request,
+        "version.html",
+        who=who,
+        title=f"{name} v{version}",
+        name=name,
+        view=view,
+        document=document,
+        rules=rules,
+        active=None if state is None else state.active_version,
+        shadow=None if state is None else state.shadow_version,
+    )
+
+
+# --- lifecycle actions (admin), each behind a confirmation page -----------------------------
+
+
+@router.get("/policies/{name}/confirm/{action}")
+def confirm_page(
+    request: Request, who: Who, name: Name, action: str, version: int | None = None
+) -> Response:
+    require_admin(who)
+    with _read_session(request) as session:
+        plan = actions.plan(session, name, action, version)
+    return render(request, "confirm.html", who=who, title=plan.title, plan=plan, error=None)
+
+
+@router.post("/policies/{name}/confirm/{action}")
+def perform(request: Request, who: Who, form: PostedForm, name: Name, action: str) -> Response:
+    check_csrf(form, who.csrf)
+    require_admin(who)
+    actor = keys.Actor(who.key_id, who.key_name)
+    try:
+        with _write_session(request) as session:
+            actions.perform(session, name, action, form, actor)
+            session.commit()
+    except ServiceError as exc:
+        # Shown on the confirmation page again, as read now, with the service's message.
+        with _read_session(request) as session:
+            try:
+                plan = actions.plan(session, name, action, form.optional_int("version"))
+            except ServiceError:
+                raise exc from None
+        return render(
+            request,
+            "confirm.html",
+            status_code=exc.status_code,
+            who=who,
+            title=plan.title,
+            plan=plan,
+            error=exc,
+        )
+    return redirect(f"{PREFIX}/policies/{name}")
+
+
+# --- reports (audit) -----------------------------------------------------------------------
+
+
+def _require_audit(who: ConsoleSession) -> None:
+    if who.role != "audit":
+        raise Forbidden(f"a {who.role!r} key may not read reports: they need an audit key")
+
+
+@router.get("/reports")
+def report_policies(request: Request, who: Who) -> Response:
+    _require_audit(who)
+    with _read_session(request) as session:
+        names = list(repo.policy_names(session))
+    return render(request, "reports.html", who=who, title="Reports", names=names)
+
+
+@router.get("/reports/{name}")
+def report_months(request: Request, who: Who, name: Name) -> Response:
+    from service.audit.reports import list_reports
+
+    _require_audit(who)
+    with _read_session(request) as session:
+        listing: dict[str, Any] = list_reports(session, name)
+    months = list(reversed(listing["months"]))
+    return render(
+        request, "report_months.html", who=who, title=f"Reports: {name}", name=name, months=months
+    )
+
+
+REPORT_CSP = (
+    "default-src 'none'; style-src 'unsafe-inline'; img-src data:; frame-ancestors 'none'; "
+    "base-uri 'none'; form-action 'none'; sandbox"
+)
+
+
+@router.get("/reports/{name}/{month}/{kind}")
+def report_file(
+    request: Request, who: Who, name: Name, month: Month, kind: str, snapshot: int | None = None
+) -> Response:
+    from service.audit.month import Month as AuditMonth
+    from service.audit.reports import get_snapshot
+
+    _require_audit(who)
+    if kind not in ("report.html", "report.json", "report.csv"):
+        raise NotFound("no such report file: report.html, report.json or report.csv")
+    with _read_session(request) as session:
+        content = get_snapshot(session, name, AuditMonth.parse(month), snapshot, "published")
+    return actions.report_response(content, name, month, kind, REPORT_CSP)
