@@ -245,8 +245,8 @@ def run(args: argparse.Namespace) -> int:
                 **options,
             )
             if spread.used < 2:
-                first = spread.failures[0] if spread.failures else "no resample succeeded"
-                raise DeriveError(f"the bootstrap of the promises failed: {first}")
+                why = spread.failures[0] if spread.failures else "no resample succeeded"
+                raise DeriveError(f"the bootstrap of the promises failed: {why}")
         policy = build_document(prepared, solution, cross, identity, spread)
         front = frontier(prepared, criterion, FRONTIER_TOLERANCES, **options)
     except DeriveError as exc:

@@ -138,4 +138,3 @@ def bootstrap_errors(
                 float(np.std(column, ddof=1)) if len(column) >= MIN_DEFINED else None
             )
     return PromiseSpread(resamples, int(ok.sum()), errors, failures)
-
