@@ -76,6 +76,53 @@ def resample_rows(group_codes: IntpArray, n_groups: int, rng: np.random.Generato
     return np.concatenate(parts).astype(np.intp) if parts else np.zeros(0, dtype=np.intp)
 
 
+Statistic = Callable[[IntpArray, np.random.Generator], "dict[str, FloatArray] | str"]
+"""Rates per group (arrays indexed like the group keys, NaN where undefined) of one resample,
+given its rows and its generator; or why it failed."""
+
+
+def bootstrap_standard_errors(
+    group_codes: IntpArray,
+    group_keys: list[str],
+    statistic: Statistic,
+    names: tuple[str, ...],
+    *,
+    resamples: int,
+    seed: int,
+    progress: Callable[[int, int], None] | None = None,
+) -> PromiseSpread:
+    """The standard deviation over ``resamples`` within-group resamples of each of
+    ``statistic``'s rates, per group (None where fewer than MIN_DEFINED values)."""
+    if resamples < 2:
+        raise DeriveError(f"resamples must be at least 2, got {resamples}", "resamples")
+    n_groups = len(group_keys)
+    values = {name: np.full((resamples, n_groups), np.nan) for name in names}
+    ok = np.zeros(resamples, dtype=bool)
+    failures: list[str] = []
+    for b in range(resamples):
+        rng = np.random.default_rng([seed, b])
+        rows = resample_rows(group_codes, n_groups, rng)
+        result = statistic(rows, rng)
+        if isinstance(result, str):
+            failures.append(f"resample {b + 1}: {result}")
+        else:
+            ok[b] = True
+            for name in names:
+                values[name][b] = result[name]
+        if progress is not None:
+            progress(b + 1, resamples)
+    errors: dict[str, dict[str, float | None]] = {}
+    for g, key in enumerate(group_keys):
+        errors[key] = {}
+        for name in names:
+            column = values[name][ok, g]
+            column = column[~np.isnan(column)]
+            errors[key][name] = (
+                float(np.std(column, ddof=1)) if len(column) >= MIN_DEFINED else None
+            )
+    return PromiseSpread(resamples, int(ok.sum()), errors, failures)
+
+
 def bootstrap_errors(
     prepared: Prepared,
     criterion: Criterion,
@@ -94,21 +141,12 @@ def bootstrap_errors(
     engine defect, :class:`InternalDeriveError`) is left out and its reason kept in
     ``failures``; the errors come from the resamples that succeeded.
     """
-    if resamples < 2:
-        raise DeriveError(f"resamples must be at least 2, got {resamples}", "resamples")
     data = prepared.data
-    keys = list(data.group_keys)
-    n_groups = len(keys)
-    values = {name: np.full((resamples, n_groups), np.nan) for name in PROMISED_RATES}
-    ok = np.zeros(resamples, dtype=bool)
-    failures: list[str] = []
-    for b in range(resamples):
-        rng = np.random.default_rng([seed, b])
-        rows = resample_rows(data.group_codes, n_groups, rng)
+
+    def cross_fitted(rows: IntpArray, rng: np.random.Generator) -> dict[str, FloatArray] | str:
         split = assign_folds(data, n_folds, int(rng.integers(0, 2**62)))
-        sample = data.subset(rows)
         try:
-            fitted = prepare(sample, prepared.settings, assignment=prepared.rule_key_of)
+            fitted = prepare(data.subset(rows), prepared.settings, assignment=prepared.rule_key_of)
             result = cross_fit(
                 fitted,
                 [criterion],
@@ -119,22 +157,17 @@ def bootstrap_errors(
                 reference_group=reference_group,
             )[criterion]
         except (DeriveError, InternalDeriveError) as exc:
-            result = DeriveError(str(exc))
+            return str(exc)
         if isinstance(result, DeriveError):
-            failures.append(f"resample {b + 1}: {result.message}")
-        else:
-            ok[b] = True
-            for name, rates in promised_rates(result).items():
-                values[name][b] = rates
-        if progress is not None:
-            progress(b + 1, resamples)
-    errors: dict[str, dict[str, float | None]] = {}
-    for g, key in enumerate(keys):
-        errors[key] = {}
-        for name in PROMISED_RATES:
-            column = values[name][ok, g]
-            column = column[~np.isnan(column)]
-            errors[key][name] = (
-                float(np.std(column, ddof=1)) if len(column) >= MIN_DEFINED else None
-            )
-    return PromiseSpread(resamples, int(ok.sum()), errors, failures)
+            return result.message
+        return promised_rates(result)
+
+    return bootstrap_standard_errors(
+        data.group_codes,
+        list(data.group_keys),
+        cross_fitted,
+        PROMISED_RATES,
+        resamples=resamples,
+        seed=seed,
+        progress=progress,
+    )

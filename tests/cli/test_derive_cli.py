@@ -292,3 +292,29 @@ def test_demo_data_is_reproducible(tmp_path: Path) -> None:
         "case_id,community,language,score,readmitted,discharged_at"
     )
     assert len(a.read_text().splitlines()) == 301
+
+
+def test_resamples_store_standard_errors_and_zero_skips_them(
+    demo_csv: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    first, second, third = tmp_path / "a", tmp_path / "b", tmp_path / "c"
+    for d in (first, second, third):
+        d.mkdir()
+    assert main(_argv(demo_csv, first, "--resamples", "12", "--resamples-seed", "3")) == 0
+    assert "resample 12 of 12" in capsys.readouterr().err
+    policy = PolicyDocument.model_validate_json((first / "policy.json").read_text())
+    assert policy.targets is not None and policy.targets.resamples == 12
+    for target in policy.targets.groups.values():
+        assert target.standard_errors is not None and target.standard_errors.tpr is not None
+    report = json.loads((first / "report.json").read_text())
+    assert report["resamples"] == {"asked": 12, "used": 12, "seed": 3, "stratified_by": ["group"]}
+    # Seeded: the same run writes the same document.
+    assert main(_argv(demo_csv, second, "--resamples", "12", "--resamples-seed", "3")) == 0
+    assert (first / "policy.json").read_bytes() == (second / "policy.json").read_bytes()
+    assert main(_argv(demo_csv, third, "--resamples", "0")) == 0
+    plain = PolicyDocument.model_validate_json((third / "policy.json").read_text())
+    assert plain.targets is not None and plain.targets.resamples is None
+    assert all(t.standard_errors is None for t in plain.targets.groups.values())
+    assert json.loads((third / "report.json").read_text())["resamples"] is None
+    assert main(_argv(demo_csv, tmp_path, "--resamples", "1")) == 2
+    assert "--resamples 1" in capsys.readouterr().err
