@@ -30,7 +30,7 @@ rates as fixed numbers, no ``out_of_sample``), where the exact binomial tests ke
 The months of one policy share its promise errors, so intervals are over policies (the mean of
 the per-policy shares, +- 1.96 standard errors), not over months.
 
-    .venv/bin/python benchmarks/sim_promise_size.py [--seed N] [--policies 300] [--months 10]
+    .venv/bin/python benchmarks/sim_promise_size.py [--seed N] [--policies 100] [--months 10]
         [--truth-rows 4000000] [--resamples 100] [--workers 1] [--quick] [--json out.json]
 """
 
@@ -265,7 +265,7 @@ def _derive_one(seed: int) -> Derived | str:
 def main(argv: Sequence[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--seed", type=int, default=DEFAULT_SEED, help="base seed")
-    parser.add_argument("--policies", type=int, default=300, help="derived policies")
+    parser.add_argument("--policies", type=int, default=100, help="derived policies")
     parser.add_argument("--months", type=int, default=10, help="months per policy and row")
     parser.add_argument("--truth-rows", type=int, default=4_000_000, help="fresh rows")
     parser.add_argument(
