@@ -4,7 +4,9 @@
 For each of ``--policies`` calibration samples of 20,000 rows from the demo generator (seeds
 ``--seed + 1``, ... as in ``sim_promises.py``), an equal-opportunity policy is derived exactly
 as ``sim_promises.py`` derives it (``prepare`` + ``solve``, promises cross-fitted, the
-document from ``build_document``, with its two-sample promises ``out_of_sample``). Each derived
+document from ``build_document``, with its two-sample promises ``out_of_sample``), and its
+promises bootstrapped as ``evenhand derive`` does (``bootstrap_errors``, ``--resamples``
+resamples) for their ``standard_errors``. Each derived
 policy's TRUE rates are its rules' expected rates on ``--truth-rows`` fresh rows of the same
 generator. In the generator a case's language is drawn independently of its score and outcome
 given its community, so every group's truth is computed on all fresh rows of its community
@@ -24,9 +26,11 @@ the derived document (``version_checks`` + ``decide``, Holm, level 0.05), in two
 
 An error is a ``breach`` on a check whose true quantity is inside its band or on its edge: every
 promise check, and a parity check whose true TPR gap is at most the tolerance (most derived
-policies have true gaps beyond it, ``sim_promises.py``; a breach of those is right). For
-contrast the same months are audited against the same document with EXACT promises (the true
-rates as fixed numbers, no ``out_of_sample``), where the exact binomial tests keep the level.
+policies have true gaps beyond it, ``sim_promises.py``; a breach of those is right). The
+same months are audited three ways: the document as derived (the promise checks widened by
+the design effect of the standard errors), the same without ``standard_errors`` (the promise a
+binomial sample of its counts, as before the fix) and with EXACT promises (the true rates as
+fixed numbers, no ``out_of_sample``), where the exact binomial tests keep the level.
 The months of one policy share its promise errors, so intervals are over policies (the mean of
 the per-policy shares, +- 1.96 standard errors), not over months.
 
