@@ -4,7 +4,9 @@
 For each of ``--policies`` calibration samples of 20,000 rows from the demo generator (seeds
 ``--seed + 1``, ... as in ``sim_promises.py``), an equal-opportunity policy is derived exactly
 as ``sim_promises.py`` derives it (``prepare`` + ``solve``, promises cross-fitted, the
-document from ``build_document``, with its two-sample promises ``out_of_sample``). Each derived
+document from ``build_document``, with its two-sample promises ``out_of_sample``), and its
+promises bootstrapped as ``evenhand derive`` does (``bootstrap_errors``, ``--resamples``
+resamples) for their ``standard_errors``. Each derived
 policy's TRUE rates are its rules' expected rates on ``--truth-rows`` fresh rows of the same
 generator. In the generator a case's language is drawn independently of its score and outcome
 given its community, so every group's truth is computed on all fresh rows of its community
@@ -24,14 +26,16 @@ the derived document (``version_checks`` + ``decide``, Holm, level 0.05), in two
 
 An error is a ``breach`` on a check whose true quantity is inside its band or on its edge: every
 promise check, and a parity check whose true TPR gap is at most the tolerance (most derived
-policies have true gaps beyond it, ``sim_promises.py``; a breach of those is right). For
-contrast the same months are audited against the same document with EXACT promises (the true
-rates as fixed numbers, no ``out_of_sample``), where the exact binomial tests keep the level.
+policies have true gaps beyond it, ``sim_promises.py``; a breach of those is right). The
+same months are audited three ways: the document as derived (the promise checks widened by
+the design effect of the standard errors), the same without ``standard_errors`` (the promise a
+binomial sample of its counts, as before the fix) and with EXACT promises (the true rates as
+fixed numbers, no ``out_of_sample``), where the exact binomial tests keep the level.
 The months of one policy share its promise errors, so intervals are over policies (the mean of
 the per-policy shares, +- 1.96 standard errors), not over months.
 
-    .venv/bin/python benchmarks/sim_promise_size.py [--seed N] [--policies 300] [--months 10]
-        [--truth-rows 4000000] [--quick] [--json out.json]
+    .venv/bin/python benchmarks/sim_promise_size.py [--seed N] [--policies 100] [--months 10]
+        [--truth-rows 4000000] [--resamples 100] [--workers 1] [--quick] [--json out.json]
 """
 
 from __future__ import annotations
@@ -39,6 +43,7 @@ from __future__ import annotations
 import argparse
 import json
 import math
+import multiprocessing
 import sys
 import time
 from collections.abc import Mapping, Sequence
@@ -77,7 +82,9 @@ from service.policy.crossfit import DEFAULT_FOLDS, DEFAULT_FOLDS_SEED, assign_fo
 from service.policy.derive import solve
 from service.policy.derive_document import build_document
 from service.policy.document import GROUP_SEPARATOR, AuditPlan, PolicyDocument, resolve_rule_key
+from service.policy.promise_spread import bootstrap_errors
 from service.policy.units import DeriveError, prepare
+from service.stats.proportions import wilson_interval
 
 LEVEL = 0.05
 VOLUMES = (2000, 20_000, 200_000)
@@ -102,11 +109,13 @@ class Rates:
 
 @dataclass(frozen=True)
 class Derived:
-    """A derived policy: its document (two-sample promises), the same with exact promises at
-    the true rates, and every group's true rates."""
+    """A derived policy: its document (two-sample promises with bootstrap standard errors),
+    the same without the standard errors (the promise as a binomial sample of its counts, as
+    before), the same with exact promises at the true rates, and every group's true rates."""
 
     seed: int
     two_sample: PolicyDocument
+    binomial: PolicyDocument
     exact: PolicyDocument
     truth: dict[str, Rates]
 
@@ -130,7 +139,7 @@ def community_populations(rows: int) -> dict[str, Population]:
     }
 
 
-def derive(seed: int, truth: Mapping[str, Population]) -> Derived:
+def derive(seed: int, truth: Mapping[str, Population], resamples: int = 100) -> Derived:
     data = calibration_data(ROWS, seed)
     prepared = prepare(data, SETTINGS)
     solution = solve(prepared, CRITERION, TOLERANCE)
@@ -138,7 +147,8 @@ def derive(seed: int, truth: Mapping[str, Population]) -> Derived:
     cross = cross_fit(prepared, [CRITERION], folds, DEFAULT_FOLDS, TOLERANCE)[CRITERION]
     if isinstance(cross, DeriveError):
         raise cross
-    doc = build_document(prepared, solution, cross, IDENTITY)
+    spread = bootstrap_errors(prepared, CRITERION, TOLERANCE, DEFAULT_FOLDS, resamples=resamples)
+    doc = build_document(prepared, solution, cross, IDENTITY, spread)
     assert doc.targets is not None
     rates: dict[str, Rates] = {}
     for key in doc.targets.groups:
@@ -149,10 +159,21 @@ def derive(seed: int, truth: Mapping[str, Population]) -> Derived:
         n_pos, n_neg = len(population.positives), len(population.negatives)
         rates[key] = Rates(r["tpr"], r["fpr"], n_pos / (n_pos + n_neg))
     raw = doc.model_dump(mode="json")
+    binomial = json.loads(json.dumps(raw))
+    binomial["targets"].pop("resamples")
+    for target in binomial["targets"]["groups"].values():
+        target.pop("standard_errors")
     for key, target in raw["targets"]["groups"].items():
         target.update(tpr=rates[key].tpr, fpr=rates[key].fpr, action_rate=rates[key].action_rate)
         target.pop("out_of_sample")
-    return Derived(seed, doc, PolicyDocument.model_validate(raw), rates)
+        target.pop("standard_errors")
+    return Derived(
+        seed,
+        doc,
+        PolicyDocument.model_validate(binomial),
+        PolicyDocument.model_validate(raw),
+        rates,
+    )
 
 
 def at_the_edge(truth: Mapping[str, Rates]) -> dict[str, Rates]:
@@ -214,6 +235,14 @@ def audit(
     return false_breaches(decided, truth, settings.reference_group)
 
 
+def wilson(shares: Sequence[float], months: int) -> str:
+    """Share of all months, with its Wilson 95% interval (months taken as independent)."""
+    hits = round(sum(shares) * months)
+    total = len(shares) * months
+    low, high = wilson_interval(hits, total)
+    return f"{hits / total:.4f} [{low:.4f}, {high:.4f}]"
+
+
 def interval(shares: Sequence[float]) -> str:
     """Mean of per-policy shares with a normal 95% interval over policies."""
     a = np.asarray(shares, dtype=float)
@@ -222,30 +251,57 @@ def interval(shares: Sequence[float]) -> str:
     return f"{mean:.4f} [{max(0.0, mean - half):.4f}, {min(1.0, mean + half):.4f}]"
 
 
+_SHARED: dict[str, Any] = {}
+"""The fresh rows and settings every derivation reads (set before the worker processes fork)."""
+
+
+def _derive_one(seed: int) -> Derived | str:
+    """One derived policy, or why it could not be derived."""
+    t0 = time.perf_counter()
+    try:
+        out: Derived | str = derive(seed, _SHARED["populations"], _SHARED["resamples"])
+    except (DeriveError, RuntimeError) as exc:
+        out = f"{type(exc).__name__}: {exc}"
+    print(f"derived seed {seed} in {time.perf_counter() - t0:.1f} s", file=sys.stderr, flush=True)
+    return out
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--seed", type=int, default=DEFAULT_SEED, help="base seed")
-    parser.add_argument("--policies", type=int, default=300, help="derived policies")
+    parser.add_argument("--policies", type=int, default=100, help="derived policies")
     parser.add_argument("--months", type=int, default=10, help="months per policy and row")
     parser.add_argument("--truth-rows", type=int, default=4_000_000, help="fresh rows")
+    parser.add_argument(
+        "--resamples", type=int, default=100, help="bootstrap resamples per derived policy"
+    )
+    parser.add_argument("--workers", type=int, default=1, help="processes deriving policies")
     parser.add_argument("--quick", action="store_true", help="a few policies (smoke run)")
     parser.add_argument("--json", type=Path, default=None, help="also write the figures here")
     args = parser.parse_args(argv)
     policies = 3 if args.quick else args.policies
     months = 2 if args.quick else args.months
     truth_rows = 200_000 if args.quick else args.truth_rows
+    resamples = 5 if args.quick else args.resamples
     print(machine_header("benchmarks/sim_promise_size.py", list(argv or sys.argv[1:]), args.seed))
     started = time.perf_counter()
     populations = community_populations(truth_rows)
     truth_seconds = time.perf_counter() - started
     derived: list[Derived] = []
     failed: list[dict[str, Any]] = []
-    for i in range(policies):
-        seed = args.seed + 1 + i
-        try:
-            derived.append(derive(seed, populations))
-        except (DeriveError, RuntimeError) as exc:
-            failed.append({"seed": seed, "error": f"{type(exc).__name__}: {exc}"})
+    seeds = [args.seed + 1 + i for i in range(policies)]
+    _SHARED["populations"] = populations
+    _SHARED["resamples"] = resamples
+    if args.workers > 1:
+        with multiprocessing.get_context("fork").Pool(args.workers) as pool:
+            outcomes = pool.map(_derive_one, seeds, chunksize=1)
+    else:
+        outcomes = [_derive_one(seed) for seed in seeds]
+    for seed, outcome in zip(seeds, outcomes, strict=True):
+        if isinstance(outcome, str):
+            failed.append({"seed": seed, "error": outcome})
+        else:
+            derived.append(outcome)
     derive_seconds = time.perf_counter() - started - truth_seconds
     print(
         f"\n{len(derived)} of {policies} calibration samples of {ROWS:,} rows derived; truth "
@@ -257,26 +313,29 @@ def main(argv: Sequence[str] | None = None) -> int:
         "seed": args.seed,
         "policies": len(derived),
         "months": months,
+        "resamples": resamples,
         "failed": failed,
         "rows": [],
     }
     print(
         f"\n## Any false breach in a month (Holm, level {LEVEL}; {months} months per policy and "
-        f"row; mean of per-policy shares [95% interval over {len(derived)} policies])\n"
+        f"row, {len(derived)} policies, {resamples} bootstrap resamples each; share of months "
+        "[Wilson 95%], and the mean of per-policy shares [normal 95% interval over policies])\n"
     )
     print(
-        "| volume | truth | cross-fitted promises: any false breach | of a TPR promise | of an "
-        "FPR promise | of an action-rate promise | exact promises (the true rates): any false "
-        "breach | design bound |"
+        "| volume | truth | widened by the design effect: any false breach [Wilson] | "
+        "[over policies] | of a TPR promise | of an FPR promise | of an action-rate promise | "
+        "binomial promises (before): any false breach [Wilson] | [over policies] | "
+        "exact promises (the true rates): any false breach [Wilson] | design bound |"
     )
-    print("|---|---|---|---|---|---|---|---|")
+    print("|---|---|---|---|---|---|---|---|---|---|---|")
     index = 0
     for volume in VOLUMES:
         for scenario in SCENARIOS:
             t0 = time.perf_counter()
             rng = np.random.default_rng([args.seed, 1, index])
             index += 1
-            shares: dict[str, list[float]] = {k: [] for k in ("any", *RATES, "exact")}
+            shares: dict[str, list[float]] = {k: [] for k in ("any", *RATES, "binomial", "exact")}
             for d in derived:
                 truth = d.truth if scenario == "truth" else at_the_edge(d.truth)
                 tally = dict.fromkeys(shares, 0)
@@ -286,6 +345,7 @@ def main(argv: Sequence[str] | None = None) -> int:
                     tally["any"] += anything
                     for rate in RATES:
                         tally[rate] += by_rate[rate]
+                    tally["binomial"] += audit(d.binomial, cells, truth)[0]
                     tally["exact"] += audit(d.exact, cells, truth)[0]
                 for k in shares:
                     shares[k].append(tally[k] / months)
@@ -297,9 +357,11 @@ def main(argv: Sequence[str] | None = None) -> int:
             }
             results["rows"].append(row)
             print(
-                f"| {volume:,} | {scenario} | {interval(shares['any'])} | "
-                f"{interval(shares['tpr'])} | {interval(shares['fpr'])} | "
-                f"{interval(shares['action_rate'])} | {interval(shares['exact'])} | {LEVEL} |",
+                f"| {volume:,} | {scenario} | {wilson(shares['any'], months)} | "
+                f"{interval(shares['any'])} | {wilson(shares['tpr'], months)} | "
+                f"{wilson(shares['fpr'], months)} | {wilson(shares['action_rate'], months)} | "
+                f"{wilson(shares['binomial'], months)} | {interval(shares['binomial'])} | "
+                f"{wilson(shares['exact'], months)} | {LEVEL} |",
                 flush=True,
             )
     elapsed = time.perf_counter() - started

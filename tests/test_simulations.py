@@ -191,10 +191,11 @@ def test_sim_promise_size_reports_false_breaches_by_volume_and_scenario(
     assert [(r[0], r[1]) for r in rows] == [
         (v, s) for v in ("2,000", "20,000", "200,000") for s in ("truth", "at the edge")
     ]
-    assert all(len(r) == 8 for r in rows)
+    assert all(len(r) == 11 for r in rows)
+    assert figures["resamples"] >= 2
     for row in figures["rows"]:
         shares = row["per_policy"]
-        assert len(shares["any"]) == figures["policies"] > 0
+        assert len(shares["any"]) == len(shares["binomial"]) == figures["policies"] > 0
         for name in ("tpr", "fpr", "action_rate"):  # a promise breach is a false breach
             assert all(a >= b for a, b in zip(shares["any"], shares[name], strict=True))
     assert "run time" in text and "seed" in text

@@ -281,3 +281,90 @@ def test_the_strictest_plan_governs_a_month_with_several_versions() -> None:
     )
     assert (plan.level, plan.multiplicity) == (0.05, "holm")
     assert (plan.maturity_share, plan.maturity_days) == (0.9, 60)
+
+
+def _with_errors(counts: dict[str, float], errors: dict[str, float] | None) -> PolicyDocument:
+    data = document().model_dump(mode="json", by_alias=True, exclude_none=True)
+    data["targets"]["groups"]["b"]["out_of_sample"] = counts
+    if errors is not None:
+        data["targets"]["groups"]["b"]["standard_errors"] = errors
+        data["targets"]["resamples"] = 100
+    return PolicyDocument.model_validate(data)
+
+
+def test_promises_with_standard_errors_count_their_effective_sample_size() -> None:
+    counts = {"n": 2000, "positives": 400, "tp": 281.5, "fp": 320.25}
+    doc = _with_errors(counts, {"action_rate": 0.02, "tpr": 0.04, "fpr": 0.01})
+    checks, _ = run(doc, BASE)
+    c = find(checks, CheckKind.PROMISE, "tpr", "b")
+    assert c.evidence is not None and c.evidence.procedure is Procedure.SCORE_DIFFERENCE_WIDENED
+    # Rao & Scott 1992 (Biometrics 48:577-585): the promise p = 281.5 / 400 with standard
+    # error 0.04 counts as p (1 - p) / 0.04^2 binomial cases (design effect
+    # 0.04^2 / (p (1 - p) / 400) = 3.07 > 1), its count p times that.
+    p = 281.5 / 400
+    n_eff = p * (1 - p) / 0.04**2
+    assert 400 / n_eff > 1
+    outside, inside = outside_and_inside(207, 300, p * n_eff, n_eff)
+    assert c.evidence.p_outside == pytest.approx(outside, rel=1e-6)
+    assert c.evidence.p_inside == pytest.approx(inside, rel=1e-6)
+    # Wider than the binomial second sample of the same counts: less evidence either way.
+    plain = find(run(_with_errors(counts, None), BASE)[0], CheckKind.PROMISE, "tpr", "b")
+    assert plain.evidence is not None and plain.evidence.procedure is Procedure.SCORE_DIFFERENCE
+    assert c.evidence.p_outside >= plain.evidence.p_outside
+    assert c.evidence.p_inside > plain.evidence.p_inside
+    # The band stays centred on the promise; the interval widens.
+    assert c.band.low == pytest.approx(p - EPS)
+    assert c.low is not None and plain.low is not None and c.low < plain.low
+
+
+def test_the_widened_test_matches_statsmodels_with_an_effective_sample_size() -> None:
+    # A month that acted on every case of b (1500 of 1500) against a promised action rate of
+    # 0.97 over 2000 calibration rows with a bootstrap standard error of 0.01. statsmodels'
+    # score test (test_proportions_2indep, method="score", correction=True: Miettinen &
+    # Nurminen 1985) is right when its second sample has no failures (its issue 10269), so
+    # the samples are swapped there: p1 - p2 vs +-eps is p2 - p1 vs -+eps.
+    counts = {"n": 2000, "positives": 400, "tp": 400.0, "fp": 1540.0}
+    doc = _with_errors(counts, {"action_rate": 0.01})
+    month = cells(
+        a=(4000, 1200, 4000, 800, 560, 640),
+        b=(1500, 1500, 1500, 300, 300, 1200),
+        c=(300, 105, 300, 60, 41, 64),
+    )
+    checks, _ = run(doc, month)
+    c = find(checks, CheckKind.PROMISE, "action_rate", "b")
+    assert c.evidence is not None and c.evidence.procedure is Procedure.SCORE_DIFFERENCE_WIDENED
+    p = 1940 / 2000
+    n_eff = p * (1 - p) / 0.01**2  # 2000 / design effect 6.87 (Rao & Scott 1992)
+
+    def sm(value: float, alternative: str) -> float:
+        res = sm_proportion.test_proportions_2indep(
+            p * n_eff, n_eff, 1500, 1500, value=value, method="score", compare="diff",
+            alternative=alternative, correction=True,
+        )  # fmt: skip
+        return float(res.pvalue)
+
+    above, below = sm(-EPS, "smaller"), sm(EPS, "larger")
+    inside = max(sm(EPS, "smaller"), sm(-EPS, "larger"))
+    assert c.evidence.p_outside == pytest.approx(min(1.0, 2 * min(above, below)), rel=1e-6)
+    assert c.evidence.p_inside == pytest.approx(inside, rel=1e-6)
+
+
+def test_a_standard_error_below_the_binomial_one_changes_nothing() -> None:
+    # The design effect is never below 1: a bootstrap spread smaller than the binomial one
+    # (sampling noise of the bootstrap) does not make the promise count more than its rows.
+    counts = {"n": 2000, "positives": 400, "tp": 281.5, "fp": 320.25}
+    tiny = {"action_rate": 1e-4, "tpr": 1e-4, "fpr": 1e-4}
+    widened = run(_with_errors(counts, tiny), BASE)[0]
+    plain = run(_with_errors(counts, None), BASE)[0]
+    for metric in ("action_rate", "tpr", "fpr"):
+        a = find(widened, CheckKind.PROMISE, metric, "b").evidence
+        b = find(plain, CheckKind.PROMISE, metric, "b").evidence
+        assert a is not None and b is not None
+        assert (a.p_outside, a.p_inside) == (b.p_outside, b.p_inside)
+
+
+def test_standard_errors_need_out_of_sample_counts() -> None:
+    data = document().model_dump(mode="json", by_alias=True, exclude_none=True)
+    data["targets"]["groups"]["b"]["standard_errors"] = {"tpr": 0.02}
+    with pytest.raises(ValueError, match="need out_of_sample"):
+        PolicyDocument.model_validate(data)

@@ -9,7 +9,11 @@ A *check* compares one quantity with the band a policy version promised for it:
   derived under the four-fifths criterion; band ``[0.8, inf)`` (29 CFR 1607.4(D)).
 - ``promise``: a group's realized action rate, TPR and FPR minus the rates the version promised
   for it; band ``[-eps, +eps]``. With out-of-sample calibration counts stored in the version the
-  promise is a second sample; without them it is taken as an exact number.
+  promise is a second sample; without them it is taken as an exact number. With bootstrap
+  standard errors of the promise too (``standard_errors``), that second sample counts as its
+  effective size: its denominator divided by the design effect, the bootstrap variance over
+  the binomial one, at least 1 (Rao & Scott 1992, Biometrics 48:577-585), so the spread a
+  cross-fitted promise has beyond a binomial proportion widens the test.
 
 Each tested check has two p-values (``service.stats``): one whose rejection shows the quantity
 INSIDE its band (two one-sided tests, Schuirmann 1987) and one whose rejection shows it OUTSIDE
@@ -38,6 +42,7 @@ from enum import StrEnum
 from service.audit.realized import CellCounts, Favourable, Observability, fraction_of, identifiable
 from service.audit.version_settings import VersionSettings
 from service.policy.document import AuditPlan, Criterion, GroupTarget, PolicyDocument
+from service.stats.design_effect import effective_counts
 from service.stats.differences import difference_evidence
 from service.stats.margins import MarginEvidence
 from service.stats.multiplicity import Method, adjust_p_values
@@ -85,6 +90,7 @@ class CheckKind(StrEnum):
 
 class Procedure(StrEnum):
     SCORE_DIFFERENCE = "score-difference"
+    SCORE_DIFFERENCE_WIDENED = "score-difference-widened"
     EXACT_BINOMIAL = "exact-binomial"
     LOG_RATIO = "log-ratio"
 
@@ -93,6 +99,12 @@ PROCEDURES: dict[Procedure, str] = {
     Procedure.SCORE_DIFFERENCE: (
         "difference of two proportions: Miettinen-Nurminen score tests (Miettinen & Nurminen "
         "1985) against the edges of the tolerance band"
+    ),
+    Procedure.SCORE_DIFFERENCE_WIDENED: (
+        "realized minus a cross-fitted promise with a bootstrap standard error: "
+        "Miettinen-Nurminen score tests against the edges of the tolerance band, the promise "
+        "counted as a binomial sample of its effective size, its out-of-sample denominator "
+        "divided by its design effect (Rao & Scott 1992)"
     ),
     Procedure.EXACT_BINOMIAL: (
         "one proportion against a fixed promised rate: exact binomial tests against the edges "
@@ -353,19 +365,24 @@ def _promise_checks(
                 )
                 continue
             kc, nc = calibration
-            d_low, d_high = newcombe_difference_interval(k1, n1, kc, nc)
-            evidence = _evidence(
-                Procedure.SCORE_DIFFERENCE, difference_evidence(k1, n1, kc, nc, eps)
+            promise = kc / nc
+            ke, ne, _ = effective_counts(kc, nc, _standard_error(target, metric))
+            procedure = (
+                Procedure.SCORE_DIFFERENCE
+                if target.standard_errors is None
+                else Procedure.SCORE_DIFFERENCE_WIDENED
             )
+            d_low, d_high = newcombe_difference_interval(k1, n1, ke, ne)
+            evidence = _evidence(procedure, difference_evidence(k1, n1, ke, ne, eps))
             # The estimate is the realized rate; its interval is the promise plus the Newcombe
             # interval of (realized - promised), so both samples' uncertainty shows.
             checks.append(
                 replace(
                     base,
-                    band=Band(kc / nc - eps, kc / nc + eps),
+                    band=Band(promise - eps, promise + eps),
                     estimate=k1 / n1,
-                    low=kc / nc + d_low,
-                    high=kc / nc + d_high,
+                    low=promise + d_low,
+                    high=promise + d_high,
                     evidence=evidence,
                     figures_from=own,
                 )
@@ -387,6 +404,12 @@ def _calibration_fraction(target: GroupTarget, metric: str) -> tuple[float, floa
     else:
         raise ValueError(f"no calibration fraction for {metric!r}")
     return min(k, n), n  # sums of probabilities may pass n by rounding
+
+
+def _standard_error(target: GroupTarget, metric: str) -> float | None:
+    """The promise's bootstrap standard error for ``metric``, if the version stores one."""
+    errors = target.standard_errors
+    return None if errors is None else getattr(errors, metric)
 
 
 @dataclass(frozen=True, slots=True)

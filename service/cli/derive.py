@@ -1,7 +1,9 @@
 """``evenhand derive``: fit a policy to calibration data under one criterion.
 
 Reads the CSV, derives the rules on every row (service.policy.derive), cross-fits every
-criterion for honest promises and the price-of-parity table (service.policy.crossfit), and
+criterion for honest promises and the price-of-parity table (service.policy.crossfit),
+bootstraps the chosen criterion's promises for their standard errors
+(service.policy.promise_spread), and
 writes the policy document, the JSON report and optionally an HTML page. Nothing is written
 unless everything succeeded.
 """
@@ -34,6 +36,11 @@ from service.policy.derive_document import PolicyIdentity, build_document
 from service.policy.derive_report import build_report
 from service.policy.document import Criterion, document_json
 from service.policy.errors import InternalDeriveError
+from service.policy.promise_spread import (
+    DEFAULT_RESAMPLES,
+    DEFAULT_RESAMPLES_SEED,
+    bootstrap_errors,
+)
 from service.policy.units import DeriveError, DeriveSettings, prepare
 
 _SLUG = re.compile(r"^[a-z0-9][a-z0-9._-]{0,63}$")
@@ -91,6 +98,19 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
         help=f"seed of the stratified fold split ({DEFAULT_FOLDS_SEED})",
     )
     p.add_argument(
+        "--resamples",
+        type=int,
+        default=DEFAULT_RESAMPLES,
+        help="bootstrap resamples for the standard errors of the promised rates, which the "
+        f"audit's promise checks are widened by; 0 to skip ({DEFAULT_RESAMPLES})",
+    )
+    p.add_argument(
+        "--resamples-seed",
+        type=int,
+        default=DEFAULT_RESAMPLES_SEED,
+        help=f"seed of the bootstrap resamples ({DEFAULT_RESAMPLES_SEED})",
+    )
+    p.add_argument(
         "--min-group-size",
         type=int,
         default=DEFAULT_MIN_GROUP_SIZE,
@@ -125,6 +145,18 @@ def _progress(message: str) -> None:
     print(message, file=sys.stderr, flush=True)
 
 
+class _Ticker:
+    """Progress of the bootstrap on stderr: a line every 10% of the resamples."""
+
+    def __init__(self, total: int) -> None:
+        self.total = total
+        self.step = max(1, total // 10)
+
+    def __call__(self, done: int, total: int) -> None:
+        if done % self.step == 0 or done == total:
+            _progress(f"  resample {done} of {total}")
+
+
 def _check_args(args: argparse.Namespace) -> None:
     name = args.name or args.out.stem
     if not _SLUG.match(name):
@@ -148,6 +180,8 @@ def _check_args(args: argparse.Namespace) -> None:
         raise CliError(f"--capacity {args.capacity}: must be > 0 and <= 1")
     if args.folds < 2:
         raise CliError(f"--folds {args.folds}: must be at least 2")
+    if args.resamples != 0 and args.resamples < 2:
+        raise CliError(f"--resamples {args.resamples}: must be 0 (skip) or at least 2")
     if args.min_group_size < 1:
         raise CliError("--min-group-size must be at least 1")
 
@@ -195,7 +229,25 @@ def run(args: argparse.Namespace) -> int:
         if chosen.cross_fitted is None:
             raise DeriveError(chosen.note)
         cross = chosen.cross_fitted
-        policy = build_document(prepared, solution, cross, identity)
+        spread = None
+        if args.resamples:
+            _progress(
+                f"bootstrapping the promises' standard errors ({args.resamples} resamples) ..."
+            )
+            spread = bootstrap_errors(
+                prepared,
+                criterion,
+                args.tolerance,
+                args.folds,
+                resamples=args.resamples,
+                seed=args.resamples_seed,
+                progress=_Ticker(args.resamples),
+                **options,
+            )
+            if spread.used < 2:
+                why = spread.failures[0] if spread.failures else "no resample succeeded"
+                raise DeriveError(f"the bootstrap of the promises failed: {why}")
+        policy = build_document(prepared, solution, cross, identity, spread)
         front = frontier(prepared, criterion, FRONTIER_TOLERANCES, **options)
     except DeriveError as exc:
         raise CliError(exc.message) from None
@@ -213,6 +265,11 @@ def run(args: argparse.Namespace) -> int:
     warnings += promise_warnings(
         cross, args.tolerance, settings.favourable, ref, solution.outside_promise
     )
+    if spread is not None and spread.failures:
+        warnings.append(
+            f"{len(spread.failures)} of {spread.resamples} bootstrap resamples could not be "
+            f"cross-fitted and were left out (first: {spread.failures[0]})"
+        )
     report = build_report(
         prepared,
         solution,
@@ -222,6 +279,8 @@ def run(args: argparse.Namespace) -> int:
         cross=cross,
         folds_seed=args.folds_seed,
         warnings=warnings,
+        spread=spread,
+        resamples_seed=args.resamples_seed,
     )
 
     files: dict[Path, bytes] = {

@@ -3,7 +3,9 @@
 ``targets`` holds what the audit compares a month with: per group the cross-fitted counts
 (``out_of_sample``) and their ratios as the promised rates, the calibration rows per score
 bin (``score_counts``, bins cut at ``targets.score_edges``) as the baseline of score-drift
-checks, and ``outside_promise`` for groups the criterion's promise does not cover.
+checks, ``outside_promise`` for groups the criterion's promise does not cover, and, when the
+promises were bootstrapped (:mod:`service.policy.promise_spread`), their standard errors
+(``standard_errors``, with ``targets.resamples``).
 """
 
 from __future__ import annotations
@@ -23,8 +25,10 @@ from service.policy.document import (
     Groups,
     GroupTarget,
     PolicyDocument,
+    PromiseErrors,
     Targets,
 )
+from service.policy.promise_spread import PromiseSpread
 from service.policy.units import DEFAULT_UNIT, POOLED_UNIT, CalibrationData, FloatArray, Prepared
 
 DECILES = np.arange(1, 10) / 10.0
@@ -74,8 +78,10 @@ def build_document(
     solution: Solution,
     cross: CrossFitted,
     identity: PolicyIdentity,
+    spread: PromiseSpread | None = None,
 ) -> PolicyDocument:
-    """The document: ``solution``'s rules, ``cross``'s promises (same criterion)."""
+    """The document: ``solution``'s rules, ``cross``'s promises (same criterion), with the
+    promises' bootstrap standard errors from ``spread`` when given."""
     if cross.criterion is not solution.criterion:
         raise ValueError("the cross-fitted counts belong to another criterion")
     settings, data = prepared.settings, prepared.data
@@ -106,6 +112,7 @@ def build_document(
             tpr=_rate(counts.tp, counts.positives),
             fpr=_rate(counts.fp, negatives),
             out_of_sample=counts,
+            standard_errors=None if spread is None else PromiseErrors(**spread.of(key)),
             score_counts=[int(c) for c in per_bin[g]],
             outside_promise=solution.outside_promise.get(key),
         )
@@ -116,6 +123,7 @@ def build_document(
         reference_group=solution.reference_group,
         capacity=solution.capacity,
         folds=cross.folds,
+        resamples=None if spread is None else spread.resamples,
         score_edges=edges,
         groups=groups,
     )

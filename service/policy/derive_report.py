@@ -8,6 +8,7 @@ from typing import Any
 from service.policy.crossfit import CrossFitted, PriceRow
 from service.policy.derive import Solution
 from service.policy.document import PolicyDocument, content_hash, resolve_rule_key
+from service.policy.promise_spread import PromiseSpread
 from service.policy.rates import ExpectedCounts
 from service.policy.units import POOLED_UNIT, Prepared
 from service.stats.proportions import wilson_interval_for_rate
@@ -127,6 +128,8 @@ def build_report(
     cross: CrossFitted,
     folds_seed: int,
     warnings: list[str],
+    spread: PromiseSpread | None = None,
+    resamples_seed: int | None = None,
 ) -> dict[str, Any]:
     promised = cross_fitted_rates(cross)
     groups: dict[str, Any] = {}
@@ -139,6 +142,7 @@ def build_report(
             "in_sample": _in_sample(g.counts),
             "promised": promised[g.key],
             "out_of_sample": counts.model_dump(),
+            "standard_errors": None if spread is None else spread.of(g.key),
             "outside_promise": solution.outside_promise.get(g.key),
         }
     rules = {
@@ -167,6 +171,14 @@ def build_report(
             "seed": folds_seed,
             "stratified_by": ["group", "outcome"],
             "notes": list(cross.notes),
+        },
+        "resamples": None
+        if spread is None
+        else {
+            "asked": spread.resamples,
+            "used": spread.used,
+            "seed": resamples_seed,
+            "stratified_by": ["group"],
         },
         "expected_cost": cross.cost_per_case,
         "expected_cost_interval": [low, high],

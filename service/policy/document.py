@@ -227,11 +227,29 @@ class CalibrationCounts(_Strict):
         return self
 
 
+class PromiseErrors(_Strict):
+    """Bootstrap standard errors of one group's cross-fitted promised rates.
+
+    Each is the standard deviation of the promised rate over resamples of the calibration rows
+    (rows drawn with replacement within each group, the cross-fitting run again on each;
+    Efron & Tibshirani 1993, An Introduction to the Bootstrap, ch. 6). The audit widens its
+    two-sample test of a promise by the design effect, this variance over the binomial
+    variance of the promise (Rao & Scott 1992). None: the rate was undefined on too many
+    resamples to say.
+    """
+
+    action_rate: NonNegative | None = None
+    tpr: NonNegative | None = None
+    fpr: NonNegative | None = None
+
+
 class GroupTarget(_Strict):
     """Rates the policy was expected to produce for one group on its calibration data.
 
     With ``out_of_sample`` the rates are those counts' ratios (honest promises); without it
-    they are in-sample figures, taken by the audit as exact numbers.
+    they are in-sample figures, taken by the audit as exact numbers. ``standard_errors``
+    (only with ``out_of_sample``) are the promised rates' bootstrap standard errors; a document
+    without them is audited with the promise as a binomial sample of its counts.
     """
 
     n: Count | None = None
@@ -240,6 +258,11 @@ class GroupTarget(_Strict):
     tpr: Probability
     fpr: Probability
     out_of_sample: CalibrationCounts | None = None
+    standard_errors: PromiseErrors | None = Field(
+        default=None,
+        description="bootstrap standard errors of the cross-fitted promised rates "
+        "(needs out_of_sample)",
+    )
     score_counts: list[Count] | None = Field(
         default=None,
         description="calibration rows per score bin (bins cut at targets.score_edges)",
@@ -249,6 +272,14 @@ class GroupTarget(_Strict):
         description="why the criterion's promise does not cover this group (None: it does), "
         "e.g. a fallback rule that misses the criterion on the calibration data",
     )
+
+    @model_validator(mode="after")
+    def _errors_of_counts(self) -> Self:
+        if self.standard_errors is not None and self.out_of_sample is None:
+            raise ValueError(
+                "standard_errors are those of cross-fitted promises: they need out_of_sample"
+            )
+        return self
 
 
 class Targets(_Strict):
@@ -273,6 +304,12 @@ class Targets(_Strict):
         ge=2,
         le=1000,
         description="cross-fitting folds behind groups[*].out_of_sample",
+    )
+    resamples: int | None = Field(
+        default=None,
+        ge=2,
+        le=100000,
+        description="bootstrap resamples behind groups[*].standard_errors",
     )
     score_edges: list[ScoreValue] | None = Field(
         default=None,
