@@ -398,3 +398,18 @@ def test_a_bundle_re_signed_with_another_key_fails_against_the_trusted_key(
     other = Ed25519PrivateKey.generate().public_key().public_bytes_raw().hex()
     run = _standalone(path, "--trust-key", other)
     assert run.returncode == 1 and "not one of the keys you trust" in run.stdout
+
+
+def test_a_decision_left_out_is_found_by_the_recount(bundle: bytes) -> None:
+    """A forger who gives a decision of the month only as its leaf hash (a subtree of one
+    leaf) keeps every head valid; the recount against the sealed snapshot finds it."""
+    lines = bundle.splitlines(keepends=True)
+    parsed = _lines(bundle)
+    last = max(i for i, line in enumerate(parsed) if line.get("kind") == "decision")
+    hidden = parsed[last]
+    subtree = {"type": "subtree", "start": hidden["index"], "size": 1, "hash": hidden["leaf"]}
+    forged = _reseal(b"".join([*lines[:last], encode_line(subtree), *lines[last + 1 :]]))
+    result = _check(forged)
+    assert not result.ok
+    assert result.problem is not None and result.problem.startswith("recount:"), result.problem
+    assert "recommendations is 12 in the published view; the records give 11" in result.problem

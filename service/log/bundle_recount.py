@@ -31,9 +31,13 @@ class RecountProblem(Exception):
 
 
 def parse_time(text: Any) -> datetime:
-    if not isinstance(text, str):
-        raise ValueError(f"a time is a string, got {text!r}")
-    return datetime.strptime(text, _TIME).replace(tzinfo=UTC)
+    """A record's time (``2026-12-04T21:04:06.435859Z``, the only form records use)."""
+    if not (isinstance(text, str) and len(text) == 27 and text[10] == "T" and text[26] == "Z"):
+        raise ValueError(f"not a record's time: {text!r}")
+    value = datetime.fromisoformat(text[:26]).replace(tzinfo=UTC)
+    if value.strftime(_TIME) != text:
+        raise ValueError(f"not a record's time: {text!r}")
+    return value
 
 
 def month_bounds(month: str, zone: ZoneInfo) -> tuple[datetime, datetime]:
