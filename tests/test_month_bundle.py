@@ -413,3 +413,26 @@ def test_a_decision_left_out_is_found_by_the_recount(bundle: bytes) -> None:
     assert not result.ok
     assert result.problem is not None and result.problem.startswith("recount:"), result.problem
     assert "recommendations is 12 in the published view; the records give 11" in result.problem
+
+
+def test_the_audit_role_downloads_the_same_bundle_over_http(
+    client: TestClient, make_key: Callable[..., str], session_factory: sessionmaker[Session]
+) -> None:
+    write_every_kind(client, make_key)
+    audit = bearer(make_key("audit"))
+    params = {"policy": POLICY, "month": _month()}
+    r = client.get("/v1/log/bundle", params=params, headers=audit)
+    assert r.status_code == 422 and r.json()["error"]["code"] == "not_sealed", r.text
+    seal(session_factory)
+    r = client.get("/v1/log/bundle", params=params, headers=audit)
+    assert r.status_code == 200, r.text
+    assert r.headers["content-type"].startswith("application/x-ndjson")
+    assert r.content == _export(session_factory)
+    result = _check(r.content)
+    assert result.ok, result.problem
+    r = client.get("/v1/log/bundle", params=params, headers=bearer(make_key("scoring")))
+    assert r.status_code == 403
+    r = client.get("/v1/log/bundle", params={**params, "month": "1999-01"}, headers=audit)
+    assert r.status_code == 404 and r.json()["error"]["code"] == "no_snapshot"
+    r = client.get("/v1/log/bundle", params={**params, "month": "2026-13"}, headers=audit)
+    assert r.status_code == 422
