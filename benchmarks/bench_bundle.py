@@ -45,11 +45,13 @@ BATCH = 5_000
 REGIONS = ("north", "south", "east")
 
 _VERIFY = (
-    "import sys, time; sys.path.insert(0, sys.argv.pop(1)); "
+    "import resource, sys, time; sys.path.insert(0, sys.argv.pop(1)); "
     "from service.log.bundle_verify import main; t = time.perf_counter(); "
     "code = main(sys.argv[1:]); elapsed = time.perf_counter() - t; "
+    "use = resource.getrusage(resource.RUSAGE_SELF); "
     "hwm = [l.split()[1] for l in open('/proc/self/status') if l.startswith('VmHWM')][0]; "
-    "sys.stderr.write(f'{elapsed:.3f} {hwm}\\n'); sys.exit(code)"
+    "sys.stderr.write(f'{elapsed:.3f} {use.ru_utime + use.ru_stime:.3f} {hwm}\\n'); "
+    "sys.exit(code)"
 )
 """The verifier in a bare interpreter; prints its time and its peak resident set (VmHWM of
 its own process in KiB: ``ru_maxrss`` would include the forking parent's)."""
@@ -128,14 +130,14 @@ def bench(n: int, workdir: Path) -> dict[str, object]:
         _fill(client, factory, n)
     filled = time.perf_counter() - t
     target = workdir / f"bundle-{n}.ehb"
-    t = time.perf_counter()
+    t, cpu = time.perf_counter(), time.process_time()
     with factory() as session, target.open("wb") as out:
         begin_read_only(session)
         summary = export_month(
             session, POLICY, Month.parse(datetime.now(UTC).strftime("%Y-%m")), out
         )
         session.rollback()
-    exported = time.perf_counter() - t
+    exported, export_cpu = time.perf_counter() - t, time.process_time() - cpu
     engine.dispose()
     run = subprocess.run(
         [sys.executable, "-I", "-c", _VERIFY, str(ROOT), str(target)],
@@ -143,18 +145,20 @@ def bench(n: int, workdir: Path) -> dict[str, object]:
         text=True,
         env={"PATH": "/usr/bin:/bin"},
     )
-    seconds, rss_kib = run.stderr.strip().splitlines()[-1].split()
+    seconds, cpu_seconds, rss_kib = run.stderr.strip().splitlines()[-1].split()
     result = {
         "decisions": n,
         "fill_s": round(filled, 1),
         "records": summary.records,
         "bundle_mb": round(target.stat().st_size / 1e6, 1),
         "export_s": round(exported, 2),
+        "export_cpu_s": round(export_cpu, 2),
         "verify_s": float(seconds),
+        "verify_cpu_s": float(cpu_seconds),
         "verify_exit": run.returncode,
         "verify_peak_rss_mb": round(int(rss_kib) / 1024, 1),
     }
-    print(json.dumps(result), flush=True)
+    print(json.dumps(result), f"load average {os.getloadavg()[0]:.1f}", flush=True)
     return result
 
 

@@ -12,6 +12,7 @@ from __future__ import annotations
 import hashlib
 import io
 import json
+import random
 import subprocess
 import sys
 import sysconfig
@@ -436,3 +437,18 @@ def test_the_audit_role_downloads_the_same_bundle_over_http(
     assert r.status_code == 404 and r.json()["error"]["code"] == "no_snapshot"
     r = client.get("/v1/log/bundle", params={**params, "month": "2026-13"}, headers=audit)
     assert r.status_code == 422
+
+
+def test_any_byte_changed_is_found(bundle: bytes) -> None:
+    """Flip one byte at 300 random places (seeded): every copy fails, none crashes."""
+    rng = random.Random(20261205)
+    for _ in range(300):
+        at = rng.randrange(len(bundle))
+        flipped = bytes([bundle[at] ^ (1 << rng.randrange(8))])
+        data = bundle[:at] + flipped + bundle[at + 1 :]
+        result = _check(data)
+        assert not result.ok, (at, bundle[max(0, at - 40) : at + 40])
+        assert result.problem is not None and "cannot be checked here" not in result.problem, (
+            at,
+            result.problem,
+        )

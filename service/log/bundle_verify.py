@@ -243,7 +243,7 @@ class _Verifier:
         raw = data.encode("utf-8")
         try:
             record = parse_json(data)
-        except ValueError as exc:
+        except (ValueError, RecursionError) as exc:
             raise self._problem(f"{name} is not JSON ({exc})") from None
         if isinstance(record, dict) and isinstance(record.get("recommendation_id"), str):
             name += f" ({record['recommendation_id']})"
