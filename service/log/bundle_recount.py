@@ -86,6 +86,8 @@ class MonthCounter:
         )
         self._db.execute("BEGIN")
         self.decisions = 0
+        self.versions_used: set[int] = set()
+        """The versions and shadow versions the month's decisions name (a handful)."""
 
     def close(self) -> None:
         try:
@@ -115,6 +117,9 @@ class MonthCounter:
             None if shadow_action is None else int(_strict_bool(shadow_action, "shadow_action")),
             _strict_float(record["score"], "score"),
         )
+        self.versions_used.add(row[2])
+        if row[4] is not None:
+            self.versions_used.add(row[4])
         try:
             self._db.execute(
                 "INSERT INTO decisions (rid, leaf, version, grp, shadow_version, day, action,"
@@ -307,9 +312,12 @@ def _published_ok(shown: Any, recounted: int) -> bool:
     return _same(shown, recounted)
 
 
-def compare(view: Mapping[str, Any], recount: Recount) -> str | None:
-    """None when every counting figure of ``view`` equals the recount, else the first that
-    does not (by version, group and name)."""
+def compare(
+    view: Mapping[str, Any], recount: Recount, content_hashes: Mapping[int, str]
+) -> str | None:
+    """None when every counting figure of ``view`` equals the recount and every version's
+    content hash is the one of its policy_version record, else the first that does not (by
+    version, group and name)."""
     internal = view.get("view") == "internal"
 
     def check(where: str, shown: Any, recounted: Any) -> str | None:
@@ -340,6 +348,10 @@ def compare(view: Mapping[str, Any], recount: Recount) -> str | None:
     if not isinstance(sections, list) or len(sections) != len(recount.versions):
         return "the view's version sections do not match the versions the records give"
     for section, version in zip(sections, recount.versions, strict=True):
+        if isinstance(section, dict) and section.get("content_hash") != content_hashes.get(version):
+            return (
+                f"version {version}: the content hash is not the one of its policy_version record"
+            )
         problem = _compare_section(section, version, recount, check, internal)
         if problem:
             return problem

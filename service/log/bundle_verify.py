@@ -119,6 +119,7 @@ class _Verifier:
         self.counter: MonthCounter | None = None
         self.snapshot: dict[str, Any] | None = None
         self.views: dict[str, dict[str, Any]] = {}
+        self.versions: dict[int, str] = {}
         self.lines: dict[str, int] = {}
         self.stage = fmt.HEADER
         self.header: dict[str, Any] = {}
@@ -282,8 +283,24 @@ class _Verifier:
         elif kind in ("policy_version", "policy_event"):
             if record["policy"] != self.header["policy"]:
                 raise RecountProblem("a record of another policy")
+            if kind == "policy_version":
+                self._version(record)
         elif kind != "key_event":
             raise RecountProblem("a kind of record a bundle does not hold")
+
+    def _version(self, record: dict[str, Any]) -> None:
+        """A policy version: its content hash must be the SHA-256 of its document's canonical
+        JSON (what the service computed when it was submitted)."""
+        document = record["document"]
+        if not isinstance(document, dict):
+            raise RecountProblem("its document is not a JSON object")
+        computed = hashlib.sha256(fmt.encode_line(document)[:-1]).hexdigest()
+        if record["content_hash"] != computed:
+            raise RecountProblem("its content hash is not the hash of its document")
+        version = record["version"]
+        if isinstance(version, bool) or not isinstance(version, int) or version in self.versions:
+            raise RecountProblem(f"version {version!r} is not a new version number")
+        self.versions[version] = computed
 
     def _subtree(self, line: dict[str, Any]) -> None:
         try:
@@ -337,6 +354,13 @@ class _Verifier:
             raise self._problem("the last head is not the seal the header names")
         if self.snapshot is None:
             raise self._problem("the bundle holds no snapshot record of its policy and month")
+        assert self.counter is not None
+        missing = sorted(self.counter.versions_used - set(self.versions))
+        if missing:
+            raise self._problem(
+                f"decisions name version(s) {missing} of the policy, which the bundle holds no "
+                "policy_version record of"
+            )
         self.result.tree_size = self.tree.count
 
     def _latest(self, line: dict[str, Any]) -> None:
@@ -380,7 +404,7 @@ class _Verifier:
             raise self._problem(f"the records cannot be tallied ({exc})") from None
         for name in fmt.VIEWS:
             try:
-                problem = compare(self.views[name], recount)
+                problem = compare(self.views[name], recount, self.versions)
             except (KeyError, TypeError, ValueError, AttributeError) as exc:
                 problem = f"the {name} view cannot be read ({exc!r})"
             if problem is not None:
