@@ -452,3 +452,41 @@ def test_any_byte_changed_is_found(bundle: bytes) -> None:
             at,
             result.problem,
         )
+
+
+def test_heads_between_seals_place_a_rehashed_edit_between_them(
+    client: TestClient,
+    make_key: Callable[..., str],
+    session_factory: sessionmaker[Session],
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    write_every_kind(client, make_key)
+    seal(session_factory)
+    scoring = bearer(make_key("scoring"))
+    for round_ in range(3):  # three more seals of three decisions each
+        items = [make_request(case_id=f"r{round_}-{i}") for i in range(3)]
+        r = client.post("/v1/recommendations/batch", json={"items": items}, headers=scoring)
+        assert r.status_code == 201, r.text
+        seal(session_factory)
+    r = client.post(
+        "/v1/audits",
+        json={"policy": POLICY, "month": _month(), "provisional": True},
+        headers=bearer(make_key("audit")),
+    )
+    assert r.status_code == 201, r.text
+    seal(session_factory)
+    monkeypatch.setattr("service.store.bundle_export.CHECKPOINT_RECORDS", 2)
+    data = _export(session_factory)
+    assert _check(data).ok
+    parsed = _lines(data)
+    heads = [i for i, line in enumerate(parsed) if line["type"] == "head"]
+    assert len(heads) >= 4, heads
+    # The last decision of the second round, edited with its leaf hash and the manifest redone.
+    target = [i for i, line in enumerate(parsed) if line.get("kind") == "decision"][-4]
+    edited = _reseal(_edit(data, target, _record_edit("score", 0.123, True)))
+    result = _check(edited)
+    assert not result.ok and result.problem is not None
+    before = max(h for h in heads if h < target) + 1
+    after = min(h for h in heads if h > target) + 1
+    assert f"between lines {before} and {after}" in result.problem, result.problem
+    assert after - before <= 5
