@@ -161,10 +161,10 @@ class MonthCounter:
     def _rows(self) -> Iterator[tuple[Any, ...]]:
         cursor = self._db.execute(
             "SELECT version, grp, shadow_version, day, action, probability, shadow_action,"
-            " score, outcome, finals, overrides FROM decisions ORDER BY leaf"
+            " score, outcome, finals, overrides FROM decisions ORDER BY rowid"
         )
         while True:
-            batch = cursor.fetchmany(5_000)
+            batch = cursor.fetchmany(1_000)
             if not batch:
                 return
             yield from batch
