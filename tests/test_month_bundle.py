@@ -21,7 +21,7 @@ from datetime import UTC, datetime
 from pathlib import Path
 
 import pytest
-from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
+from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey, Ed25519PublicKey
 from fastapi.testclient import TestClient
 from sqlalchemy.orm import Session, sessionmaker
 
@@ -34,7 +34,7 @@ from service.store.db import begin_read_only
 from tests.audit_helpers import POLICY
 from tests.helpers import bearer, make_request
 from tests.log_helpers import SIGNER, seal, write_every_kind
-from tests.test_log_seal import _h
+from tests.test_log_seal import _h, _head_bytes, _verify_consistency
 
 ROOT = Path(__file__).resolve().parents[1]
 
@@ -102,6 +102,20 @@ def test_a_month_round_trips_and_recounts(bundle: bytes) -> None:
         if line["type"] == "record":
             assert line["leaf"] == _h(b"\x00" + str(line["data"]).encode()).hex()
     assert result.key_ids == [SIGNER.key_id]
+    # The heads and the consistency proof, checked with this suite's own transcription of
+    # RFC 9162 section 2.1.4.2 and Ed25519 from `cryptography` directly.
+    public = Ed25519PublicKey.from_public_bytes(SIGNER.public_key)
+    heads = [line for line in lines if line["type"] in ("head", "latest")]
+    for h in heads:
+        public.verify(bytes.fromhex(str(h["signature"])), _head_bytes(h["head"]))  # type: ignore[arg-type]
+    last, newest = heads[-2]["head"], heads[-1]["head"]
+    assert _verify_consistency(
+        last["tree_size"],  # type: ignore[index]
+        newest["tree_size"],  # type: ignore[index]
+        bytes.fromhex(last["root"]),  # type: ignore[index]
+        bytes.fromhex(newest["root"]),  # type: ignore[index]
+        [bytes.fromhex(p) for p in heads[-1]["path"]],  # type: ignore[attr-defined]
+    )
 
 
 def test_the_cli_writes_the_bundle_and_the_standalone_verifier_accepts_it(
