@@ -27,8 +27,10 @@ from sqlalchemy.orm import Session, sessionmaker
 
 from service.audit.month import Month
 from service.cli.main import main
+from service.errors import Unprocessable
 from service.log.bundle_format import encode_line
 from service.log.bundle_verify import Result, verify_bundle
+from service.store.audit_models import LogPurge
 from service.store.bundle_export import export_month
 from service.store.db import begin_read_only
 from tests.audit_helpers import POLICY
@@ -504,3 +506,12 @@ def test_heads_between_seals_place_a_rehashed_edit_between_them(
     after = min(h for h in heads if h > target) + 1
     assert f"between lines {before} and {after}" in result.problem, result.problem
     assert after - before <= 5
+
+
+def test_a_purged_month_is_refused(bundle: bytes, session_factory: sessionmaker[Session]) -> None:
+    with session_factory() as session:
+        session.add(LogPurge(through_seal=1, through_month=_month(), counts={}, by="test"))
+        session.commit()
+    with pytest.raises(Unprocessable) as refused:
+        _export(session_factory)
+    assert refused.value.code == "purged_month"

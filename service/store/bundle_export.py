@@ -45,6 +45,7 @@ from service.log.records import DECISION
 from service.store.audit_models import AuditSnapshot, Seal, SigningKey
 from service.store.log_proofs import Tree, seal_holding
 from service.store.log_sources import KIND_ORDER, PAGE, SOURCES, Source, decision_window, rows
+from service.store.retention import purged_through_month
 from service.store.sealing import signed_head
 
 Progress = Callable[[str], None]
@@ -172,6 +173,14 @@ def export_month(
 ) -> BundleSummary:
     """Write the bundle of ``policy`` for ``month`` to ``out`` (read-only; the caller's
     transaction should be a read-only one)."""
+    purged = purged_through_month(session)
+    if purged is not None and month <= purged:
+        raise Unprocessable(
+            f"the decisions of {month} were purged (retention, through {purged}): the month's "
+            "records are gone, only its report snapshot and leaf hashes remain",
+            field="month",
+            code="purged_month",
+        )
     snapshot = latest_snapshot(session, policy, month)
     if snapshot.internal is None or snapshot.internal_digest is None:
         raise Unprocessable(
