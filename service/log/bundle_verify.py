@@ -221,8 +221,6 @@ class _Verifier:
             raise self._problem(str(exc)) from None
         if key_id(public) != line.get("key_id"):
             raise self._problem(f"public key {line.get('key_id')!r} does not hash to its id")
-        if self.trusted is not None and self.trusted.get(str(line["key_id"])) != raw:
-            raise self._problem(f"key {line['key_id']} is not one of the keys you trust")
         self.keys[str(line["key_id"])] = raw
         self.result.key_ids.append(str(line["key_id"]))
 
@@ -325,6 +323,11 @@ class _Verifier:
         problem = verify_head(head, signature, self.keys)
         if problem is not None:
             raise self._problem(problem)
+        if self.trusted is not None and self.trusted.get(head.key_id) != self.keys[head.key_id]:
+            raise self._problem(
+                f"the head of seal {head.seal_id} is signed by key {head.key_id}, which is not "
+                "one of the keys you trust"
+            )
         self.result.heads_checked += 1
         return head
 
@@ -462,7 +465,8 @@ def main(argv: Sequence[str] | None = None) -> int:
         action="append",
         default=[],
         metavar="HEX",
-        help="a public key (32 bytes in hex) to require; repeat for several. Without it the "
+        help="a public key (32 bytes in hex) that must have signed every head; repeat for "
+        "several (keys rotated over the month). Without it the "
         "bundle's own keys are used and their ids are printed: compare them with the keys the "
         "service publishes (GET /v1/log/keys)",
     )
