@@ -42,6 +42,7 @@ ACCESS: dict[tuple[str, str], str] = {
     ("GET", "/v1/log/heads"): "audit",
     ("GET", "/v1/log/proofs/inclusion"): "audit",
     ("GET", "/v1/log/proofs/consistency"): "audit",
+    ("GET", "/v1/log/bundle"): "audit",
     ("POST", "/v1/audits"): "audit",
     ("GET", "/v1/reports/{policy}"): "audit",
     ("GET", "/v1/reports/{policy}/{month_file}"): "audit",

@@ -1,18 +1,24 @@
-"""The log: its public keys, its signed heads, verification (audit role)."""
+"""The log: its public keys, its signed heads, verification, proofs and month bundles (audit
+role)."""
 
 from __future__ import annotations
 
+import tempfile
+from collections.abc import Iterator
 from datetime import datetime
 from typing import Annotated, Any
 
 from fastapi import APIRouter, Query, Request
+from fastapi.responses import StreamingResponse
 from pydantic import BaseModel, Field
 from sqlalchemy import select
 
 from service.api.deps import AuditKey, ReadSession
 from service.api.errors import error_responses
+from service.audit.month import Month
 from service.store import log_proofs
 from service.store.audit_models import Seal, SigningKey
+from service.store.bundle_export import export_month
 from service.store.log_verify import VerifyResult, verify_log
 from service.store.sealing import signed_head
 from service.store.signing import Signer, trusted_public_keys
@@ -201,3 +207,50 @@ def consistency_proof(
 ) -> ConsistencyProofResponse:
     proof = log_proofs.consistency(session, first, second)
     return ConsistencyProofResponse.model_validate(proof.as_json())
+
+
+_CHUNK = 1 << 20
+_SPOOL = 8 << 20
+
+
+@router.get(
+    "/bundle",
+    summary="One policy-month as a month bundle (.ehb), for the standalone verifier",
+    response_class=StreamingResponse,
+    responses={
+        200: {
+            "content": {"application/x-ndjson": {}},
+            "description": "the bundle: JSON lines (docs/bundle.md)",
+        },
+        **error_responses(401, 403, 404, 422),
+    },
+)
+def month_bundle(
+    _key: AuditKey,
+    session: ReadSession,
+    policy: Annotated[str, Query(min_length=1, max_length=64, description="the policy")],
+    month: Annotated[str, Query(description="the audited month, YYYY-MM")],
+) -> StreamingResponse:
+    """The same file as ``evenhand log bundle``: 404 ``no_snapshot`` when the month has no
+    report snapshot, 422 ``not_sealed`` when its snapshot is not sealed yet. The bundle is
+    written to a temporary file (in memory up to 8 MB) and then streamed."""
+    parsed = Month.parse(month)
+    spool = tempfile.SpooledTemporaryFile(max_size=_SPOOL)  # noqa: SIM115 - closed by the stream
+    try:
+        export_month(session, policy, parsed, spool)  # type: ignore[arg-type]
+    except BaseException:
+        spool.close()
+        raise
+    spool.seek(0)
+
+    def chunks() -> Iterator[bytes]:
+        with spool:
+            while data := spool.read(_CHUNK):
+                yield data
+
+    name = f"{policy}-{parsed}.ehb"
+    return StreamingResponse(
+        chunks(),
+        media_type="application/x-ndjson",
+        headers={"Content-Disposition": f'attachment; filename="{name}"'},
+    )

@@ -90,6 +90,20 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
     between.add_argument("second", type=_positive, metavar="SECOND", help="the later seal")
     between.set_defaults(handler=_consistency)
 
+    bundle = sub.add_parser(
+        "bundle",
+        help="write one policy-month as a self-describing file (.ehb) that "
+        "evenhand-verify-bundle checks without the service",
+        description="Write the month's decisions, outcomes and final decisions, the policy's "
+        "versions and events, the key events, the report snapshot (both views), the signed "
+        "heads, the public keys and what the verifier needs to recompute the heads, with a "
+        "manifest. The month must be audited and its snapshot sealed. Format: docs/bundle.md.",
+    )
+    bundle.add_argument("--policy", required=True, metavar="NAME", help="the policy")
+    bundle.add_argument("--month", required=True, metavar="YYYY-MM", help="the audited month")
+    bundle.add_argument("--out", required=True, metavar="FILE", help="the file to create")
+    bundle.set_defaults(handler=_bundle)
+
     purge = sub.add_parser(
         "purge",
         help="delete the decisions, outcomes and final decisions of the oldest sealed months "
@@ -264,6 +278,36 @@ def _consistency(args: argparse.Namespace) -> int:
         proof = log_proofs.consistency(session, args.first, args.second)
         session.rollback()
     print(json.dumps(proof.as_json(), indent=2))
+    return 0
+
+
+def _bundle(args: argparse.Namespace) -> int:
+    from service.store.bundle_export import export_month
+
+    month = Month.parse(args.month)
+    target = Path(args.out)
+    if target.exists():
+        raise CliError(f"{target} exists: choose a new file")
+    partial = target.with_name(target.name + ".partial")
+    try:
+        out = partial.open("xb")
+    except OSError as exc:
+        raise CliError(f"cannot create {partial}: {exc}") from None
+    try:
+        with _factory(Settings())() as session, out:
+            begin_read_only(session)
+            summary = export_month(session, args.policy, month, out, progress=_progress)
+            session.rollback()
+        partial.rename(target)
+    except OSError as exc:
+        raise CliError(f"cannot write {target}: {exc}") from None
+    finally:
+        partial.unlink(missing_ok=True)
+    records = ", ".join(f"{n:,} {kind}" for kind, n in summary.records.items())
+    print(
+        f"{target}: {args.policy} {month}: {records}; head of seal {summary.seal_id} "
+        f"({summary.tree_size:,} leaves); sha256 {summary.sha256}"
+    )
     return 0
 
 

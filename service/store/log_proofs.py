@@ -80,7 +80,7 @@ def _ranges(seal: Seal) -> dict[str, tuple[int, int, int]]:
     return {k: (int(v[0]), int(v[1]), int(v[2])) for k, v in seal.ranges.items()}
 
 
-def _seal_holding(session: Session, kind: str, record_id: int) -> Seal | None:
+def seal_holding(session: Session, kind: str, record_id: int) -> Seal | None:
     """The seal whose range of ``kind`` holds ``record_id`` (binary search: the ranges of
     consecutive seals follow each other)."""
     last = session.scalar(select(func.max(Seal.id)))
@@ -159,7 +159,7 @@ def _kept_hashes(session: Session, seal_id: int, kind: str) -> bytes | None:
     return None if blob is None else bytes(blob)
 
 
-class _Tree:
+class Tree:
     """Subtree hashes of the log: stored nodes, or leaves recomputed (cached per call)."""
 
     def __init__(self, session: Session) -> None:
@@ -220,7 +220,7 @@ def inclusion(
             f"unknown kind {kind!r} (one of: {', '.join(KIND_ORDER)})", field="kind"
         )
     head_seal = _seal(session, seal_id)
-    holder = _seal_holding(session, kind, record_id)
+    holder = seal_holding(session, kind, record_id)
     if holder is None or holder.id > head_seal.id:
         raise NotFound(
             f"{kind} #{record_id} is not in the log as of seal {head_seal.id} (unknown, or "
@@ -240,7 +240,7 @@ def inclusion(
     record = source.encode(row)
     index = _position(session, holder, kind, record_id)
     size = int(head_seal.tree_size)
-    path = inclusion_path(size, index, _Tree(session).root_of)
+    path = inclusion_path(size, index, Tree(session).root_of)
     return InclusionProof(
         kind, record_id, index, merkle_leaf_hash(record), record, path, signed_head(head_seal)
     )
@@ -251,5 +251,5 @@ def consistency(session: Session, first: int, second: int) -> ConsistencyProof:
     if first > second:
         raise Unprocessable("the first seal must not come after the second", field="first")
     a, b = _seal(session, first), _seal(session, second)
-    path = consistency_path(int(a.tree_size), int(b.tree_size), _Tree(session).root_of)
+    path = consistency_path(int(a.tree_size), int(b.tree_size), Tree(session).root_of)
     return ConsistencyProof(signed_head(a), signed_head(b), path)
