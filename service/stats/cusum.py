@@ -36,6 +36,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass
+from functools import lru_cache
 
 import numpy as np
 import numpy.typing as npt
@@ -104,7 +105,17 @@ def binomial_step_distribution(n: int, p: float, p0: float, p1: float) -> StepDi
         raise ValueError(f"need n >= 1 and 0 <= p <= 1, got n={n}, p={p}")
     k = np.arange(n + 1, dtype=np.float64)
     values = k * np.log(p1 / p0) + (n - k) * np.log((1.0 - p1) / (1.0 - p0))
-    return StepDistribution(values, binom_pmf(k, n, p))
+    return StepDistribution(values, _binomial_pmf(n, p))
+
+
+@lru_cache(maxsize=64)
+def _binomial_pmf(n: int, p: float) -> FloatArray:
+    """The pmf of Binomial(n, p) on 0..n, read-only and kept: a gap chart's design asks for
+    the same (n, p) with a few dozen different rates (``service.audit.gap_charts``), and at a
+    million decisions a month each pmf has a hundred thousand values."""
+    pmf = binom_pmf(np.arange(n + 1, dtype=np.float64), n, p)
+    pmf.setflags(write=False)
+    return pmf
 
 
 def risk_adjusted_llr(outcome_sum: float, log_term_sum: float, odds_ratio: float) -> float:
