@@ -18,12 +18,10 @@ from sqlalchemy.orm import Session
 
 from service.log import tallies
 from service.store.audit_models import Tally, TallyBatch
-from service.store.log_sources import TALLIED_KINDS
+from service.store.log_sources import SOURCES, TALLIED_KINDS, max_id
 from service.store.tally_counts import tally_ranges
 
 Progress = Callable[[str], None]
-_END = 1 << 62
-"""An id above any the log will hold: the open end of the untallied tail."""
 
 
 def quiet(_message: str) -> None:
@@ -39,7 +37,10 @@ def _uncovered(session: Session, time_zone: str) -> list[dict[str, tuple[int, in
         ranges.append({k: (int(v[0]), int(v[1])) for k, v in batch_ranges.items()})
     last = session.scalar(select(TallyBatch.ranges).order_by(TallyBatch.id.desc()).limit(1))
     done = {} if last is None else {k: int(v[1]) for k, v in last.items()}
-    ranges.append({kind: (done.get(kind, 0), _END) for kind in TALLIED_KINDS})
+    # The tail ends at each table's largest id (one read of the primary key's last entry): a
+    # bound far above it (an "open" end) made PostgreSQL, without fresh statistics, estimate
+    # the whole table in range and scan it instead of the few ids after the last batch.
+    ranges.append({k: (done.get(k, 0), max_id(session, SOURCES[k])) for k in TALLIED_KINDS})
     return ranges
 
 

@@ -16,7 +16,6 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.stats import binom
 
 from service.audit.charts import STEP_POINTS, ChartSide, chart_side, clip, limit_for
 from service.audit.monitoring_types import MonthCounts, MonthEstimate
@@ -29,6 +28,7 @@ from service.stats.cusum import (
     coarsened,
     mixture,
 )
+from service.stats.distributions import binom_pmf
 from service.stats.pooling import PooledDifference, mantel_haenszel_difference
 from service.stats.proportions import newcombe_difference_interval
 from service.stats.ratios import katz_ratio_interval
@@ -95,7 +95,7 @@ def in_control_step(design: Design, n: int, n_ref: int, r: float) -> StepDistrib
     limit would be designed too low and the chart would signal falsely several times as often
     as designed when the reference group is not much larger than the group."""
     k = np.arange(n_ref + 1)
-    pmf = binom.pmf(k, n_ref, r)
+    pmf = binom_pmf(k, n_ref, r)
     keep = pmf >= 1e-12
     k, pmf = k[keep], pmf[keep]
     # Pool the reference's values into at most REFERENCE_POINTS groups of equal probability,

@@ -39,8 +39,8 @@ from itertools import pairwise
 
 import numpy as np
 from numpy.typing import ArrayLike
-from scipy.stats import norm
 
+from service.stats.distributions import norm_sf
 from service.stats.proportions import wilson_interval
 
 _REL_ZERO = 1e-12
@@ -132,7 +132,7 @@ def spiegelhalter_test(sums: PowerSums) -> CalibrationTest:
             f"(every score is 0, 1/2 or 1) over these {sums.n} cases"
         )
     z = numerator / math.sqrt(variance)
-    p_value = float(2.0 * norm.sf(abs(z)))
+    p_value = float(2.0 * norm_sf(abs(z)))
     return CalibrationTest(z, p_value, sums.sum_y, sums.sum_p)
 
 
@@ -150,7 +150,7 @@ def observed_expected_test(sums: PowerSums) -> CalibrationTest:
             f"(every score is 0 or 1) over these {sums.n} cases"
         )
     z = (sums.sum_y - sums.sum_p) / math.sqrt(variance)
-    return CalibrationTest(z, float(2.0 * norm.sf(abs(z))), sums.sum_y, sums.sum_p)
+    return CalibrationTest(z, float(2.0 * norm_sf(abs(z))), sums.sum_y, sums.sum_p)
 
 
 @dataclass(frozen=True, slots=True)

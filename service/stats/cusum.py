@@ -36,11 +36,12 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass
+from functools import lru_cache
 
 import numpy as np
 import numpy.typing as npt
-from scipy.signal import convolve
-from scipy.stats import binom, norm
+
+from service.stats.distributions import binom_pmf, norm_cdf, norm_pdf
 
 FloatArray = npt.NDArray[np.float64]
 
@@ -104,7 +105,17 @@ def binomial_step_distribution(n: int, p: float, p0: float, p1: float) -> StepDi
         raise ValueError(f"need n >= 1 and 0 <= p <= 1, got n={n}, p={p}")
     k = np.arange(n + 1, dtype=np.float64)
     values = k * np.log(p1 / p0) + (n - k) * np.log((1.0 - p1) / (1.0 - p0))
-    return StepDistribution(values, binom.pmf(k, n, p))
+    return StepDistribution(values, _binomial_pmf(n, p))
+
+
+@lru_cache(maxsize=64)
+def _binomial_pmf(n: int, p: float) -> FloatArray:
+    """The pmf of Binomial(n, p) on 0..n, read-only and kept: a gap chart's design asks for
+    the same (n, p) with a few dozen different rates (``service.audit.gap_charts``), and at a
+    million decisions a month each pmf has a hundred thousand values."""
+    pmf = binom_pmf(np.arange(n + 1, dtype=np.float64), n, p)
+    pmf.setflags(write=False)
+    return pmf
 
 
 def risk_adjusted_llr(outcome_sum: float, log_term_sum: float, odds_ratio: float) -> float:
@@ -120,7 +131,8 @@ def _count_distribution(
 ) -> tuple[npt.NDArray[np.int64], FloatArray]:
     """Support and probabilities of a sum of ``counts[j]`` Bernoulli(``q[j]``) variables.
 
-    Exact (binomial pmfs convolved, by FFT where scipy finds it faster) up to
+    Exact (binomial pmfs convolved directly: at most ``EXACT_CASE_LIMIT ** 2 / 2`` products,
+    milliseconds, and numpy's convolution spares the audit the import of scipy.signal) up to
     ``EXACT_CASE_LIMIT`` cases. Above it, the refined normal approximation with a skewness
     term (Volkova 1996, Theory Probab. Appl. 40:791-794; Hong 2013, Comput. Stat. Data Anal.
     59:41-51): ``P(Y <= y) ~ G((y + 0.5 - mu) / sigma)`` with
@@ -134,7 +146,7 @@ def _count_distribution(
         pmf: FloatArray = np.ones(1)
         for qj, cj in zip(q, counts, strict=True):
             if cj > 0:
-                pmf = convolve(pmf, binom.pmf(np.arange(cj + 1), cj, qj))
+                pmf = np.convolve(pmf, binom_pmf(np.arange(cj + 1), cj, qj))
         pmf = np.clip(pmf, 0.0, None)
         return np.arange(total + 1, dtype=np.int64), pmf / pmf.sum()
     mean = float(np.sum(counts * q))
@@ -147,7 +159,7 @@ def _count_distribution(
     hi = min(total, int(np.ceil(mean + 10.0 * sd)))
     y = np.arange(lo, hi + 1, dtype=np.int64)
     z = (y + 0.5 - mean) / sd
-    cdf = np.clip(norm.cdf(z) + skew * (1.0 - z * z) * norm.pdf(z) / 6.0, 0.0, 1.0)
+    cdf = np.clip(norm_cdf(z) + skew * (1.0 - z * z) * norm_pdf(z) / 6.0, 0.0, 1.0)
     cdf = np.maximum.accumulate(cdf)
     cdf[-1] = 1.0
     return y, np.diff(cdf, prepend=0.0)

@@ -33,7 +33,7 @@ import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 
-from scipy.stats import chi2
+from service.stats.distributions import chi2_sf
 
 PSI_MODERATE = 0.1
 """PSI above this: a moderate shift (common practice)."""
@@ -98,4 +98,4 @@ def homogeneity_test(
             terms.append((observed - expected) ** 2 / expected)
     statistic = math.fsum(terms)
     dof = len(kept) - 1
-    return HomogeneityTest(statistic, dof, float(chi2.sf(statistic, dof)))
+    return HomogeneityTest(statistic, dof, float(chi2_sf(statistic, dof)))

@@ -21,8 +21,7 @@ from __future__ import annotations
 import math
 import operator
 
-from scipy.stats import binom
-
+from service.stats.distributions import binom_cdf, binom_sf
 from service.stats.margins import MarginEvidence, Side
 
 
@@ -42,13 +41,13 @@ def rate_evidence(k: int, n: int, center: float, margin: float) -> MarginEvidenc
     if high >= 1.0:
         inside_high, above = 0.0, 1.0
     else:
-        inside_high = float(binom.cdf(k, n, high))  # H0: p >= high, vs less
-        above = float(binom.sf(k - 1, n, high))  # H0: p <= high, vs greater
+        inside_high = float(binom_cdf(k, n, high))  # H0: p >= high, vs less
+        above = float(binom_sf(k - 1, n, high))  # H0: p <= high, vs greater
     if low <= 0.0:
         inside_low, below = 0.0, 1.0
     else:
-        inside_low = float(binom.sf(k - 1, n, low))  # H0: p <= low, vs greater
-        below = float(binom.cdf(k, n, low))  # H0: p >= low, vs less
+        inside_low = float(binom_sf(k - 1, n, low))  # H0: p <= low, vs greater
+        below = float(binom_cdf(k, n, low))  # H0: p >= low, vs less
 
     side: Side = "above" if above <= below else "below"
     return MarginEvidence(

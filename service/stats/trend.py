@@ -18,7 +18,8 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.stats import norm
+
+from service.stats.distributions import norm_sf
 
 
 @dataclass(frozen=True)
@@ -59,6 +60,6 @@ def weighted_trend(
         slope=slope,
         standard_error=standard_error,
         statistic=statistic,
-        p_value=float(2.0 * norm.sf(abs(statistic))),
+        p_value=float(2.0 * norm_sf(abs(statistic))),
         points=int(t.size),
     )
