@@ -21,6 +21,8 @@ from service.stats.cusum import (
 
 HORIZON = 12
 """Months over which each version's false-signal probability is bounded by the level."""
+DESIGN_HORIZON = HORIZON
+"""Months of a chart's run from zero over which its limit bounds the false-signal probability."""
 STATES = 60
 """Grid points of the Markov chain."""
 STEP_POINTS = 201
@@ -57,7 +59,7 @@ def clip(p: float) -> float:
 def limit_for(step: StepDistribution, false_alarm: float) -> float:
     target = false_alarm * DISCRETISATION_MARGIN
     try:
-        return control_limit([coarsened(step, STEP_POINTS)], HORIZON, target, STATES)
+        return control_limit([coarsened(step, STEP_POINTS)], DESIGN_HORIZON, target, STATES)
     except ValueError:
         # In control, no month's increment can be positive (a large volume: the evidence of
         # any one month is decisive). Any positive limit then meets the bound; the smallest
