@@ -51,16 +51,24 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
-from sim_monitoring import DOC, VOLUME, group_monitors, monitors, plain_month
+from sim_monitoring import DOC, START, VOLUME, group_monitors, monitors, plain_month
 from sim_scenario import (
+    COMMON_TPR,
     COVERAGE,
     DEFAULT_SEED,
+    LARGEST,
+    MID,
     PREVALENCE,
     REFERENCE,
     SHARES,
+    SMALLEST,
     TOLERANCE,
+    Truth,
+    cell_text,
+    draw_cells,
     machine_header,
     promised,
+    quantiles,
     shifted,
     wilson,
 )
@@ -219,6 +227,78 @@ def chain_view() -> list[tuple[int, float]]:
     return out
 
 
+DETECT_SCREEN = 0.6
+"""In a detection run a month is computed in full only when a chart's windowed statistic
+reaches this share of its limit at the latest month computed in full."""
+
+
+@dataclass
+class DetectionRecord:
+    exact_months: int = 0
+    months: int = 0
+    verified_runs: int = 0
+    smallest_ratio: float = math.inf
+
+
+def detection_delay(
+    rng: np.random.Generator, group: str, cap: int, record: DetectionRecord, verify_all: bool
+) -> float:
+    """Months to the first signal of ``group``'s gap charts (16-chart version, no score sums)
+    when its TPR is sustained 0.10 below the reference's (infinity: none within ``cap``).
+
+    A month is computed in full (``group_monitors``: the full call's inputs and per-chart bound)
+    when no month has been yet or when a chart's windowed statistic, from the increments,
+    reaches ``DETECT_SCREEN`` times its limit at the latest month computed in full;
+    ``verify_all`` computes every month in full, checks the answer and records the smallest
+    ratio of a month's limit to the latest one the screen would have used."""
+    truth = promised()
+    truth[group] = Truth(COMMON_TPR - 2 * TOLERANCE, truth[group].fpr)
+    history: list[MonthCounts] = []
+    chart: Monitor | None = None
+    per: dict[str, dict[str, float]] = {}
+    limits: dict[str, float] = {}
+    screened_at: float = math.inf
+    full_at: float = math.inf
+    for month in range(1, cap + 1):
+        history.append(MonthCounts(START.shifted(month - 1), True, draw_cells(rng, VOLUME, truth)))
+        record.months += 1
+        window = [str(m.month) for m in history[-WINDOW:]]
+        if chart is not None:
+            for side, values in chart_increments(history[-1:], chart).items():
+                per[side].update(values)
+        flagged = chart is None or any(
+            (v := windowed(per[side], window)) is not None and v >= DETECT_SCREEN * limit
+            for side, limit in limits.items()
+        )
+        exact: list[Monitor] | None = None
+        if flagged or verify_all:
+            exact = [m for m in group_monitors(history, {group}, WINDOW) if m.group == group]
+        if exact and verify_all and limits:
+            for s in exact[0].sides:
+                record.smallest_ratio = min(record.smallest_ratio, s.limit / limits[s.side])
+        if flagged and exact:
+            record.exact_months += 1
+            if chart is None:
+                chart = exact[0]
+                per = chart_increments(history, chart)
+            check_paths(exact, {(chart.kind.value, chart.group): per})
+            limits = {s.side: s.limit for s in exact[0].sides}
+            if screened_at == math.inf and any(m.signal for m in exact):
+                screened_at = month
+        if verify_all and exact and full_at == math.inf and any(m.signal for m in exact):
+            full_at = month
+        if screened_at < math.inf and (not verify_all or full_at < math.inf):
+            break
+    if verify_all:
+        record.verified_runs += 1
+        if screened_at != full_at or record.smallest_ratio < DETECT_SCREEN:
+            raise RuntimeError(
+                f"detection screen differs: {screened_at} against {full_at} "
+                f"(smallest limit ratio {record.smallest_ratio})"
+            )
+    return screened_at
+
+
 def rows(
     rng: np.random.Generator,
     versions: int,
@@ -242,11 +322,19 @@ def main(argv: Sequence[str] | None = None) -> int:
     parser.add_argument(
         "--verify-versions", type=int, default=5, help="versions per row with every audit in full"
     )
+    parser.add_argument("--runs", type=int, default=100, help="detection runs per group")
+    parser.add_argument("--cap", type=int, default=240, help="months before a run is censored")
+    parser.add_argument(
+        "--parts", default="alarms,chain,detection", help="comma-separated parts to run"
+    )
     parser.add_argument("--quick", action="store_true", help="a few versions (smoke run)")
     parser.add_argument("--json", type=Path, default=None, help="also write the figures here")
     args = parser.parse_args(argv)
     versions = 2 if args.quick else args.versions
     verify_versions = 1 if args.quick else args.verify_versions
+    runs = 2 if args.quick else args.runs
+    cap = 12 if args.quick else args.cap
+    parts = set(args.parts.split(","))
     years = args.years_of_use
     print(machine_header("benchmarks/sim_chart_years.py", list(argv or sys.argv[1:]), args.seed))
     results: dict[str, Any] = {
@@ -257,6 +345,11 @@ def main(argv: Sequence[str] | None = None) -> int:
     }
     started = time.perf_counter()
     edge = shifted(promised(), TOLERANCE, fpr_too=False)
+    alarm_rows = (
+        (("16 (no score sums)", plain_month(edge)), ("34 (score sums)", scored_month(edge)))
+        if "alarms" in parts
+        else ()
+    )
     print(
         f"\n## False alarms per year of use, TPR gaps at the edge (+-0.05) ({versions} versions "
         f"per row, {years} years each; window {WINDOW} months; limits designed over "
@@ -267,9 +360,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         "first signal, given none before | design bound |"
     )
     print("|---|---|---|---|---|---|")
-    for index, (name, draw) in enumerate(
-        (("16 (no score sums)", plain_month(edge)), ("34 (score sums)", scored_month(edge)))
-    ):
+    for index, (name, draw) in enumerate(alarm_rows):
         t0 = time.perf_counter()
         rng = np.random.default_rng([args.seed, 1, index])
         found, record = rows(rng, versions, years, draw, verify_versions)
@@ -307,21 +398,69 @@ def main(argv: Sequence[str] | None = None) -> int:
             f"full (smallest ratio of a limit to the year's last {part['smallest_limit_ratio']:.3f}"
             f"); {part['seconds']:.1f} s"
         )
+    results["chain"] = []
+    if "chain" in parts:
+        chain_table(results)
+    results["detection"] = []
+    if "detection" in parts:
+        detection_table(results, args.seed, runs, cap)
+    results["seconds"] = time.perf_counter() - started
+    print(f"\nrun time {results['seconds']:.1f} s")
+    if args.json is not None:
+        args.json.write_text(json.dumps(results, indent=1), encoding="utf-8")
+    return 0
+
+
+def chain_table(results: dict[str, Any]) -> None:
     print(
         "\n## The chain's view: 16 gap charts at the expected volumes, sum over charts of "
         "P(a chart from zero signals within H months)\n"
     )
     print("| H (months) | sum over the 16 charts |")
     print("|---|---|")
-    results["chain"] = []
     for horizon, total in chain_view():
         results["chain"].append({"months": horizon, "sum": total})
         print(f"| {horizon} | {total:.4f} |")
-    results["seconds"] = time.perf_counter() - started
-    print(f"\nrun time {results['seconds']:.1f} s")
-    if args.json is not None:
-        args.json.write_text(json.dumps(results, indent=1), encoding="utf-8")
-    return 0
+
+
+def detection_table(results: dict[str, Any], seed: int, runs: int, cap: int) -> None:
+    print(
+        f"\n## Detection: one group's TPR {2 * TOLERANCE:g} below the reference's, sustained "
+        f"(16 charts; {runs} runs per group; censored at {cap} months; months to the first "
+        "signal of the group's charts, median (quartiles))\n"
+    )
+    print("| group | share | TPR cases / month (mean) | charts |")
+    print("|---|---|---|---|")
+    for index, group in enumerate((SMALLEST, MID, LARGEST)):
+        t0 = time.perf_counter()
+        rng = np.random.default_rng([seed, 3, index])
+        record = DetectionRecord()
+        found = [detection_delay(rng, group, cap, record, r == 0) for r in range(runs)]
+        positives = VOLUME * SHARES[group] * COVERAGE * PREVALENCE[group]
+        censored = sum(v > cap for v in found)
+        results["detection"].append(
+            {
+                "group": group,
+                "runs": runs,
+                "cap": cap,
+                "chart": [None if v > cap else int(v) for v in found],
+                "exact_months": record.exact_months,
+                "months": record.months,
+                "smallest_limit_ratio": record.smallest_ratio,
+                "seconds": time.perf_counter() - t0,
+            }
+        )
+        print(
+            f"| {cell_text(group)} | {SHARES[group]:.1%} | {positives:.1f} | "
+            f"{quantiles(found, cap)}; {censored}/{runs} censored |",
+            flush=True,
+        )
+    for part in results["detection"]:
+        print(
+            f"- {part['group']}: {part['exact_months']} of {part['months']} months computed in "
+            f"full; smallest limit ratio in the verified run {part['smallest_limit_ratio']:.3f}; "
+            f"{part['seconds']:.1f} s"
+        )
 
 
 if __name__ == "__main__":
