@@ -205,26 +205,29 @@ def version_years(
     return out
 
 
-def chain_view() -> list[tuple[int, float]]:
+def chain_view() -> tuple[list[tuple[int, float]], dict[str, float]]:
     """Sum over the 16 gap charts of a version at the expected monthly volumes of the chain's
-    P(run length <= H), each chart with the limit ``version_monitors`` designs for it."""
-    out = []
+    P(run length <= H), each chart with the limit ``version_monitors`` designs for it; and the
+    "below" chart's limit per group."""
     truth = promised()
     charts = 16
     n_ref = round(VOLUME * SHARES[REFERENCE] * COVERAGE * PREVALENCE[REFERENCE])
     r = truth[REFERENCE].tpr
-    for horizon in (12, 24, 36):
-        total = 0.0
-        for g in SHARES:
-            if g == REFERENCE:
-                continue
-            n = round(VOLUME * SHARES[g] * COVERAGE * PREVALENCE[g])
-            for d in designs(CheckKind.PARITY, TOLERANCE):
-                step = in_control_step(d, n, n_ref, r)
-                h = limit_for(step, LEVEL / charts)
-                total += float(run_length_cdf(h, [step], horizon, STATES)[-1])
-        out.append((horizon, total))
-    return out
+    totals = dict.fromkeys((12, 24, 36), 0.0)
+    below: dict[str, float] = {}
+    for g in SHARES:
+        if g == REFERENCE:
+            continue
+        n = round(VOLUME * SHARES[g] * COVERAGE * PREVALENCE[g])
+        for d in designs(CheckKind.PARITY, TOLERANCE):
+            step = in_control_step(d, n, n_ref, r)
+            h = limit_for(step, LEVEL / charts)
+            if d.side == "below":
+                below[g] = h
+            cdf = run_length_cdf(h, [step], max(totals), STATES)
+            for horizon in totals:
+                totals[horizon] += float(cdf[horizon - 1])
+    return list(totals.items()), below
 
 
 DETECT_SCREEN = 0.6
@@ -418,9 +421,15 @@ def chain_table(results: dict[str, Any]) -> None:
     )
     print("| H (months) | sum over the 16 charts |")
     print("|---|---|")
-    for horizon, total in chain_view():
+    totals, below = chain_view()
+    for horizon, total in totals:
         results["chain"].append({"months": horizon, "sum": total})
         print(f"| {horizon} | {total:.4f} |")
+    results["below_limits"] = below
+    print(
+        "\nLimits of the below charts at the expected volumes: "
+        + ", ".join(f"{g} {h:.2f}" for g, h in below.items())
+    )
 
 
 def detection_table(results: dict[str, Any], seed: int, runs: int, cap: int) -> None:
