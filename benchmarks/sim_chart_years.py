@@ -51,7 +51,18 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
-from sim_monitoring import DOC, START, VOLUME, group_monitors, monitors, plain_month
+from sim_monitoring import (
+    CONTEXT,
+    DOC,
+    START,
+    VOLUME,
+    group_monitors,
+    monitors,
+    plain_month,
+    settings_for,
+    smallest_adjusted_p,
+    smallest_p,
+)
 from sim_scenario import (
     COMMON_TPR,
     COVERAGE,
@@ -74,13 +85,20 @@ from sim_scenario import (
 )
 from sim_score_charts import scored_month
 
-from service.audit.charts import DESIGN_HORIZON, STATES, limit_for
+from service.audit.charts import DESIGN_HORIZON, STATES, STEP_POINTS, limit_for
 from service.audit.gap_charts import designs, in_control_step
 from service.audit.monitoring import WINDOW, Monitor, MonthCounts
 from service.audit.outcome_charts import ODDS
 from service.audit.realized import fraction_of
-from service.audit.verdicts import CheckKind
-from service.stats.cusum import binomial_llr, cusum_path, risk_adjusted_llr, run_length_cdf
+from service.audit.verdicts import CheckKind, decide, version_checks
+from service.policy.document import AuditPlan
+from service.stats.cusum import (
+    binomial_llr,
+    coarsened,
+    cusum_path,
+    risk_adjusted_llr,
+    run_length_cdf,
+)
 
 LEVEL = 0.05
 YEAR = 12
@@ -328,7 +346,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     parser.add_argument("--runs", type=int, default=100, help="detection runs per group")
     parser.add_argument("--cap", type=int, default=240, help="months before a run is censored")
     parser.add_argument(
-        "--parts", default="alarms,chain,detection", help="comma-separated parts to run"
+        "--parts",
+        default="alarms,chain,model,single,detection",
+        help="comma-separated parts to run",
     )
     parser.add_argument("--quick", action="store_true", help="a few versions (smoke run)")
     parser.add_argument("--json", type=Path, default=None, help="also write the figures here")
@@ -404,6 +424,23 @@ def main(argv: Sequence[str] | None = None) -> int:
     results["chain"] = []
     if "chain" in parts:
         chain_table(results)
+    results["windowed_model"] = []
+    if "model" in parts:
+        model_versions = 500 if args.quick else 20_000
+        rates = windowed_model(np.random.default_rng([args.seed, 5]), model_versions, years)
+        results["windowed_model"] = rates
+        print(
+            f"\n## Model check: 16 independent gap charts with i.i.d. design increments "
+            f"({model_versions:,} versions)\n"
+        )
+        print("| year of use | any signal in the year |")
+        print("|---|---|")
+        for y, rate in enumerate(rates, start=1):
+            print(f"| {y} | {rate:.4f} |")
+    if "single" in parts:
+        single_month_table(
+            results, args.seed, 200 if args.quick else 10_000, 50 if args.quick else 2_000
+        )
     results["detection"] = []
     if "detection" in parts:
         detection_table(results, args.seed, runs, cap)
@@ -430,6 +467,75 @@ def chain_table(results: dict[str, Any]) -> None:
         "\nLimits of the below charts at the expected volumes: "
         + ", ".join(f"{g} {h:.2f}" for g, h in below.items())
     )
+
+
+def windowed_model(rng: np.random.Generator, versions: int, years: int) -> list[float]:
+    """Per year of use: the share of versions in which any of the 16 gap charts signals, when
+    each chart's months are i.i.d. draws of the in-control increment its limit was designed
+    on (at the expected volumes) and the charts are independent; each audit recomputes the
+    chart over the latest WINDOW months. A model check of the design, cheap enough for many
+    versions; the full simulation above draws the counts instead."""
+    truth = promised()
+    n_ref = round(VOLUME * SHARES[REFERENCE] * COVERAGE * PREVALENCE[REFERENCE])
+    r = truth[REFERENCE].tpr
+    months = YEAR * years
+    any_signal = np.zeros((versions, years), dtype=bool)
+    for g in SHARES:
+        if g == REFERENCE:
+            continue
+        n = round(VOLUME * SHARES[g] * COVERAGE * PREVALENCE[g])
+        for d in designs(CheckKind.PARITY, TOLERANCE):
+            step = coarsened(in_control_step(d, n, n_ref, r), STEP_POINTS)
+            h = limit_for(step, LEVEL / 16)
+            w = rng.choice(step.values, p=step.probabilities, size=(versions, months))
+            for t in range(1, months + 1):
+                x = np.cumsum(w[:, max(0, t - WINDOW) : t], axis=1)
+                shown = x[:, -1] - np.minimum(x.min(axis=1), 0.0)
+                any_signal[:, (t - 1) // YEAR] |= shown >= h
+    return [float(v) for v in any_signal.mean(axis=0)]
+
+
+def single_month_table(
+    results: dict[str, Any], seed: int, in_control_months: int, gap_months: int
+) -> None:
+    """The single-month test (``version_checks`` + ``decide``, Holm) at the monthly level
+    whose yearly false-alarm rate at the edge is each of a few rates, and its median months to
+    the first breach of a group with the TPR gap of the detection table. Months are
+    independent, so the months to the first breach are geometric with the monthly breach
+    chance ``q`` of the gap scenario: median ``ceil(ln 0.5 / ln(1 - q))``."""
+    edge = shifted(promised(), TOLERANCE, fpr_too=False)
+    null = smallest_adjusted_p(np.random.default_rng([seed, 6]), in_control_months, edge)
+    gap_p: dict[str, np.ndarray] = {}
+    for index, group in enumerate((MID, LARGEST)):
+        truth = promised()
+        truth[group] = Truth(COMMON_TPR - 2 * TOLERANCE, truth[group].fpr)
+        rng = np.random.default_rng([seed, 7, index])
+        values = np.empty(gap_months)
+        for i in range(gap_months):
+            cells = draw_cells(rng, VOLUME, truth)
+            checks = version_checks(1, DOC, cells, settings_for(cells), CONTEXT)
+            values[i] = smallest_p(decide(checks, AuditPlan(level=LEVEL))[0], group)
+        gap_p[group] = values
+    print(
+        f"\n## Single-month test at matched yearly rates ({in_control_months:,} in-control "
+        f"months at the edge; {gap_months:,} months per group with the gap)\n"
+    )
+    print(
+        "| yearly false-alarm rate | monthly level | group | monthly breach chance "
+        "| median months |"
+    )
+    print("|---|---|---|---|---|")
+    results["single_month"] = []
+    for yearly in (0.0184, 0.025, 0.05):
+        share = 1.0 - (1.0 - yearly) ** (1.0 / YEAR)
+        level = float(np.quantile(null, share, method="inverted_cdf"))
+        for group, values in gap_p.items():
+            q = float(np.mean(values <= level))
+            median = math.ceil(math.log(0.5) / math.log1p(-q)) if q > 0 else math.inf
+            results["single_month"].append(
+                {"yearly": yearly, "level": level, "group": group, "q": q, "median": median}
+            )
+            print(f"| {yearly} | {level:.4g} | {cell_text(group)} | {q:.4f} | {median} |")
 
 
 def detection_table(results: dict[str, Any], seed: int, runs: int, cap: int) -> None:
