@@ -178,6 +178,12 @@ def test_sim_chart_years_reports_false_alarms_per_year_of_use_the_chain_and_dete
             assert 0 <= y["first"] <= y["any"] <= row["versions"]
     chain = table_rows(text, "| H (months) |")
     assert [r[0] for r in chain] == ["12", "24", "36"]
+    model = table_rows(text, "| year of use | any signal in the year |")
+    assert [r[0] for r in model] == ["1", "2", "3"] and len(figures["windowed_model"]) == 3
+    single = table_rows(text, "| yearly false-alarm rate |")
+    assert [(r[0], r[2]) for r in single] == [
+        (y, g) for y in ("0.0184", "0.025", "0.05") for g in ("millbrook|es", "millbrook|en")
+    ]
     found = table_rows(text, "| group | share | TPR cases")
     assert [r[0] for r in found] == ["quarry-hill|other", "millbrook|es", "millbrook|en"]
     for row in figures["detection"]:
