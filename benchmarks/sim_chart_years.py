@@ -350,6 +350,12 @@ def main(argv: Sequence[str] | None = None) -> int:
         default="alarms,chain,model,single,detection",
         help="comma-separated parts to run",
     )
+    parser.add_argument(
+        "--null-months", type=int, default=10_000, help="in-control months (single part)"
+    )
+    parser.add_argument(
+        "--gap-months", type=int, default=2_000, help="months per gap group (single part)"
+    )
     parser.add_argument("--quick", action="store_true", help="a few versions (smoke run)")
     parser.add_argument("--json", type=Path, default=None, help="also write the figures here")
     args = parser.parse_args(argv)
@@ -439,7 +445,10 @@ def main(argv: Sequence[str] | None = None) -> int:
             print(f"| {y} | {rate:.4f} |")
     if "single" in parts:
         single_month_table(
-            results, args.seed, 200 if args.quick else 10_000, 50 if args.quick else 2_000
+            results,
+            args.seed,
+            200 if args.quick else args.null_months,
+            50 if args.quick else args.gap_months,
         )
     results["detection"] = []
     if "detection" in parts:
