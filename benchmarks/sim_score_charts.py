@@ -6,8 +6,8 @@ As ``sim_monitoring.py``, but every simulated month also carries each group's ``
 ``benchmarks/sim_scenario.py``: each case with an outcome draws a score like the demo's and its
 outcome from it, and the sums are those the audit's query gives). ``version_monitors`` then adds
 two risk-adjusted outcome charts per group (odds doubled or halved against the scores') to the
-version's 16 gap charts: 34 charts, each with the limit for a false signal within 12 months at
-most 0.05 / 34.
+version's 16 gap charts: 34 charts, each with the limit for a false signal within 36 months from
+zero at most 0.05 / 34 (``DESIGN_HORIZON``; 12 months before 2026-12-05).
 
 - **False alarms**: the probability that any of the 34 charts signals within the first 12
   monthly audits, scores calibrated, TPR gaps 0 and at the edge (+-0.05); design bound 0.05.

@@ -7,12 +7,19 @@ import numpy as np
 import pytest
 from scipy.stats import binom
 
-from service.audit.monitoring import HORIZON, MonthCounts, version_monitors
+from service.audit.charts import limit_for
+from service.audit.monitoring import DESIGN_HORIZON, WINDOW, MonthCounts, version_monitors
 from service.audit.month import Month
 from service.audit.realized import CellCounts
 from service.audit.verdicts import CheckKind
 from service.audit.version_settings import resolve_settings
-from service.stats.cusum import StepDistribution, coarsened, run_length_cdf
+from service.stats.cusum import (
+    StepDistribution,
+    binomial_step_distribution,
+    coarsened,
+    cusum_path,
+    run_length_cdf,
+)
 from tests.test_verdicts import EPS, document
 
 START = Month.parse("2025-01")
@@ -74,7 +81,7 @@ def test_each_limit_meets_its_share_of_the_level_with_the_references_spread() ->
             values.append(kb * np.log(p1 / p0) + (n - kb) * np.log((1 - p1) / (1 - p0)))
             weights.append(wa * binom.pmf(kb, n, truth))
         step = StepDistribution(np.concatenate(values), np.concatenate(weights) / np.sum(weights))
-        alarm = run_length_cdf(side.limit, [coarsened(step, 401)], HORIZON, 200)[-1]
+        alarm = run_length_cdf(side.limit, [coarsened(step, 401)], DESIGN_HORIZON, 200)[-1]
         assert alarm <= 0.05 / 2  # each of the pair's two charts: half the level
 
 
@@ -90,6 +97,43 @@ def test_in_control_at_the_edge_the_charts_signal_at_most_as_designed(n_a: int) 
     )
     # 5% designed; 8.4% is the top of the binomial 99% range at 300 years.
     assert signals / years <= 0.084
+
+
+def test_a_limit_over_the_window_and_a_year_bounds_every_year_of_audits() -> None:
+    # One chart with i.i.d. in-control months: 30 cases a month at p0 = 0.3 against p1 = 0.4
+    # (an increment with positive and negative values, like a gap chart's), its limit as the
+    # charts design it. 20,000 simulated versions of 36 months; the audit of month t shows
+    # the chart recomputed from zero over the latest WINDOW months. Checked against the Markov
+    # chain of Brook & Evans (1972, Biometrika 59:539-549) with 200 states: the first year's
+    # audits see a chart from zero, so they signal in P(run length <= 12) of versions; the
+    # third year's windows lie within months 2-36, and a windowed statistic at or above h is
+    # a run of months summing to h (Lindley 1952), so they signal in at most P(run length <=
+    # 36) of versions, itself within the chart's share of the level.
+    step = binomial_step_distribution(30, 0.3, 0.3, 0.4)
+    share = 0.05
+    h = limit_for(step, share)
+    cdf = run_length_cdf(h, [step], DESIGN_HORIZON, 200)
+    assert cdf[-1] <= share
+    rng = np.random.default_rng(11)
+    versions = 20_000
+    steps = rng.choice(step.values, p=step.probabilities, size=(versions, DESIGN_HORIZON))
+
+    def shown(t: int) -> np.ndarray:  # the audit of month t's statistic, per version
+        window = steps[:, max(0, t - WINDOW) : t]
+        x = np.cumsum(window, axis=1)
+        floor = np.minimum(np.minimum.accumulate(x, axis=1), 0.0)
+        return x[:, -1] - floor[:, -1]
+
+    assert shown(30)[0] == pytest.approx(cusum_path(list(steps[0, 6:30]))[-1])
+    first = np.any([shown(t) >= h for t in range(1, 13)], axis=0).mean()
+    third = np.any([shown(t) >= h for t in range(25, 37)], axis=0).mean()
+    x = np.cumsum(steps, axis=1)  # the chart from zero over all 36 months, no window
+    plain = np.any(x - np.minimum(np.minimum.accumulate(x, axis=1), 0.0) >= h, axis=1).mean()
+    se = np.sqrt(share * (1 - share) / versions)
+    assert first == pytest.approx(cdf[11], abs=3 * se)
+    assert third <= cdf[-1] + 3 * se
+    assert plain == pytest.approx(cdf[-1], abs=3 * se)
+    assert third > 1.5 * first  # a chart that has run a year signals more often than from 0
 
 
 def test_immature_months_are_left_out_of_outcome_charts() -> None:

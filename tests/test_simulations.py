@@ -164,6 +164,34 @@ def test_sim_score_charts_reports_false_alarms_and_both_detection_tables(
     assert "run time" in text and "seed" in text
 
 
+def test_sim_chart_years_reports_false_alarms_per_year_of_use_the_chain_and_detection(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    figures, text = run("sim_chart_years", tmp_path, capsys)
+    years = table_rows(text, "| charts | year of use |")
+    assert [(r[0], r[1]) for r in years] == [
+        (c, y) for c in ("16 (no score sums)", "34 (score sums)") for y in ("1", "2", "3")
+    ]
+    assert [row["charts"] for row in figures["rows"]] == [16, 34]
+    for row in figures["rows"]:
+        for y in row["years"]:
+            assert 0 <= y["first"] <= y["any"] <= row["versions"]
+    chain = table_rows(text, "| H (months) |")
+    assert [r[0] for r in chain] == ["12", "24", "36"]
+    model = table_rows(text, "| year of use | any signal in the year |")
+    assert [r[0] for r in model] == ["1", "2", "3"] and len(figures["windowed_model"]) == 3
+    single = table_rows(text, "| yearly false-alarm rate |")
+    assert [(r[0], r[2]) for r in single] == [
+        (y, g) for y in ("0.0184", "0.025", "0.05") for g in ("millbrook|es", "millbrook|en")
+    ]
+    found = table_rows(text, "| group | share | TPR cases")
+    assert [r[0] for r in found] == ["quarry-hill|other", "millbrook|es", "millbrook|en"]
+    for row in figures["detection"]:
+        assert len(row["chart"]) == row["runs"]
+        assert all(v is None or 1 <= v <= row["cap"] for v in row["chart"])
+    assert "run time" in text and "seed" in text
+
+
 def test_sim_warnings_reports_false_warnings_by_volume_and_power_by_group_size(
     tmp_path: Path, capsys: pytest.CaptureFixture[str]
 ) -> None:

@@ -6,7 +6,7 @@ from __future__ import annotations
 from collections.abc import Mapping, Sequence
 
 from service.audit.check_rows import METRIC_LABELS
-from service.audit.monitoring import HORIZON, STATES, Monitor
+from service.audit.monitoring import DESIGN_HORIZON, HORIZON, STATES, WINDOW, Monitor
 from service.audit.published_counts import CountVisibility
 from service.audit.realized import BINS
 from service.audit.snapshot_model import (
@@ -123,10 +123,13 @@ def design_text(monitors: Sequence[Monitor], level: float) -> str | None:
         "Stoumbos 1999; risk-adjusted, Steiner et al. 2000). Each gap chart weighs a gap of "
         "twice the tolerance against the tolerance itself, with the reference group's rate of "
         "the same month as its base; each outcome chart weighs odds doubled or halved against "
-        f"the scores. Each of the {charts} chart(s) has the limit whose chance of a false signal "
-        f"within {HORIZON} months, at the edge of the promise, is at most {level:g}/{charts} "
-        f"(Markov chain of Brook & Evans 1972, {STATES} states), so together at most {level:g} "
-        "a year. Months whose outcomes were not mature are left out of outcome-based charts."
+        f"the scores. Each audit recomputes a chart over the latest {WINDOW} months. Each of the "
+        f"{charts} chart(s) has the limit whose chance of a false signal within "
+        f"{DESIGN_HORIZON} months from zero, at the edge of the promise, is at most "
+        f"{level:g}/{charts} (Markov chain of Brook & Evans 1972, {STATES} states); the windows "
+        f"of any {HORIZON} months' audits lie within {DESIGN_HORIZON} months, so together at "
+        f"most {level:g} in every year of use. Months whose outcomes were not mature are left "
+        "out of outcome-based charts."
     )
 
 

@@ -14,11 +14,13 @@ al. 2000). Under the four-fifths criterion one chart weighs a ratio of ``0.8 - 2
 its promise, even at the edge of it, raises false signals at the designed rate only.
 
 Control limits: every chart of a version gets the limit ``h`` whose probability of a false
-signal within :data:`HORIZON` months is at most ``level / K`` at the edge of the promise,
-``K`` the number of charts of the version (Bonferroni), computed with the Markov chain of Brook
-& Evans (1972) at the group's and the reference's mean monthly volumes, the month's increment
-mixed over the reference's sampling spread (its realized rate is the base). So the chance that
-any chart of a version signals falsely within a year is at most the audit plan's level.
+signal within :data:`DESIGN_HORIZON` (36) months from zero is at most ``level / K`` at the edge
+of the promise, ``K`` the number of charts of the version (Bonferroni), computed with the Markov
+chain of Brook & Evans (1972) at the group's and the reference's mean monthly volumes, the
+month's increment mixed over the reference's sampling spread (its realized rate is the base).
+Each audit recomputes the charts over the latest :data:`WINDOW` (24) months, and the windows of
+any year's audits lie within 36 months (service.audit.charts), so the chance that any chart of
+a version signals falsely within a year of its use, any year, is at most the plan's level.
 
 Where the score is a probability (score range [0, 1]), two risk-adjusted Bernoulli CUSUM
 charts per group (Steiner, Cook, Farewell & Treasure 2000) weigh the outcomes against the
@@ -36,7 +38,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 
-from service.audit.charts import HORIZON, STATES, ChartSide
+from service.audit.charts import DESIGN_HORIZON, HORIZON, STATES, WINDOW, ChartSide
 from service.audit.gap_charts import designs, estimates_of, gap_side, pooled_and_trend, series_of
 from service.audit.monitoring_types import Monitor, MonthCounts, MonthEstimate
 from service.audit.outcome_charts import ODDS, outcome_monitor
@@ -46,6 +48,7 @@ from service.audit.version_settings import VersionSettings
 from service.policy.document import Criterion, PolicyDocument
 
 __all__ = [
+    "DESIGN_HORIZON",
     "HORIZON",
     "STATES",
     "WINDOW",
@@ -55,9 +58,6 @@ __all__ = [
     "MonthEstimate",
     "version_monitors",
 ]
-
-WINDOW = 24
-"""Months of history the charts look back over (the latest snapshot of each)."""
 
 
 def version_monitors(
