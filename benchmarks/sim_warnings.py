@@ -25,7 +25,7 @@ scores binned at the edges as the day's query bins them; the cut is applied to t
 Every day's drift tests draw from ``[seed, part, row, policy, day]`` (``day_warnings``'s seed).
 
     .venv/bin/python benchmarks/sim_warnings.py [--seed N] [--years 300] [--power-days 1000]
-        [--part all|null|power] [--quick] [--json out.json]
+        [--part all|null|power] [--volumes 65 500 5000] [--quick] [--json out.json]
 """
 
 from __future__ import annotations
@@ -267,6 +267,14 @@ def main(argv: Sequence[str] | None = None) -> int:
         default="all",
         help="run only the false warnings or only the power tables (e.g. in two processes)",
     )
+    parser.add_argument(
+        "--volumes",
+        type=int,
+        nargs="+",
+        choices=DAILY_VOLUMES,
+        default=list(DAILY_VOLUMES),
+        help="daily volumes of the false-warning table (each row keeps its own seed)",
+    )
     parser.add_argument("--quick", action="store_true", help="a few days each (smoke run)")
     parser.add_argument("--json", type=Path, default=None, help="also write the figures here")
     args = parser.parse_args(argv)
@@ -277,7 +285,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     results: dict[str, Any] = {"seed": args.seed, "null": [], "power": []}
     print(f"\ncuts: { {g: CUT[g] for g in GROUPS} }")
 
-    null_volumes = DAILY_VOLUMES if args.part in ("all", "null") else ()
+    null_volumes = args.volumes if args.part in ("all", "null") else []
     power_cases = POWER_CASES if args.part in ("all", "power") else ()
     print(
         f"\n## False warnings: a policy in control ({years} policy-years of {DAYS_PER_YEAR} days "
@@ -289,7 +297,8 @@ def main(argv: Sequence[str] | None = None) -> int:
         "with PSI >= 0.1 | with PSI >= 0.25 | draws per drift test | ms per day |"
     )
     print("|---|---|---|---|---|---|---|---|---|---|---|---|")
-    for index, volume in enumerate(null_volumes):
+    for volume in null_volumes:
+        index = DAILY_VOLUMES.index(volume)
         t0 = time.perf_counter()
         t = null_years(
             np.random.default_rng([args.seed, 1, index]), years, volume, [args.seed, 1, index]
