@@ -204,8 +204,11 @@ class DayTally:
         return w.warnings > 0
 
 
-def null_years(rng: np.random.Generator, years: int, volume: int, seed: Sequence[int]) -> DayTally:
-    """``years`` policies in control, 365 days each."""
+def null_years(
+    rng: np.random.Generator, years: int, volume: int, seed: Sequence[int], every: int = 0
+) -> DayTally:
+    """``years`` policies in control, 365 days each; every ``every`` years (0: never) prints
+    the tally so far (a long run can be cut short and still report what it measured)."""
     t = DayTally()
     for year in range(years):
         policy = draw_policy(rng)
@@ -217,6 +220,16 @@ def null_years(rng: np.random.Generator, years: int, volume: int, seed: Sequence
             warned |= t.add(w, time.perf_counter() - t0)
         t.years += 1
         t.years_warned += warned
+        if every and t.years % every == 0:
+            print(
+                f"  so far ({volume:,} a day): {t.years} policy-years, {t.years_warned} with a "
+                f"warning ({wilson(t.years_warned, t.years)}); {t.days:,} days, "
+                f"{t.any_warning} with a warning; draws per drift test "
+                f"{t.draws / max(1, t.tested_groups):.0f}; {1000 * t.seconds / t.days:.1f} ms a "
+                f"day; warnings {t.warned_groups}; action-rate tests at or below the daily "
+                f"level {sum(t.action_raw_hits.values())} of {sum(t.action_tests.values())}",
+                flush=True,
+            )
     return t
 
 
@@ -275,6 +288,9 @@ def main(argv: Sequence[str] | None = None) -> int:
         default=list(DAILY_VOLUMES),
         help="daily volumes of the false-warning table (each row keeps its own seed)",
     )
+    parser.add_argument(
+        "--report-every", type=int, default=0, help="print the tally every N policy-years"
+    )
     parser.add_argument("--quick", action="store_true", help="a few days each (smoke run)")
     parser.add_argument("--json", type=Path, default=None, help="also write the figures here")
     args = parser.parse_args(argv)
@@ -301,7 +317,11 @@ def main(argv: Sequence[str] | None = None) -> int:
         index = DAILY_VOLUMES.index(volume)
         t0 = time.perf_counter()
         t = null_years(
-            np.random.default_rng([args.seed, 1, index]), years, volume, [args.seed, 1, index]
+            np.random.default_rng([args.seed, 1, index]),
+            years,
+            volume,
+            [args.seed, 1, index],
+            args.report_every,
         )
         row = {"volume": volume, **t.__dict__, "seconds": time.perf_counter() - t0}
         results["null"].append(row)
