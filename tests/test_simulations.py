@@ -198,14 +198,16 @@ def test_sim_warnings_reports_false_warnings_by_volume_and_power_by_group_size(
     figures, text = run("sim_warnings", tmp_path, capsys)
     null = table_rows(text, "| decisions / day |")
     assert [r[0] for r in null] == ["65", "500", "5,000"]
-    assert all(len(r) == 10 for r in null)
+    assert all(len(r) == 12 for r in null)
     for row in figures["null"]:
         assert row["days"] == 365 * row["years"] and row["years_warned"] <= row["years"]
         assert row["any_warning"] <= row["days"]
+        assert row["draws"] >= row["tested_groups"]  # every drift test draws at least once
     power = table_rows(text, "| group cases | day volume |")
     assert [(r[0], r[2]) for r in power] == [
         (c, f) for c in ("20", "50", "100", "200", "500", "1,000", "2,000") for f in ("1", "1.3")
     ]
+    assert all(len(r) == 10 for r in power)
     for row in figures["power"]:
         assert row["either"] <= row["days"] and row["drift"] <= row["either"]
     assert "run time" in text and "seed" in text

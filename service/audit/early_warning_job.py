@@ -8,7 +8,7 @@ from typing import Any
 from sqlalchemy import case, func, literal_column, select
 from sqlalchemy.orm import Session
 
-from service.audit.early_warning import DayCounts, DayWarnings, day_warnings
+from service.audit.early_warning import DayCounts, DayWarnings, day_warnings, text_seed
 from service.audit.month import zone_of
 from service.audit.realized import CellCounts
 from service.audit.verdicts import DEFAULT_MIN_COUNT
@@ -48,7 +48,8 @@ def run_day_warnings(
     time_zone: str = "UTC",
     min_count: int = DEFAULT_MIN_COUNT,
 ) -> DayWarnings:
-    """The warnings of one day of ``policy`` (read only)."""
+    """The warnings of one day of ``policy`` (read only); the drift tests' draws are seeded from
+    the policy's name and the day, so re-running a day gives the same result."""
     start, end = day_bounds(day, time_zone)
     if start > datetime.now(UTC):
         raise Unprocessable(f"{day} has not begun in {time_zone}", field="day", code="future_day")
@@ -92,4 +93,4 @@ def run_day_warnings(
         cells = {g: CellCounts(n=n[g], actions=actions[g]) for g in n}
         settings = resolve_settings(doc, cells, None, None)
         days.append(DayCounts(version, doc, settings, cells, bins if edges else {}))
-    return day_warnings(days, min_count)
+    return day_warnings(days, min_count, seed=[text_seed(f"{policy}\n{day.isoformat()}")])

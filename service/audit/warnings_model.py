@@ -12,12 +12,15 @@ from service.audit.suppression import SMALL_CELL_LIMIT
 
 DESCRIPTION = (
     "Score drift: each group's scores of the day, binned at the version's calibration deciles, "
-    "against its calibration bins; a warning needs a population stability index of at least "
-    "0.1 (0.25: major; common-practice thresholds) and Pearson's homogeneity test rejecting. "
-    "Action rates: each group's action rate against the version's promise (and, under "
-    "demographic parity, its gap to the reference group), with the monthly checks' tests. All "
-    "tests of the day form one family adjusted by the audit plan's method at level/365, so "
-    "the chance of any false warning in a policy-year is at most the level."
+    "against its calibration bins, by an exact conditional Monte Carlo homogeneity test (the "
+    "day's bins as a draw without replacement from the pooled table; sequential Monte Carlo "
+    "p-value, Besag and Clifford 1991); 'drift' comes from the test alone. The population "
+    "stability index is shown beside it as a description (0.1 moderate, 0.25 major: "
+    "common-practice thresholds), not as a gate. Action rates: each group's action rate against "
+    "the version's promise (and, under demographic parity, its gap to the reference group), "
+    "with the monthly checks' tests. All tests of the day form one family adjusted by the audit "
+    "plan's method at level/365, so the chance of any false warning in a policy-year is at most "
+    "the level."
 )
 
 
@@ -32,6 +35,7 @@ class DriftItem(_Model):
     psi: float | None
     p_value: float | None
     p_adjusted: float | None
+    draws: int | None
     status: str
 
 
@@ -76,6 +80,7 @@ def warnings_body(policy: str, day: date, time_zone: str, w: DayWarnings) -> Day
                 psi=None if small else r.psi,
                 p_value=None if small else r.p_value,
                 p_adjusted=None if small else r.p_adjusted,
+                draws=None if small else r.draws,
                 status=r.status,
             )
         )

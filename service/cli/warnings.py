@@ -12,6 +12,7 @@ from service.audit.warnings_model import warnings_body
 from service.cli.common import CliError
 from service.errors import ServiceError
 from service.settings import Settings
+from service.stats.drift import PSI_MAJOR, PSI_MODERATE
 from service.store.db import create_db_engine, create_session_factory
 
 
@@ -50,9 +51,23 @@ def _run(args: argparse.Namespace) -> int:
         f"{body.tests} test(s) at level {body.level:.2g}"
     )
     for d in body.drift:
-        if d.status.endswith("drift"):
-            print(f"  [{d.status}] v{d.version} {d.group}: PSI {d.psi:.3f}, p {d.p_adjusted:.2g}")
+        if d.status == "drift":
+            print(
+                f"  [drift] v{d.version} {d.group}: p {d.p_adjusted:.2g} (adjusted), "
+                f"PSI {d.psi:.3f} ({psi_band(d.psi)})"
+            )
     for a in body.action_rates:
         if a.status == "warning":
             print(f"  [warning] v{a.version} {a.message}")
     return 0
+
+
+def psi_band(psi: float | None) -> str:
+    """The common-practice reading of the index (a description, not a test)."""
+    if psi is None:
+        return "withheld"
+    if psi >= PSI_MAJOR:
+        return "major shift by common practice"
+    if psi >= PSI_MODERATE:
+        return "moderate shift by common practice"
+    return "stable by common practice"

@@ -1,20 +1,23 @@
-"""Score drift: the homogeneity test against scipy, the PSI against a direct computation and
-its properties, and how often the PSI thresholds are crossed by chance."""
+"""Score drift: the homogeneity test against scipy, the Monte Carlo homogeneity test against an
+exact enumeration and against scipy's chi-square p-value at large counts, the PSI against a
+direct computation and its properties, and how often the PSI thresholds are crossed by chance."""
 
 from __future__ import annotations
 
+import itertools
 import math
 
 import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from scipy.stats import chi2_contingency
+from scipy.stats import chi2_contingency, multivariate_hypergeom
 
 from service.stats.drift import (
     PSI_MAJOR,
     PSI_MODERATE,
     HomogeneityTest,
+    homogeneity_mc_test,
     homogeneity_test,
     population_stability_index,
 )
@@ -129,3 +132,117 @@ def test_chance_psi_by_daily_sample_size() -> None:
     assert np.mean(large > PSI_MODERATE) == 0.0
     # n * PSI is close to chi-square with 9 degrees of freedom (mean 9) once bins are full.
     assert np.mean(large) * 2000 == pytest.approx(9.0, rel=0.05)
+
+
+def exact_conditional_p(baseline: list[int], current: list[int]) -> float:
+    """P(X^2 >= observed) over every 2 x B table with the observed margins, each weighted by
+    its multivariate hypergeometric probability (scipy.stats.multivariate_hypergeom), with
+    X^2 from scipy.stats.chi2_contingency (Pearson 1900): the exact conditional test of
+    homogeneity given both margins (Freeman and Halton 1951, Biometrika 38:141-149, with
+    Pearson's statistic as the ordering)."""
+    pooled = [b + c for b, c in zip(baseline, current, strict=True)]
+    n = sum(current)
+
+    def stat(day: tuple[int, ...]) -> float:
+        table = [[t - x for t, x in zip(pooled, day, strict=True)], list(day)]
+        return float(chi2_contingency(table, correction=False).statistic)
+
+    observed = stat(tuple(current))
+    total = 0.0
+    for day in itertools.product(*[range(min(t, n) + 1) for t in pooled]):
+        if sum(day) == n and stat(day) >= observed - 1e-9:
+            total += float(multivariate_hypergeom.pmf(list(day), m=pooled, n=n))
+    return total
+
+
+@pytest.mark.parametrize(
+    ("baseline", "current", "too_small"),
+    [
+        ([6, 9, 4, 3], [0, 2, 4, 3], False),  # small bins (exact 0.121, chi-square 0.108)
+        ([1, 15, 9, 10], [2, 0, 0, 5], True),  # a near-empty baseline bin (0.0061, 0.0042)
+        ([0, 10, 7, 9], [2, 1, 1, 1], True),  # cases in an empty baseline bin (0.024, 0.011)
+        ([0, 1, 20, 20], [1, 1, 2, 2], True),  # two near-empty bins (0.044, 0.020)
+    ],
+)
+def test_monte_carlo_p_value_matches_an_exact_enumeration(
+    baseline: list[int], current: list[int], too_small: bool
+) -> None:
+    exact = exact_conditional_p(baseline, current)
+    draws = 200_000
+    # No early stop (stop_after above max_draws): the fixed-size Monte Carlo p-value of Hope
+    # (1968), (g + 1) / (draws + 1), whose standard error is about sqrt(p (1 - p) / draws).
+    ours = homogeneity_mc_test(
+        baseline, current, max_draws=draws, seed=[3, sum(current)], stop_after=draws + 1
+    )
+    assert ours.draws == draws
+    # The same statistic as the chi-square test (checked against scipy above).
+    assert ours.statistic == pytest.approx(homogeneity_test(baseline, current).statistic)
+    se = math.sqrt(exact * (1 - exact) / draws)
+    assert ours.p_value == pytest.approx(exact, abs=4 * se + 1 / draws)
+    if too_small:  # where the defect came from: the chi-square p-value is too small
+        assert homogeneity_test(baseline, current).p_value < exact - 8 * se
+
+
+def test_monte_carlo_p_value_agrees_with_chi_square_at_large_counts() -> None:
+    # Expected counts in the hundreds: Pearson's chi-square approximation holds (scipy.stats.
+    # chi2_contingency's p-value, Pearson 1900), and the exact conditional p-value is close.
+    baseline = [1000, 980, 1010, 1005, 995, 1002, 990, 1008, 1003, 1007]
+    current = [460, 410, 405, 400, 395, 390, 380, 370, 340, 450]
+    ref = chi2_contingency([baseline, current], correction=False)
+    draws = 40_000
+    ours = homogeneity_mc_test(baseline, current, max_draws=draws, seed=9, stop_after=draws + 1)
+    assert ours.statistic == pytest.approx(ref.statistic, rel=1e-12)
+    assert 0.01 < ref.pvalue < 0.2
+    se = math.sqrt(ref.pvalue * (1 - ref.pvalue) / draws)
+    assert ours.p_value == pytest.approx(ref.pvalue, abs=5 * se + 0.002)
+
+
+def test_sequential_p_value_stops_early_and_keeps_its_level() -> None:
+    baseline = [40, 35, 30, 25, 20, 15, 10, 5, 2, 1]
+    pooled = np.array(baseline) + 30  # margins of the tables drawn below
+    rng = np.random.default_rng(11)
+    alpha = 0.05
+    p_values, draws = [], []
+    for i in range(2000):
+        # A day from the null: given the margins, the day's bins are a draw without
+        # replacement from the pooled table (numpy's multivariate hypergeometric sampler).
+        day = rng.multivariate_hypergeometric(pooled, 30)
+        base = (pooled - day).tolist()
+        t = homogeneity_mc_test(base, day.tolist(), max_draws=5000, seed=[11, i])
+        p_values.append(t.p_value)
+        draws.append(t.draws)
+        if t.draws < 5000:
+            # Besag and Clifford (1991, Biometrika 78:301-304): stopped at the h-th
+            # exceedance after l draws, p = h / l.
+            assert t.exceedances == 10 and t.p_value == pytest.approx(10 / t.draws)
+        else:
+            assert t.p_value == pytest.approx((t.exceedances + 1) / 5001)
+    # Valid at any level: P(p <= alpha) <= alpha (binomial slack of 3 standard errors).
+    rate = np.mean(np.array(p_values) <= alpha)
+    assert rate <= alpha + 3 * math.sqrt(alpha * (1 - alpha) / 2000)
+    assert rate > 0.02  # and not far below it (the statistic is nearly continuous here)
+    assert np.median(draws) < 40  # most null days stop after a few dozen draws
+
+
+def test_one_case_in_an_empty_baseline_bin_is_not_extreme() -> None:
+    # The defect's reproducer (error-rates.md): the chi-square p-value is 6.7e-06.
+    baseline = [0, 16, 44, 66, 153, 200, 307, 365, 372, 425]
+    day = [1, 0, 1, 2, 4, 5, 8, 9, 9, 10]
+    assert homogeneity_test(baseline, day).p_value < 1e-5
+    ours = homogeneity_mc_test(baseline, day, max_draws=100_000, seed=1)
+    # Given the margins the lone pooled row of the first bin is in the day's sample with
+    # probability 49 / 1997 (hypergeometric), so the exact p-value is at least that.
+    assert ours.p_value > 0.01
+    again = homogeneity_mc_test(baseline, day, max_draws=100_000, seed=1)
+    assert again == ours  # same seed, same p-value
+
+
+def test_monte_carlo_test_edge_cases() -> None:
+    assert homogeneity_mc_test([0, 7, 0], [0, 3, 0], max_draws=10, seed=0).p_value == 1.0
+    with pytest.raises(ValueError, match="whole counts"):
+        homogeneity_mc_test([1.5, 2], [1, 1], max_draws=10, seed=0)
+    with pytest.raises(ValueError, match="max_draws"):
+        homogeneity_mc_test([1, 2], [1, 1], max_draws=0, seed=0)
+    # A shift far beyond chance: no draw reaches it, the p-value is 1 / (max_draws + 1).
+    far = homogeneity_mc_test([500, 500], [0, 400], max_draws=999, seed=0)
+    assert (far.p_value, far.draws, far.exceedances) == (1 / 1000, 999, 0)
