@@ -21,7 +21,8 @@ resample's promise ``p_b``. What the standard error describes is chosen by ``met
   calibration sample to another, which the promise and the truth of that rule share.
 * ``"promise"`` (:data:`PROMISE_METHOD`, documents derived before the error bootstrap): the
   sample standard deviation of ``p_b`` itself; it counts that shared movement as error too,
-  and overstates the error (about 3 to 4 times for the demo's largest groups).
+  and overstated the error 1.7 to 2 times for the demo's largest groups' FPR and action
+  rate (docs/error-rates.md).
 
 A drawn row keeps the fold of the row it copies (the fresh split is made on the original
 rows, stratified by group and outcome as :func:`assign_folds` does), so no row is ever both
