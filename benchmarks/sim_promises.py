@@ -19,8 +19,18 @@ two-sample test gives a cross-fitted promise (a proportion over its out-of-sampl
 denominator; root mean square over the samples), and the true TPR gaps between the groups the
 promise covers.
 
+With ``--bootstrap-samples M`` the first M samples also bootstrap their promises' standard
+errors as ``evenhand derive`` does (``bootstrap_spreads``, ``--resamples`` resamples, seed
+as the derive default), by both estimators from the same resamples: the spread of the
+resampled promise (``promise``, the first estimator) and the spread of the resampled
+promise's error against its own rules' rate on the original rows (``error``, the default).
+A table then sets their root mean square over those M samples beside the binomial standard
+error and the MEASURED standard deviation of promise minus truth over all samples: the
+standard error the audit should be given is that measured one.
+
     .venv/bin/python benchmarks/sim_promises.py [--seed N] [--samples 500]
-        [--truth-rows 10000000] [--quick] [--json out.json]
+        [--truth-rows 10000000] [--bootstrap-samples 0] [--resamples 40] [--quick]
+        [--json out.json]
 """
 
 from __future__ import annotations
@@ -52,6 +62,7 @@ from service.policy.document import (
     Rule,
     resolve_rule_key,
 )
+from service.policy.promise_spread import ERROR_METHOD, PROMISE_METHOD, bootstrap_spreads
 from service.policy.units import CalibrationData, DeriveError, DeriveSettings, prepare
 
 CRITERION = Criterion.EQUAL_OPPORTUNITY
@@ -147,9 +158,11 @@ class Derived:
     true: dict[str, dict[str, float]]
     outside: frozenset[str]
     reference: str
+    spreads: dict[str, dict[str, dict[str, float | None]]] | None = None
+    """Bootstrap standard errors by estimator, group and rate (with --bootstrap-samples)."""
 
 
-def derive_one(seed: int, truth: dict[str, Population]) -> Derived:
+def derive_one(seed: int, truth: dict[str, Population], resamples: int = 0) -> Derived:
     data = calibration_data(ROWS, seed)
     prepared = prepare(data, SETTINGS)
     solution = solve(prepared, CRITERION, TOLERANCE)
@@ -198,7 +211,18 @@ def derive_one(seed: int, truth: dict[str, Population]) -> Derived:
         true[key] = truth[key].rates(rule)
     outside = frozenset(k for k, t in doc.targets.groups.items() if t.outside_promise)
     reference = max(doc.targets.groups, key=lambda k: (doc.targets.groups[k].n or 0, k))
-    return Derived(in_sample, cross_fitted, binomial_sd, true, outside, reference)
+    spreads = None
+    if resamples:
+        found = bootstrap_spreads(
+            prepared,
+            CRITERION,
+            TOLERANCE,
+            DEFAULT_FOLDS,
+            methods=(PROMISE_METHOD, ERROR_METHOD),
+            resamples=resamples,
+        )
+        spreads = {m: found[m].standard_errors for m in found}
+    return Derived(in_sample, cross_fitted, binomial_sd, true, outside, reference, spreads)
 
 
 def summary(values: Sequence[float]) -> dict[str, float]:
@@ -225,16 +249,66 @@ def fmt(s: dict[str, float]) -> list[str]:
     ]
 
 
+def rms(values: Sequence[float | None]) -> float:
+    """Root mean square of the defined values (NaN if none)."""
+    kept = [v for v in values if v is not None]
+    return float(np.sqrt(np.mean(np.square(kept)))) if kept else float("nan")
+
+
+def standard_error_table(
+    derived: Sequence[Derived], booted: Sequence[Derived], groups: Sequence[str], resamples: int
+) -> list[dict[str, Any]]:
+    """Print and return, per rate and group, the binomial standard error, the two bootstrap
+    estimators' (root mean square over the bootstrapped samples) and the measured standard
+    deviation of promise minus truth (over all samples)."""
+    print(
+        f"\n## Standard error of a cross-fitted promise: bootstrap ({resamples} resamples, root "
+        f"mean square over {len(booted)} samples) against the measured sd of promise minus "
+        f"truth ({len(derived)} samples)\n"
+    )
+    print(
+        "| rate | group | binomial SE | bootstrap of the promise (before) | bootstrap of the "
+        "error (now) | measured sd | before / measured | now / measured |"
+    )
+    print("|---|---|---|---|---|---|---|---|")
+    rows: list[dict[str, Any]] = []
+    for name in RATES:
+        for key in groups:
+            measured = float(
+                np.std([d.cross_fitted[key][name] - d.true[key][name] for d in derived], ddof=1)
+            )
+            binomial = rms([d.binomial_sd[key][name] for d in booted])
+            by = {
+                m: rms([d.spreads[m][key][name] for d in booted if d.spreads is not None])
+                for m in (PROMISE_METHOD, ERROR_METHOD)
+            }
+            rows.append(
+                {"rate": name, "group": key, "binomial": binomial, "measured": measured, **by}
+            )
+            print(
+                f"| {name} | {cell_text(key)} | {binomial:.4f} | {by[PROMISE_METHOD]:.4f} | "
+                f"{by[ERROR_METHOD]:.4f} | {measured:.4f} | "
+                f"{by[PROMISE_METHOD] / measured:.2f} | {by[ERROR_METHOD] / measured:.2f} |"
+            )
+    return rows
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     parser.add_argument("--seed", type=int, default=DEFAULT_SEED, help="base seed")
     parser.add_argument("--samples", type=int, default=500, help="calibration samples")
     parser.add_argument("--truth-rows", type=int, default=10_000_000, help="fresh rows")
+    parser.add_argument(
+        "--bootstrap-samples", type=int, default=0, help="samples that also bootstrap"
+    )
+    parser.add_argument("--resamples", type=int, default=40, help="resamples per bootstrap")
     parser.add_argument("--quick", action="store_true", help="a few samples (smoke run)")
     parser.add_argument("--json", type=Path, default=None, help="also write the figures here")
     args = parser.parse_args(argv)
     samples = 3 if args.quick else args.samples
     truth_rows = 200_000 if args.quick else args.truth_rows
+    boot_samples = min(samples, args.bootstrap_samples)
+    resamples = min(5, args.resamples) if args.quick else args.resamples
     print(machine_header("benchmarks/sim_promises.py", list(argv or sys.argv[1:]), args.seed))
     started = time.perf_counter()
     truth, truth_se = truth_populations(truth_rows)
@@ -244,7 +318,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     for i in range(samples):
         seed = args.seed + 1 + i
         try:
-            derived.append(derive_one(seed, truth))
+            derived.append(derive_one(seed, truth, resamples if i < boot_samples else 0))
         except (DeriveError, RuntimeError) as exc:
             # Reported below and left out of the figures; not retried with another seed.
             failed.append({"seed": seed, "error": f"{type(exc).__name__}: {exc}"})
@@ -326,6 +400,9 @@ def main(argv: Sequence[str] | None = None) -> int:
             f"| {label} | {groups_text} | {s['mean']:.4f} | {s['median']:.4f} | "
             f"{s['p10']:.4f} to {s['p90']:.4f} | {max(values):.4f} | {above}/{samples} |"
         )
+    booted = [d for d in derived if d.spreads is not None]
+    if booted:
+        results["standard_errors"] = standard_error_table(derived, booted, groups, resamples)
     elapsed = time.perf_counter() - started
     results["seconds"] = {"truth": truth_seconds, "derive": derive_seconds, "total": elapsed}
     print(

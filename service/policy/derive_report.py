@@ -179,6 +179,7 @@ def build_report(
             "used": spread.used,
             "seed": resamples_seed,
             "stratified_by": ["group"],
+            "method": spread.method,
         },
         "expected_cost": cross.cost_per_case,
         "expected_cost_interval": [low, high],

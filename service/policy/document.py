@@ -230,12 +230,14 @@ class CalibrationCounts(_Strict):
 class PromiseErrors(_Strict):
     """Bootstrap standard errors of one group's cross-fitted promised rates.
 
-    Each is the standard deviation of the promised rate over resamples of the calibration rows
-    (rows drawn with replacement within each group, the cross-fitting run again on each;
-    Efron & Tibshirani 1993, An Introduction to the Bootstrap, ch. 6). The audit widens its
-    two-sample test of a promise by the design effect, this variance over the binomial
-    variance of the promise (Rao & Scott 1992). None: the rate was undefined on too many
-    resamples to say.
+    Each is the standard deviation of the promised rate's error over resamples of the
+    calibration rows (rows drawn with replacement within each group, the cross-fitting run
+    again on each; the error is the resample's promise minus the rate of the resample's own
+    fitted rules on the original rows: Efron & Tibshirani 1993, An Introduction to the
+    Bootstrap, ch. 10). Versions derived before that estimator store the standard deviation of
+    the resampled promise itself (larger; audited as stored). The audit widens its two-sample
+    test of a promise by the design effect, this variance over the binomial variance of the
+    promise (Rao & Scott 1992). None: the rate was undefined on too many resamples to say.
     """
 
     action_rate: NonNegative | None = None

@@ -307,7 +307,13 @@ def test_resamples_store_standard_errors_and_zero_skips_them(
     for target in policy.targets.groups.values():
         assert target.standard_errors is not None and target.standard_errors.tpr is not None
     report = json.loads((first / "report.json").read_text())
-    assert report["resamples"] == {"asked": 12, "used": 12, "seed": 3, "stratified_by": ["group"]}
+    assert report["resamples"] == {
+        "asked": 12,
+        "used": 12,
+        "seed": 3,
+        "stratified_by": ["group"],
+        "method": "error",
+    }
     # Seeded: the same run writes the same document.
     assert main(_argv(demo_csv, second, "--resamples", "12", "--resamples-seed", "3")) == 0
     assert (first / "policy.json").read_bytes() == (second / "policy.json").read_bytes()

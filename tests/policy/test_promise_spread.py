@@ -4,9 +4,12 @@ The bootstrap is checked where its answer is known from outside: for a FIXED rul
 group's action rate is a plain proportion of its rows, whose bootstrap standard error is
 sqrt(p (1 - p) / n) up to Monte Carlo error (Efron & Tibshirani 1993, An Introduction to the
 Bootstrap, ch. 6, from memory for the chapter: the ideal bootstrap standard error of a mean is
-the plug-in one, for a proportion sqrt(p_hat (1 - p_hat) / n)). Then the cross-fitted
-version: seeded, within groups, and wider than the binomial error of the out-of-sample
-counts for a large group (the defect it answers, docs/error-rates.md).
+the plug-in one, for a proportion sqrt(p_hat (1 - p_hat) / n)); the error bootstrap of a
+fixed rule (promise on the resample minus the rule's rate on the original rows; ch. 10) gives
+the same. The served rules' rates are checked against a direct reading of the step rule.
+Then the cross-fitted version: seeded, within groups, wider than the binomial error of the
+out-of-sample counts for a large group; and the error bootstrap against the MEASURED spread
+of promise minus truth on simulated calibration samples (the quantity it estimates).
 """
 
 from __future__ import annotations
@@ -19,11 +22,15 @@ import pytest
 from service.policy.crossfit import assign_folds, cross_fit
 from service.policy.derive import solve
 from service.policy.derive_document import PolicyIdentity, build_document
-from service.policy.document import Criterion, PolicyDocument
+from service.policy.document import Criterion, PolicyDocument, Rule
 from service.policy.promise_spread import (
+    ERROR_METHOD,
+    PROMISE_METHOD,
     bootstrap_errors,
+    bootstrap_spreads,
     bootstrap_standard_errors,
     resample_rows,
+    served_rates,
 )
 from service.policy.units import CalibrationData, DeriveError, DeriveSettings, prepare
 
@@ -73,6 +80,100 @@ def test_the_bootstrap_error_of_a_fixed_rules_rate_is_the_binomial_one() -> None
         assert se == pytest.approx(expected, rel=0.10)
 
 
+def test_the_error_bootstrap_of_a_fixed_rule_is_the_binomial_one() -> None:
+    # No refit: the resample's "promise" is the fixed rule's action rate on the resample, its
+    # truth in the bootstrap world the rate on the original rows (a constant), so the
+    # error's spread is the proportion's: sqrt(p (1 - p) / n) (Efron & Tibshirani 1993,
+    # ch. 6 and ch. 10, from memory for the chapters).
+    data = _draw(5, 6000)
+    acted = (data.scores >= 0.3).astype(float)
+    original = np.bincount(data.group_codes, weights=acted, minlength=3) / np.bincount(
+        data.group_codes, minlength=3
+    )
+
+    def error(rows: np.ndarray, rng: np.random.Generator) -> dict[str, np.ndarray]:
+        codes = data.group_codes[rows]
+        hits = np.bincount(codes, weights=acted[rows], minlength=3)
+        rate = hits / np.bincount(codes, minlength=3)
+        return {"action_rate": rate - original}
+
+    spread = bootstrap_standard_errors(
+        data.group_codes, data.group_keys, error, ("action_rate",), resamples=800, seed=4
+    )
+    for g, key in enumerate(data.group_keys):
+        n = int((data.group_codes == g).sum())
+        expected = math.sqrt(original[g] * (1 - original[g]) / n)
+        se = spread.of(key)["action_rate"]
+        assert se is not None and se == pytest.approx(expected, rel=0.10)
+
+
+def _direct_rates(rule: Rule, scores: np.ndarray, outcomes: np.ndarray) -> dict[str, float]:
+    """P(action | score) read off the step rule row by row (the last step starting at or
+    below the score), averaged over the group's rows, positives and negatives."""
+    starts = np.array([step.start for step in rule.steps])
+    probs = np.array([0.0] + [step.probability for step in rule.steps])
+    p = probs[np.searchsorted(starts, scores, side="right")]
+    return {
+        "action_rate": float(p.mean()),
+        "tpr": float(p[outcomes == 1].mean()),
+        "fpr": float(p[outcomes == 0].mean()),
+    }
+
+
+def test_served_rates_are_the_rules_expected_rates_on_the_rows() -> None:
+    data = _draw(6, 3000)
+    prepared = prepare(data, SETTINGS)
+    solution = solve(prepared, Criterion.EQUAL_OPPORTUNITY, 0.05)
+    other = _draw(7, 5000)  # rates of the same rules on rows they were not fitted on
+    for rows in (data, other):
+        rates = served_rates(rows, solution)
+        for g, result in enumerate(solution.groups):
+            mine = rows.group_codes == g
+            direct = _direct_rates(
+                solution.rules[result.rule_key], rows.scores[mine], rows.outcomes[mine]
+            )
+            for name, value in direct.items():
+                assert rates[name][g] == pytest.approx(value, abs=1e-12)
+
+
+def test_the_error_bootstrap_tracks_the_measured_error_of_the_promise() -> None:
+    # Simulated: the promise minus the TRUE rate of the served rule (its rate on 400,000
+    # fresh rows) over 60 calibration samples; the error bootstrap's standard error (root
+    # mean square over 4 samples, 30 resamples each) must match that spread within the
+    # Monte Carlo error of both (about 9% for an sd of 60 values and 7% for the bootstrap,
+    # common practice; allowed 35%), and the promise's own spread must be the larger.
+    crit = Criterion.EQUAL_OPPORTUNITY
+    fresh = _draw(10_000, 400_000)
+    errors: list[float] = []
+    boot: dict[str, list[float]] = {ERROR_METHOD: [], PROMISE_METHOD: []}
+    for i in range(60):
+        data = _draw(100 + i, 3000)
+        prepared = prepare(data, SETTINGS)
+        cross = cross_fit(prepared, [crit], assign_folds(data, 5, i), 5, 0.05)[crit]
+        assert not isinstance(cross, DeriveError)
+        truth = served_rates(fresh, solve(prepared, crit, 0.05))
+        errors.append(float(cross.counts().fpr[0] - truth["fpr"][0]))
+        if i < 4:
+            both = bootstrap_spreads(
+                prepared,
+                crit,
+                0.05,
+                5,
+                methods=(ERROR_METHOD, PROMISE_METHOD),
+                resamples=30,
+                seed=i,
+            )
+            for method, spread in both.items():
+                se = spread.of("0")["fpr"]
+                assert se is not None
+                boot[method].append(se)
+    measured = float(np.std(errors, ddof=1))
+    error_se = math.sqrt(float(np.mean(np.square(boot[ERROR_METHOD]))))
+    promise_se = math.sqrt(float(np.mean(np.square(boot[PROMISE_METHOD]))))
+    assert error_se == pytest.approx(measured, rel=0.35)
+    assert promise_se > error_se
+
+
 def test_cross_fitted_errors_are_seeded_and_wider_than_binomial_for_the_largest_group() -> None:
     data = _draw(2, 4000)
     prepared = prepare(data, SETTINGS)
@@ -116,7 +217,11 @@ def test_the_document_stores_the_errors_and_stays_valid_without_them() -> None:
     assert all(t.standard_errors is None for t in plain.targets.groups.values())
 
 
-def test_too_few_resamples_are_refused() -> None:
+def test_too_few_resamples_and_unknown_methods_are_refused() -> None:
     data = _draw(4, 500)
     with pytest.raises(DeriveError, match="at least 2"):
         bootstrap_errors(prepare(data, SETTINGS), Criterion.EQUAL_OPPORTUNITY, 0.05, 5, resamples=1)
+    with pytest.raises(DeriveError, match="spread methods"):
+        bootstrap_errors(
+            prepare(data, SETTINGS), Criterion.EQUAL_OPPORTUNITY, 0.05, 5, method="refits"
+        )
