@@ -132,7 +132,10 @@ def test_evidence_properties(n1: float, n2: float, f1: float, f2: float, floor: 
 def test_monotone_in_k1_near_and_above_the_floor(n1: int, n2: int, f2: float, floor: float) -> None:
     # More successes in sample 1 never strengthen the evidence of a breach (and never weaken
     # the evidence of holding) while r_hat >= floor / 4. Excluded: the step into k1 = n1,
-    # where the zero-cell rule starts (it moves p-values that are within 1e-6 of 0 or 1).
+    # where the zero-cell rule starts: its half-case correction can move a p-value the wrong
+    # way by up to 2.4e-4 (largest found on a grid of n1 <= 300, n2 <= 300, e.g. 299/300 ->
+    # 300/300 against 20/21 at floor 0.9: p_inside 0.00102 -> 0.00126), so that step is only
+    # held to 5e-4.
     k2 = round(f2 * n2)
     ev = [ratio_floor_evidence(k1, n1, k2, n2, floor) for k1 in range(n1 + 1)]
     for k1, (a, b) in enumerate(itertools.pairwise(ev)):
@@ -140,8 +143,8 @@ def test_monotone_in_k1_near_and_above_the_floor(n1: int, n2: int, f2: float, fl
             assert b.p_outside >= a.p_outside - 1e-12
             assert b.p_inside <= a.p_inside + 1e-12
         if k1 + 1 == n1:
-            assert b.p_outside >= a.p_outside - 1e-6
-            assert b.p_inside <= a.p_inside + 1e-6
+            assert b.p_outside >= a.p_outside - 5e-4
+            assert b.p_inside <= a.p_inside + 5e-4
 
 
 def test_not_monotone_far_below_the_floor() -> None:
