@@ -10,7 +10,17 @@ from contextlib import asynccontextmanager
 import anyio.to_thread
 from fastapi import FastAPI
 
-from service.api import health, keys, log, outcomes, policies, recommendations, reports, warnings
+from service.api import (
+    decisions,
+    health,
+    keys,
+    log,
+    outcomes,
+    policies,
+    recommendations,
+    reports,
+    warnings,
+)
 from service.api.deps import KeyCache
 from service.api.errors import error_responses, install_error_handlers
 from service.api.limits import BodySizeLimit
@@ -102,6 +112,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         keys.router,
         log.router,
         outcomes.router,
+        decisions.router,
         reports.router,
         warnings.router,
     ):

@@ -290,3 +290,31 @@ def report_file(
     with _read_session(request) as session:
         content = get_snapshot(session, name, AuditMonth.parse(month), snapshot, "published")
     return actions.report_response(content, name, month, kind, REPORT_CSP)
+
+
+# --- decision look-up (audit) ----------------------------------------------------------------
+
+
+@router.get("/decisions")
+def decision_page(request: Request, who: Who, id: str = "") -> Response:
+    from service.store.decision_lookup import find_decision
+
+    _require_audit(who)
+    wanted = id.strip()[:128]
+    decision, message, status_code = None, None, 200
+    if wanted:
+        with _read_session(request) as session:
+            try:
+                decision = find_decision(session, wanted)
+            except NotFound as exc:
+                message, status_code = exc.message, 404
+    return render(
+        request,
+        "decision.html",
+        status_code,
+        who=who,
+        title="Decision look-up",
+        wanted=wanted,
+        decision=decision,
+        message=message,
+    )
