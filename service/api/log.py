@@ -12,6 +12,7 @@ from fastapi import APIRouter, Query, Request
 from fastapi.responses import StreamingResponse
 from pydantic import BaseModel, Field
 from sqlalchemy import select
+from sqlalchemy.orm import Session
 
 from service.api.deps import AuditKey, ReadSession
 from service.api.errors import error_responses
@@ -234,10 +235,14 @@ def month_bundle(
     """The same file as ``evenhand log bundle``: 404 ``no_snapshot`` when the month has no
     report snapshot, 422 ``not_sealed`` when its snapshot is not sealed yet. The bundle is
     written to a temporary file (in memory up to 8 MB) and then streamed."""
-    parsed = Month.parse(month)
+    return bundle_response(session, policy, Month.parse(month))
+
+
+def bundle_response(session: Session, policy: str, month: Month) -> StreamingResponse:
+    """The month bundle as a download (also served by the console)."""
     spool = tempfile.SpooledTemporaryFile(max_size=_SPOOL)  # noqa: SIM115 - closed by the stream
     try:
-        export_month(session, policy, parsed, spool)  # type: ignore[arg-type]
+        export_month(session, policy, month, spool)  # type: ignore[arg-type]
     except BaseException:
         spool.close()
         raise
@@ -248,7 +253,7 @@ def month_bundle(
             while data := spool.read(_CHUNK):
                 yield data
 
-    name = f"{policy}-{parsed}.ehb"
+    name = f"{policy}-{month}.ehb"
     return StreamingResponse(
         chunks(),
         media_type="application/x-ndjson",
