@@ -386,3 +386,45 @@ def _bundle(request: Request, name: str, month: str) -> Response:
 
     with _read_session(request) as session:
         return bundle_response(session, name, AuditMonth.parse(month))
+
+
+# --- the log (audit) -----------------------------------------------------------------------
+
+
+def _latest_head(request: Request) -> dict[str, Any] | None:
+    from sqlalchemy import select
+
+    from service.store.audit_models import Seal
+    from service.store.sealing import signed_head
+
+    with _read_session(request) as session:
+        seal = session.scalars(select(Seal).order_by(Seal.id.desc()).limit(1)).first()
+        return None if seal is None else signed_head(seal)
+
+
+@router.get("/log")
+def log_page(request: Request, who: Who) -> Response:
+    _require_audit(who)
+    return render(
+        request, "log.html", who=who, title="The log", head=_latest_head(request), result=None
+    )
+
+
+@router.post("/log/verify")
+def log_verify(request: Request, who: Who, form: PostedForm) -> Response:
+    """Recompute the whole log: the same function as ``GET /v1/log/verify``."""
+    from service.store.log_verify import verify_log
+    from service.store.signing import trusted_public_keys
+
+    check_csrf(form, who.csrf)
+    _require_audit(who)
+    settings = request.app.state.settings
+    result = verify_log(request.app.state.session_factory, trusted_public_keys(settings))
+    return render(
+        request,
+        "log.html",
+        who=who,
+        title="The log",
+        head=_latest_head(request),
+        result=result,
+    )
