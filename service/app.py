@@ -10,7 +10,18 @@ from contextlib import asynccontextmanager
 import anyio.to_thread
 from fastapi import FastAPI
 
-from service.api import health, keys, log, outcomes, policies, recommendations, reports, warnings
+from service.api import (
+    decisions,
+    docs,
+    health,
+    keys,
+    log,
+    outcomes,
+    policies,
+    recommendations,
+    reports,
+    warnings,
+)
 from service.api.deps import KeyCache
 from service.api.errors import error_responses, install_error_handlers
 from service.api.limits import BodySizeLimit
@@ -86,6 +97,9 @@ def create_app(settings: Settings | None = None) -> FastAPI:
             "an ErrorResponse."
         ),
         lifespan=lifespan,
+        # /docs is our own route: Swagger UI served from the installed package, no CDN.
+        docs_url=None,
+        redoc_url=None,
     )
     app.state.settings = settings
     app.state.signer = signer
@@ -102,6 +116,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         keys.router,
         log.router,
         outcomes.router,
+        decisions.router,
         reports.router,
         warnings.router,
     ):
@@ -110,6 +125,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     from service.console.routes import router as console_router
 
     app.include_router(console_router)
+    app.include_router(docs.docs_router())
     app.include_router(metrics_router(settings.metrics_access), include_in_schema=False)
     app.state.request_metrics = RequestMetrics()
     app.state.db_metrics = DatabaseCollector(app.state)

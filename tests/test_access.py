@@ -51,6 +51,7 @@ ACCESS: dict[tuple[str, str], str] = {
     ("POST", "/v1/outcomes"): "scoring",
     ("POST", "/v1/outcomes/batch"): "scoring",
     ("POST", "/v1/recommendations/{recommendation_id}/final"): "scoring",
+    ("GET", "/v1/recommendations/{recommendation_id}"): "audit",
 }
 CALLERS = ["scoring", "audit", "admin", "none", "bad", "revoked"]
 

@@ -4,8 +4,10 @@
 The draft's author is refused the approval (four-eyes) and a form stripped of its CSRF token
 is refused; a second admin signs in, opens the draft, approves it through the confirmation
 page and finds the approval in the history; the browser reports no console error on the
-way (a Content-Security-Policy violation is one). Skipped when Chromium or Playwright is missing,
-except under CI=true, where that fails.
+way (a Content-Security-Policy violation is one). The auditor signs in, opens a month's
+report, the months per group and check, a decision and the log's verification, and the API
+docs page draws itself: with every request to another host refused (none is made).
+Skipped when Chromium or Playwright is missing, except under CI=true, where that fails.
 """
 
 from __future__ import annotations
@@ -13,8 +15,11 @@ from __future__ import annotations
 import os
 import shutil
 from collections.abc import Iterator
+from dataclasses import dataclass
+from datetime import UTC, datetime
 from pathlib import Path
 
+import httpx
 import pytest
 from sqlalchemy.orm import Session, sessionmaker
 
@@ -23,7 +28,7 @@ from service.settings import Settings
 from service.store import lifecycle
 from service.store.db import create_db_engine, create_session_factory
 from service.store.migrate import upgrade
-from tests.helpers import TEST_SECRET, actor, create_key, make_policy
+from tests.helpers import TEST_SECRET, actor, bearer, create_key, make_policy, make_request
 from tests.insert_only import changes_allowed
 
 CHROMIUM = os.environ.get("EVENHAND_TEST_CHROMIUM", "/usr/bin/chromium")
@@ -61,15 +66,21 @@ def served(tmp_path: Path) -> Iterator[tuple[ServerProcess, dict[str, str]]]:
         server.stop()
 
 
-def test_admin_approves_a_draft_in_the_browser(
-    served: tuple[ServerProcess, dict[str, str]],
-) -> None:
+def _need_browser() -> None:
     if shutil.which(CHROMIUM) is None:
         _unavailable(f"no Chromium at {CHROMIUM} (apt-get install chromium)")
     try:
-        from playwright.sync_api import sync_playwright
+        import playwright.sync_api  # noqa: F401
     except ImportError:
         _unavailable("the playwright package is not installed (pip install -e '.[test]')")
+
+
+def test_admin_approves_a_draft_in_the_browser(
+    served: tuple[ServerProcess, dict[str, str]],
+) -> None:
+    _need_browser()
+    from playwright.sync_api import sync_playwright
+
     server, tokens = served
     errors: list[str] = []
     with sync_playwright() as p:
@@ -133,4 +144,157 @@ def test_admin_approves_a_draft_in_the_browser(
             assert page.url.endswith("/console/sign-in")
         finally:
             browser.close()
+    assert errors == [], errors
+
+
+@dataclass
+class Audited:
+    server: ServerProcess
+    auditor: str
+    month: str
+    recommendation_id: str
+    case_id: str
+
+
+@pytest.fixture
+def audited(tmp_path: Path) -> Iterator[Audited]:
+    """A live policy with targets, decisions with outcomes and a month's audit, all made
+    through the served API."""
+    from tests.audit_helpers import audit_policy
+
+    url = f"sqlite:///{tmp_path / 'audit.db'}"
+    with changes_allowed():
+        upgrade(url)
+    engine = create_db_engine(Settings(database_url=url))
+    factory: sessionmaker[Session] = create_session_factory(engine)
+    author, approver, scorer, auditor = (
+        create_key(factory, role, name)
+        for role, name in (
+            ("admin", "ada-author"),
+            ("admin", "bo-approver"),
+            ("scoring", "ward-feed"),
+            ("audit", "cy-auditor"),
+        )
+    )
+    engine.dispose()
+    server = ServerProcess(
+        {"EVENHAND_DATABASE_URL": url, "EVENHAND_DRAW_SECRET": TEST_SECRET},
+        tmp_path / "server.log",
+    )
+    server.start()
+    try:
+        with httpx.Client(base_url=server.base_url, timeout=30) as api:
+            r = api.post(
+                "/v1/policies/readmission/versions", json=audit_policy(), headers=bearer(author)
+            )
+            assert r.status_code == 201, r.text
+            r = api.post("/v1/policies/readmission/versions/1/approve", headers=bearer(approver))
+            assert r.status_code == 200, r.text
+            body = {"version": 1, "reason": "go", "expected_current": None}
+            r = api.post("/v1/policies/readmission/activate", json=body, headers=bearer(author))
+            assert r.status_code == 200, r.text
+            now = datetime.now(UTC).isoformat()
+            items = [
+                make_request(
+                    score=(i % 20) / 20 + 0.025,
+                    attributes={"region": ("north", "south", "east")[i % 3]},
+                )
+                for i in range(150)
+            ]
+            r = api.post("/v1/recommendations/batch", json={"items": items}, headers=bearer(scorer))
+            assert r.status_code == 201, r.text
+            decided = r.json()["items"]
+            outcomes = [
+                {
+                    "recommendation_id": d["recommendation_id"],
+                    "outcome": int(i % 20 >= 8),
+                    "source": "records",
+                    "observed_at": now,
+                }
+                for i, d in enumerate(decided)
+            ]
+            r = api.post("/v1/outcomes/batch", json={"items": outcomes}, headers=bearer(scorer))
+            assert r.status_code == 201, r.text
+            month = datetime.now(UTC).strftime("%Y-%m")
+            body = {"policy": "readmission", "month": month, "provisional": True}
+            r = api.post("/v1/audits", json=body, headers=bearer(auditor))
+            assert r.status_code == 201, r.text
+        yield Audited(
+            server, auditor, month, decided[0]["recommendation_id"], decided[0]["case_id"]
+        )
+    finally:
+        server.stop()
+
+
+def test_the_auditor_reads_a_report_and_a_decision_offline(audited: Audited) -> None:
+    _need_browser()
+    from playwright.sync_api import Route, sync_playwright
+
+    base = audited.server.base_url
+    errors: list[str] = []
+    elsewhere: list[str] = []
+
+    def only_this_host(route: Route) -> None:
+        # The network is cut off: a request to any other host fails (and is recorded).
+        if route.request.url.startswith(base + "/"):
+            route.continue_()
+        else:
+            elsewhere.append(route.request.url)
+            route.abort()
+
+    with sync_playwright() as p:
+        browser = p.chromium.launch(executable_path=CHROMIUM, headless=True)
+        try:
+            page = browser.new_page()
+            page.route("**/*", only_this_host)
+            page.on("console", lambda m: errors.append(m.text) if m.type == "error" else None)
+            page.on("pageerror", lambda e: errors.append(str(e)))
+            page.on(
+                "response",
+                lambda r: errors.append(f"{r.status} {r.url}") if r.status >= 400 else None,
+            )
+            page.goto(f"{base}/console")
+            page.get_by_label("API key").fill(audited.auditor)
+            page.get_by_role("button", name="Sign in").click()
+            page.wait_for_url("**/console/policies")
+
+            # The month's report: the checks table, maturity and the downloads.
+            page.get_by_role("link", name="Reports").click()
+            page.get_by_role("link", name="readmission").click()
+            page.get_by_role("link", name=audited.month, exact=True).click()
+            page.wait_for_url(f"**/console/reports/readmission/{audited.month}")
+            assert page.get_by_role("heading", level=1).inner_text() == (
+                f"readmission: audit of {audited.month}"
+            )
+            checks = page.locator("table", has_text="Equivalence p (adjusted)")
+            assert checks.locator("tbody tr").count() > 0
+            assert page.get_by_role("link", name="Month bundle (.ehb)").count() == 1
+            # The months per group and check.
+            page.get_by_role("link", name="The twelve months up to").click()
+            page.wait_for_url("**/console/reports/readmission/history**")
+            assert page.locator("h2", has_text="north").count() > 0
+
+            # One decision, looked up by its id.
+            page.get_by_role("link", name="Decisions").click()
+            page.get_by_label("Recommendation id").fill(audited.recommendation_id)
+            page.get_by_role("button", name="Look up").click()
+            page.wait_for_url("**/console/decisions?id=*")
+            text = page.locator("main").inner_text()
+            assert audited.case_id in text and "readmission v1" in text
+            assert "records" in text  # the outcome's source: the outcome is shown
+
+            # The log: the head and a verification run.
+            page.get_by_role("link", name="Log").click()
+            page.get_by_role("button", name="Verify the log now").click()
+            assert page.get_by_role("status").inner_text().startswith(("Verified", "Problem"))
+            assert "Verified" in page.get_by_role("status").inner_text()
+
+            # The API docs page draws itself from this host alone.
+            page.goto(f"{base}/docs")
+            page.wait_for_selector(".swagger-ui .info .title")
+            assert "Evenhand" in page.locator(".swagger-ui .info .title").inner_text()
+            assert page.get_by_role("button", name="Authorize").count() == 1
+        finally:
+            browser.close()
+    assert elsewhere == [], elsewhere
     assert errors == [], errors

@@ -57,3 +57,32 @@ def test_bounds_are_documented(client: TestClient) -> None:
         assert body["required"] == ["items"] and body["properties"]["items"]["minItems"] == 1
     observed = schemas["OutcomeRequest"]["properties"]["observed_at"]["description"]
     assert "not before the recommendation was issued, nor in the future" in observed
+
+
+def test_bearer_scheme_is_declared_on_every_route_that_needs_a_key(client: TestClient) -> None:
+    from tests.test_access import ACCESS, PUBLIC
+
+    doc = client.get("/openapi.json").json()
+    scheme = doc["components"]["securitySchemes"]["apiKey"]
+    assert scheme["type"] == "http" and scheme["scheme"] == "bearer"
+    for path, ops in doc["paths"].items():
+        for method, op in ops.items():
+            needs_key = ACCESS[(method.upper(), path)] != PUBLIC
+            assert (op.get("security") == [{"apiKey": []}]) is needs_key, (method, path)
+
+
+def test_docs_page_loads_only_from_this_host(client: TestClient) -> None:
+    import re
+
+    page = client.get("/docs")
+    assert page.status_code == 200
+    urls = re.findall(r'(?:src|href)="([^"]*)"', page.text)
+    assert urls and all(u.startswith("/") and not u.startswith("//") for u in urls), urls
+    assert "https://" not in page.text and "http://" not in page.text
+    assert "validatorUrl" in page.text  # the public validator badge is off
+    for url in urls:
+        asset = client.get(url)
+        assert asset.status_code == 200, url
+        assert len(asset.content) > 500, url
+    assert client.get("/docs/assets/index.html").status_code == 404
+    assert client.get("/redoc").status_code == 404

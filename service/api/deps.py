@@ -16,6 +16,7 @@ from typing import Annotated
 
 from fastapi import Depends, Request
 from fastapi.concurrency import run_in_threadpool
+from fastapi.security import HTTPAuthorizationCredentials, HTTPBearer
 from sqlalchemy.orm import Session, sessionmaker
 
 from service.errors import Forbidden, Unauthorized
@@ -141,11 +142,22 @@ async def _lookup(request: Request, token: str) -> Caller | None:
     return await run_in_threadpool(_lookup_in_db, request, digest, token)
 
 
+BEARER_SCHEME = HTTPBearer(
+    auto_error=False,
+    scheme_name="apiKey",
+    description="An Evenhand API key (`evenhand keys create`), sent as "
+    "`Authorization: Bearer eh_...`. Each route needs one role: scoring, audit or admin.",
+)
+"""Declares the bearer scheme in the OpenAPI document on every route that needs a key (so
+/docs can send one). It reads nothing itself: ``check`` parses the header."""
+DeclaredBearer = Annotated[HTTPAuthorizationCredentials | None, Depends(BEARER_SCHEME)]
+
+
 def require_role(*roles: str) -> Callable[..., Awaitable[Caller]]:
     """A dependency that admits keys with one of ``roles`` and returns the caller."""
     allowed = frozenset(roles)
 
-    async def check(request: Request) -> Caller:
+    async def check(request: Request, _declared: DeclaredBearer = None) -> Caller:
         key = await _lookup(request, _bearer_token(request))
         if key is None:
             raise Unauthorized("unknown or revoked API key")

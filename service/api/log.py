@@ -12,9 +12,11 @@ from fastapi import APIRouter, Query, Request
 from fastapi.responses import StreamingResponse
 from pydantic import BaseModel, Field
 from sqlalchemy import select
+from sqlalchemy.orm import Session
 
 from service.api.deps import AuditKey, ReadSession
 from service.api.errors import error_responses
+from service.api.fields import INT32_MAX
 from service.audit.month import Month
 from service.store import log_proofs
 from service.store.audit_models import Seal, SigningKey
@@ -122,7 +124,7 @@ def keys(request: Request, session: ReadSession) -> list[PublicKey]:
 def heads(
     _key: AuditKey,
     session: ReadSession,
-    since: Annotated[int, Query(ge=0, le=2**62, description="after this seal id")] = 0,
+    since: Annotated[int, Query(ge=0, le=INT32_MAX, description="after this seal id")] = 0,
     limit: Annotated[int, Query(ge=1, le=1000)] = 100,
 ) -> list[SignedHead]:
     seals = session.scalars(select(Seal).where(Seal.id > since).order_by(Seal.id).limit(limit))
@@ -185,7 +187,7 @@ def inclusion_proof(
         Query(max_length=64, description="for a decision: its recommendation_id instead of id"),
     ] = None,
     seal: Annotated[
-        int | None, Query(ge=1, le=2**62, description="the head's seal (default: the latest)")
+        int | None, Query(ge=1, le=INT32_MAX, description="the head's seal (default: the latest)")
     ] = None,
 ) -> InclusionProofResponse:
     record_id = log_proofs.record_row_id(session, kind, id, recommendation_id)
@@ -202,8 +204,8 @@ def inclusion_proof(
 def consistency_proof(
     _key: AuditKey,
     session: ReadSession,
-    first: Annotated[int, Query(ge=1, le=2**62, description="the earlier seal")],
-    second: Annotated[int, Query(ge=1, le=2**62, description="the later seal")],
+    first: Annotated[int, Query(ge=1, le=INT32_MAX, description="the earlier seal")],
+    second: Annotated[int, Query(ge=1, le=INT32_MAX, description="the later seal")],
 ) -> ConsistencyProofResponse:
     proof = log_proofs.consistency(session, first, second)
     return ConsistencyProofResponse.model_validate(proof.as_json())
@@ -234,10 +236,14 @@ def month_bundle(
     """The same file as ``evenhand log bundle``: 404 ``no_snapshot`` when the month has no
     report snapshot, 422 ``not_sealed`` when its snapshot is not sealed yet. The bundle is
     written to a temporary file (in memory up to 8 MB) and then streamed."""
-    parsed = Month.parse(month)
+    return bundle_response(session, policy, Month.parse(month))
+
+
+def bundle_response(session: Session, policy: str, month: Month) -> StreamingResponse:
+    """The month bundle as a download (also served by the console)."""
     spool = tempfile.SpooledTemporaryFile(max_size=_SPOOL)  # noqa: SIM115 - closed by the stream
     try:
-        export_month(session, policy, parsed, spool)  # type: ignore[arg-type]
+        export_month(session, policy, month, spool)  # type: ignore[arg-type]
     except BaseException:
         spool.close()
         raise
@@ -248,7 +254,7 @@ def month_bundle(
             while data := spool.read(_CHUNK):
                 yield data
 
-    name = f"{policy}-{parsed}.ehb"
+    name = f"{policy}-{month}.ehb"
     return StreamingResponse(
         chunks(),
         media_type="application/x-ndjson",

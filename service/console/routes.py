@@ -10,7 +10,8 @@ from typing import Annotated, Any
 from fastapi import APIRouter, Depends, Path, Request, Response
 from sqlalchemy.orm import Session, sessionmaker
 
-from service.console import actions
+from service.console import actions, report_view
+from service.console.report_view import history_tables
 from service.console.rule_view import describe_rule, rule_chart
 from service.console.sessions import ConsoleSession
 from service.console.web import (
@@ -271,6 +272,59 @@ def report_months(request: Request, who: Who, name: Name) -> Response:
     )
 
 
+@router.get("/reports/{name}/history")
+def report_history(
+    request: Request, who: Who, name: Name, since: str = "", until: str = ""
+) -> Response:
+    """The cross-month view: per group and check, each month's estimate, interval, status and
+    monitoring chart state (the last 12 months with a snapshot unless a range is asked)."""
+    from service.audit.history import MAX_MONTHS, history_rows, load_snapshots
+    from service.audit.month import Month as AuditMonth
+    from service.audit.reports import list_reports
+
+    _require_audit(who)
+    with _read_session(request) as session:
+        stored = [m["month"] for m in list_reports(session, name)["months"]]
+        if not stored:
+            raise NotFound(f"no audit of {name!r} has been stored yet", code="report_not_found")
+        last = AuditMonth.parse(until or stored[-1], "until")
+        first = AuditMonth.parse(since, "since") if since else last.shifted(-11)
+        snapshots = load_snapshots(session, name, first, last)
+    tables = history_tables(history_rows(snapshots))
+    return render(
+        request,
+        "report_history.html",
+        who=who,
+        title=f"{name}: months {first} to {last}",
+        name=name,
+        first=str(first),
+        last=str(last),
+        months=[s.month for s in snapshots],
+        tables=tables,
+        max_months=MAX_MONTHS,
+    )
+
+
+@router.get("/reports/{name}/{month}")
+def report_page(request: Request, who: Who, name: Name, month: Month) -> Response:
+    """The month's latest snapshot as a console page (the console's own policy applies)."""
+    from service.audit.month import Month as AuditMonth
+    from service.audit.reports import get_snapshot
+
+    _require_audit(who)
+    with _read_session(request) as session:
+        content = get_snapshot(session, name, AuditMonth.parse(month))
+    return render(
+        request,
+        "report_month.html",
+        who=who,
+        title=f"{name} {month}",
+        name=name,
+        page=report_view.report_page(content),
+        digest=content.digest,
+    )
+
+
 REPORT_CSP = (
     "default-src 'none'; style-src 'unsafe-inline'; img-src data:; frame-ancestors 'none'; "
     "base-uri 'none'; form-action 'none'; sandbox"
@@ -285,8 +339,92 @@ def report_file(
     from service.audit.reports import get_snapshot
 
     _require_audit(who)
+    if kind == BUNDLE_FILE:
+        return _bundle(request, name, month)
     if kind not in ("report.html", "report.json", "report.csv"):
-        raise NotFound("no such report file: report.html, report.json or report.csv")
+        raise NotFound("no such report file: report.html, report.json, report.csv or bundle.ehb")
     with _read_session(request) as session:
         content = get_snapshot(session, name, AuditMonth.parse(month), snapshot, "published")
     return actions.report_response(content, name, month, kind, REPORT_CSP)
+
+
+# --- decision look-up (audit) ----------------------------------------------------------------
+
+
+@router.get("/decisions")
+def decision_page(request: Request, who: Who, id: str = "") -> Response:
+    from service.store.decision_lookup import find_decision
+
+    _require_audit(who)
+    wanted = id.strip()[:128]
+    decision, message, status_code = None, None, 200
+    if wanted:
+        with _read_session(request) as session:
+            try:
+                decision = find_decision(session, wanted)
+            except NotFound as exc:
+                message, status_code = exc.message, 404
+    return render(
+        request,
+        "decision.html",
+        status_code,
+        who=who,
+        title="Decision look-up",
+        wanted=wanted,
+        decision=decision,
+        message=message,
+    )
+
+
+BUNDLE_FILE = "bundle.ehb"
+
+
+def _bundle(request: Request, name: str, month: str) -> Response:
+    """The month bundle: the same file and code path as ``GET /v1/log/bundle``."""
+    from service.api.log import bundle_response
+    from service.audit.month import Month as AuditMonth
+
+    with _read_session(request) as session:
+        return bundle_response(session, name, AuditMonth.parse(month))
+
+
+# --- the log (audit) -----------------------------------------------------------------------
+
+
+def _latest_head(request: Request) -> dict[str, Any] | None:
+    from sqlalchemy import select
+
+    from service.store.audit_models import Seal
+    from service.store.sealing import signed_head
+
+    with _read_session(request) as session:
+        seal = session.scalars(select(Seal).order_by(Seal.id.desc()).limit(1)).first()
+        return None if seal is None else signed_head(seal)
+
+
+@router.get("/log")
+def log_page(request: Request, who: Who) -> Response:
+    _require_audit(who)
+    return render(
+        request, "log.html", who=who, title="The log", head=_latest_head(request), result=None
+    )
+
+
+@router.post("/log/verify")
+def log_verify(request: Request, who: Who, form: PostedForm) -> Response:
+    """Recompute the whole log: the same function as ``GET /v1/log/verify``."""
+    from service.store.log_verify import verify_log
+    from service.store.signing import trusted_public_keys
+
+    check_csrf(form, who.csrf)
+    _require_audit(who)
+    settings = request.app.state.settings
+    result = verify_log(request.app.state.session_factory, trusted_public_keys(settings))
+    return render(
+        request,
+        "log.html",
+        who=who,
+        title="The log",
+        head=_latest_head(request),
+        result=result,
+    )

@@ -1,0 +1,123 @@
+"""One stored decision by its recommendation_id, with its outcome and final decision
+(queries only; no commits).
+
+The decision is given as the response first sent for it (``scoring.response_of``: the same
+fields and values), plus what the record keeps beside it: the score and the attributes the
+policy grouped by, the shadow version's answer, the outcome that counts (the latest report,
+with how many corrections it has had) and the person's final decision.
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass
+from datetime import datetime
+from typing import Any
+
+from sqlalchemy import func, select
+from sqlalchemy.orm import Session
+
+from service.errors import NotFound
+from service.log.records import RESPONSE_FIELDS
+from service.store.audit_models import FinalDecision, OutcomeRecord
+from service.store.feedback import canonical_recommendation_id
+from service.store.models import Recommendation
+from service.store.scoring import response_of
+
+
+@dataclass(frozen=True)
+class StoredOutcome:
+    outcome: int
+    observed_at: datetime
+    source: str
+    corrections: int
+    recorded_at: datetime
+    recorded_by: str
+
+
+@dataclass(frozen=True)
+class StoredFinal:
+    overridden: bool
+    final_action: bool
+    reason_code: str | None
+    decided_at: datetime
+    decided_by: str | None
+    recorded_at: datetime
+
+
+@dataclass(frozen=True)
+class StoredDecision:
+    row_id: int
+    """The record's row id in the log (``/v1/log/proofs/inclusion?kind=decision&id=``)."""
+    response: dict[str, Any]
+    """The response as first sent (the same JSON as a replay of its request)."""
+    score: float
+    attributes: dict[str, Any]
+    shadow_version: int | None
+    shadow_probability: float | None
+    shadow_action: bool | None
+    outcome: StoredOutcome | None
+    final: StoredFinal | None
+
+
+def find_decision(session: Session, recommendation_id: str) -> StoredDecision:
+    """The decision with this recommendation_id; 404 ``unknown_recommendation`` if none."""
+    canonical = canonical_recommendation_id(recommendation_id)
+    row = (
+        None
+        if canonical is None
+        else session.scalars(
+            select(Recommendation).where(Recommendation.recommendation_id == canonical)
+        ).first()
+    )
+    if row is None:
+        raise NotFound(
+            f"no recommendation has the id {recommendation_id!r}", code="unknown_recommendation"
+        )
+    values = {f: getattr(row, f) for f in RESPONSE_FIELDS}
+    return StoredDecision(
+        row_id=row.id,
+        response=json.loads(response_of(values)),
+        score=row.score,
+        attributes=dict(row.attributes),
+        shadow_version=row.shadow_version,
+        shadow_probability=row.shadow_probability,
+        shadow_action=row.shadow_action,
+        outcome=_outcome(session, row.id),
+        final=_final(session, row.id),
+    )
+
+
+def _outcome(session: Session, pk: int) -> StoredOutcome | None:
+    reports = OutcomeRecord.recommendation_pk == pk
+    latest = session.scalars(
+        select(OutcomeRecord).where(reports).order_by(OutcomeRecord.id.desc()).limit(1)
+    ).first()
+    if latest is None:
+        return None
+    corrected = reports & OutcomeRecord.correction_reason.is_not(None)
+    count = session.scalar(select(func.count()).select_from(OutcomeRecord).where(corrected))
+    return StoredOutcome(
+        outcome=latest.outcome,
+        observed_at=latest.observed_at,
+        source=latest.source,
+        corrections=int(count or 0),
+        recorded_at=latest.recorded_at,
+        recorded_by=latest.recorded_by,
+    )
+
+
+def _final(session: Session, pk: int) -> StoredFinal | None:
+    row = session.scalars(
+        select(FinalDecision).where(FinalDecision.recommendation_pk == pk)
+    ).first()
+    if row is None:
+        return None
+    return StoredFinal(
+        overridden=row.overridden,
+        final_action=row.final_action,
+        reason_code=row.reason_code,
+        decided_at=row.decided_at,
+        decided_by=row.decided_by,
+        recorded_at=row.recorded_at,
+    )
