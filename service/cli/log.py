@@ -16,7 +16,8 @@ from sqlalchemy.orm import Session, sessionmaker
 
 from service.audit.month import Month
 from service.cli.common import CliError
-from service.log.heads import SigningKeyError, new_signing_key
+from service.log.heads import new_signing_key
+from service.log.key_errors import SigningKeyError
 from service.settings import Settings, SigningKeyUnavailable
 from service.store import log_proofs, retention
 from service.store.audit_models import Seal

@@ -9,8 +9,6 @@ from pathlib import Path
 
 from service.audit.history import history_csv, history_rows, load_snapshots
 from service.audit.month import Month
-from service.audit.render_csv import to_csv
-from service.audit.render_html import to_html
 from service.audit.reports import View, get_snapshot, list_reports
 from service.audit.snapshot_model import Snapshot
 from service.cli.common import CliError
@@ -133,6 +131,10 @@ def _show(args: argparse.Namespace) -> int:
 
 def _export(args: argparse.Namespace) -> int:
     s = _load(args)
+    # The renderers load the statistics and Jinja2: imported only for an export.
+    from service.audit.render_csv import to_csv
+    from service.audit.render_html import to_html
+
     text = {"json": to_json, "csv": to_csv, "html": to_html}[args.format](s)
     suffix = "-internal" if args.internal else ""
     path = args.output or Path(f"{args.policy}-{args.month}{suffix}.{args.format}")
