@@ -2,7 +2,8 @@
 each command in the lazy table is the one its module registers, and the commands that neither
 derive nor draw (keys, policy, log, migrate, schema, report list/show/history, jobs, the audit
 command's help) never load scipy, matplotlib or numpy, neither for ``--help`` nor for a cheap
-real run (docs/operations.md, "What each command loads")."""
+real run, and tqdm stays unloaded when stderr is not a terminal (docs/operations.md, "What
+each command loads")."""
 
 from __future__ import annotations
 
@@ -46,7 +47,7 @@ def test_help_loads_no_heavy_library() -> None:
     assert out.strip().splitlines()[-1] == "[]"
 
 
-STATS_AND_DRAWING = ("scipy", "matplotlib", "numpy")
+STATS_AND_DRAWING = ("scipy", "matplotlib", "numpy", "tqdm")
 
 _LOADED = (
     "import json, sys\n"
