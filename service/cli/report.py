@@ -131,11 +131,18 @@ def _show(args: argparse.Namespace) -> int:
 
 def _export(args: argparse.Namespace) -> int:
     s = _load(args)
-    # The renderers load the statistics and Jinja2: imported only for an export.
-    from service.audit.render_csv import to_csv
-    from service.audit.render_html import to_html
+    # Only the renderer asked for is imported: the HTML page loads the statistics, Jinja2 and
+    # matplotlib, which JSON and CSV never need.
+    if args.format == "csv":
+        from service.audit.render_csv import to_csv
 
-    text = {"json": to_json, "csv": to_csv, "html": to_html}[args.format](s)
+        text = to_csv(s)
+    elif args.format == "html":
+        from service.audit.render_html import to_html
+
+        text = to_html(s)
+    else:
+        text = to_json(s)
     suffix = "-internal" if args.internal else ""
     path = args.output or Path(f"{args.policy}-{args.month}{suffix}.{args.format}")
     print(f"rendering {args.format} ...", file=sys.stderr)
