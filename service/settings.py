@@ -10,7 +10,7 @@ from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 from pydantic import Field, SecretStr, field_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
-from service.log.heads import SigningKeyError
+from service.log.key_errors import SigningKeyError
 
 MIN_RETENTION_MONTHS = 6
 """The shortest retention: EU AI Act (Regulation (EU) 2024/1689) Art. 26(6) asks deployers of

@@ -164,6 +164,34 @@ def test_cli_keygen_seal_verify_heads_and_proofs(
     assert "no trusted public key" in capsys.readouterr().err
 
 
+def test_seal_and_verify_draw_progress_only_on_a_terminal(
+    client: TestClient,
+    database_url: str,
+    make_key: Callable[..., str],
+    monkeypatch: pytest.MonkeyPatch,
+    capsys: pytest.CaptureFixture[str],
+) -> None:
+    monkeypatch.setenv("EVENHAND_DATABASE_URL", database_url)
+    monkeypatch.delenv("EVENHAND_PROGRESS", raising=False)
+    write_every_kind(client, make_key, cases=3)
+    capsys.readouterr()
+    assert main(["log", "seal", "--tally-now"]) == 0
+    assert main(["log", "verify"]) == 0
+    captured = capsys.readouterr()
+    assert "ok:" in captured.out
+    assert captured.err == ""  # stderr is not a terminal here: no bar, no step lines
+
+    monkeypatch.setenv("EVENHAND_PROGRESS", "1")  # as on a terminal
+    scoring = bearer(make_key("scoring"))
+    client.post("/v1/recommendations", json=make_request(case_id="one-more"), headers=scoring)
+    assert main(["log", "seal"]) == 0
+    err = capsys.readouterr().err
+    assert "sealing: " in err and " step(s) [" in err
+    assert main(["log", "verify"]) == 0
+    err = capsys.readouterr().err
+    assert "verifying: " in err and " step(s) [" in err  # tqdm draws the last message it had
+
+
 def test_the_server_refuses_to_start_without_a_signing_key(settings: Settings) -> None:
     from service.app import create_app
     from service.log.heads import SigningKeyError

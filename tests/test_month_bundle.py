@@ -515,3 +515,21 @@ def test_a_purged_month_is_refused(bundle: bytes, session_factory: sessionmaker[
     with pytest.raises(Unprocessable) as refused:
         _export(session_factory)
     assert refused.value.code == "purged_month"
+
+
+def test_the_bundle_export_draws_progress_only_on_a_terminal(
+    bundle: bytes,
+    tmp_path: Path,
+    database_url: str,
+    monkeypatch: pytest.MonkeyPatch,
+    capsys: pytest.CaptureFixture[str],
+) -> None:
+    monkeypatch.setenv("EVENHAND_DATABASE_URL", database_url)
+    monkeypatch.delenv("EVENHAND_PROGRESS", raising=False)
+    argv = ["log", "bundle", "--policy", POLICY, "--month", _month(), "--out"]
+    assert main([*argv, str(tmp_path / "quiet.ehb")]) == 0
+    assert capsys.readouterr().err == ""  # stderr is not a terminal here
+    monkeypatch.setenv("EVENHAND_PROGRESS", "1")
+    assert main([*argv, str(tmp_path / "shown.ehb")]) == 0
+    err = capsys.readouterr().err
+    assert "exporting: 2 step(s) [" in err

@@ -10,14 +10,21 @@ from __future__ import annotations
 import argparse
 import time
 from datetime import UTC, datetime
+from typing import TYPE_CHECKING
 
-from service.audit.job import run_audit, stderr_progress
 from service.audit.month import Month
-from service.audit.verdicts import DEFAULT_MIN_COUNT
 from service.cli.common import CliError
 from service.errors import ServiceError
-from service.settings import Settings
-from service.store.db import create_db_engine, create_session_factory
+
+if TYPE_CHECKING:
+    from service.settings import Settings
+
+# The job, the statistics (numpy, scipy.special), SQLAlchemy and the settings are imported
+# when the command runs, not when it is parsed: ``evenhand audit run --help`` stays light.
+
+DEFAULT_MIN_COUNT = 20
+"""``service.audit.verdicts.DEFAULT_MIN_COUNT``, repeated so that parsing loads no statistics
+(``tests/test_cli_start.py`` holds the two equal)."""
 
 
 def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
@@ -66,6 +73,9 @@ def last_month(time_zone: str, now: datetime | None = None) -> Month:
 
 
 def _run_once(args: argparse.Namespace, settings: Settings) -> None:
+    from service.audit.job import run_audit, stderr_progress
+    from service.store.db import create_db_engine, create_session_factory
+
     try:
         month = Month.parse(args.month) if args.month else last_month(settings.timezone)
     except ServiceError as exc:
@@ -102,6 +112,8 @@ def _run_once(args: argparse.Namespace, settings: Settings) -> None:
 
 
 def _run(args: argparse.Namespace) -> int:
+    from service.settings import Settings
+
     settings = Settings()
     if args.min_count < 1:
         raise CliError("--min-count must be at least 1")

@@ -24,6 +24,7 @@ from service.cli.calibration_csv import load_calibration
 from service.cli.common import CliError
 from service.cli.derive_text import console_table
 from service.cli.output import check_targets, write_all
+from service.cli.progress import CountBar
 from service.policy.crossfit import (
     DEFAULT_FOLDS,
     DEFAULT_FOLDS_SEED,
@@ -145,18 +146,6 @@ def _progress(message: str) -> None:
     print(message, file=sys.stderr, flush=True)
 
 
-class _Ticker:
-    """Progress of the bootstrap on stderr: a line every 10% of the resamples."""
-
-    def __init__(self, total: int) -> None:
-        self.total = total
-        self.step = max(1, total // 10)
-
-    def __call__(self, done: int, total: int) -> None:
-        if done % self.step == 0 or done == total:
-            _progress(f"  resample {done} of {total}")
-
-
 def _check_args(args: argparse.Namespace) -> None:
     name = args.name or args.out.stem
     if not _SLUG.match(name):
@@ -234,16 +223,17 @@ def run(args: argparse.Namespace) -> int:
             _progress(
                 f"bootstrapping the promises' standard errors ({args.resamples} resamples) ..."
             )
-            spread = bootstrap_errors(
-                prepared,
-                criterion,
-                args.tolerance,
-                args.folds,
-                resamples=args.resamples,
-                seed=args.resamples_seed,
-                progress=_Ticker(args.resamples),
-                **options,
-            )
+            with CountBar("resamples", unit="resample") as bar:  # drawn on a terminal only
+                spread = bootstrap_errors(
+                    prepared,
+                    criterion,
+                    args.tolerance,
+                    args.folds,
+                    resamples=args.resamples,
+                    seed=args.resamples_seed,
+                    progress=bar,
+                    **options,
+                )
             if spread.used < 2:
                 why = spread.failures[0] if spread.failures else "no resample succeeded"
                 raise DeriveError(f"the bootstrap of the promises failed: {why}")

@@ -65,7 +65,7 @@ def _audit_due(args: argparse.Namespace) -> int:
 
 def _run(args: argparse.Namespace) -> int:
     from service.jobs.runner import JobRunner
-    from service.log.heads import SigningKeyError
+    from service.log.key_errors import SigningKeyError
     from service.observability.json_logs import log_config
     from service.store.signing import signer_from_settings
 

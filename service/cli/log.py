@@ -16,7 +16,9 @@ from sqlalchemy.orm import Session, sessionmaker
 
 from service.audit.month import Month
 from service.cli.common import CliError
-from service.log.heads import SigningKeyError, new_signing_key
+from service.cli.progress import StepBar
+from service.log.heads import new_signing_key
+from service.log.key_errors import SigningKeyError
 from service.settings import Settings, SigningKeyUnavailable
 from service.store import log_proofs, retention
 from service.store.audit_models import Seal
@@ -149,14 +151,15 @@ def _seal(args: argparse.Namespace) -> int:
         signer = signer_from_settings(settings)
     except SigningKeyError as exc:
         raise CliError(str(exc)) from None
-    done = keep_log(
-        _factory(settings),
-        signer,
-        settings.timezone,
-        tally_now=args.tally_now,
-        mirror=settings.head_mirror,
-        progress=_progress,
-    )
+    with StepBar("sealing") as bar:
+        done = keep_log(
+            _factory(settings),
+            signer,
+            settings.timezone,
+            tally_now=args.tally_now,
+            mirror=settings.head_mirror,
+            progress=bar,
+        )
     if not done.seals:
         print("nothing to seal: every record is already sealed")
     for seal in done.seals:
@@ -199,13 +202,14 @@ def _verify(args: argparse.Namespace) -> int:
             "no trusted public key: set EVENHAND_SIGNING_KEY_FILE (the service's key) or "
             "EVENHAND_TRUSTED_PUBLIC_KEYS, or pass --trust-database-keys"
         )
-    result = verify_log(
-        _factory(settings),
-        trusted,
-        trust_database_keys=args.trust_database_keys,
-        heads=heads,
-        progress=_progress,
-    )
+    with StepBar("verifying") as bar:
+        result = verify_log(
+            _factory(settings),
+            trusted,
+            trust_database_keys=args.trust_database_keys,
+            heads=heads,
+            progress=bar,
+        )
     if args.json:
         print(json.dumps(result_json(result), indent=2))
     else:
@@ -294,9 +298,9 @@ def _bundle(args: argparse.Namespace) -> int:
     except OSError as exc:
         raise CliError(f"cannot create {partial}: {exc}") from None
     try:
-        with _factory(Settings())() as session, out:
+        with _factory(Settings())() as session, out, StepBar("exporting") as bar:
             begin_read_only(session)
-            summary = export_month(session, args.policy, month, out, progress=_progress)
+            summary = export_month(session, args.policy, month, out, progress=bar)
             session.rollback()
         partial.rename(target)
     except OSError as exc:

@@ -78,7 +78,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     from pydantic import ValidationError
 
     from service.errors import ServiceError
-    from service.log.heads import SigningKeyError
+    from service.log.key_errors import SigningKeyError
 
     try:
         result: int = args.handler(args)

@@ -9,8 +9,6 @@ from pathlib import Path
 
 from service.audit.history import history_csv, history_rows, load_snapshots
 from service.audit.month import Month
-from service.audit.render_csv import to_csv
-from service.audit.render_html import to_html
 from service.audit.reports import View, get_snapshot, list_reports
 from service.audit.snapshot_model import Snapshot
 from service.cli.common import CliError
@@ -133,7 +131,18 @@ def _show(args: argparse.Namespace) -> int:
 
 def _export(args: argparse.Namespace) -> int:
     s = _load(args)
-    text = {"json": to_json, "csv": to_csv, "html": to_html}[args.format](s)
+    # Only the renderer asked for is imported: the HTML page loads the statistics, Jinja2 and
+    # matplotlib, which JSON and CSV never need.
+    if args.format == "csv":
+        from service.audit.render_csv import to_csv
+
+        text = to_csv(s)
+    elif args.format == "html":
+        from service.audit.render_html import to_html
+
+        text = to_html(s)
+    else:
+        text = to_json(s)
     suffix = "-internal" if args.internal else ""
     path = args.output or Path(f"{args.policy}-{args.month}{suffix}.{args.format}")
     print(f"rendering {args.format} ...", file=sys.stderr)

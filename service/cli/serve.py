@@ -35,7 +35,7 @@ def _preflight(settings: Settings) -> None:
         settings.draw_key()
     except DrawSecretError as exc:
         raise CliError(str(exc)) from None
-    from service.log.heads import SigningKeyError
+    from service.log.key_errors import SigningKeyError
     from service.store.signing import signer_from_settings
 
     try:

@@ -23,12 +23,10 @@ from cryptography.exceptions import InvalidSignature
 from cryptography.hazmat.primitives import serialization
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey, Ed25519PublicKey
 
+from service.log.key_errors import SigningKeyError
+
 HEAD_FORMAT = "evenhand.tree-head/1"
 SEED_BYTES = 32
-
-
-class SigningKeyError(ValueError):
-    """A signing or public key that cannot be used (missing, malformed or weak)."""
 
 
 def canonical(value: Any) -> bytes:

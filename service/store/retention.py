@@ -53,7 +53,6 @@ from service.store.audit_models import (
 from service.store.db import begin_read_only
 from service.store.log_sources import KIND_ORDER, PURGED_KINDS, SOURCES, TALLIED_KINDS, rows
 from service.store.models import Recommendation, utcnow
-from service.store.sealing import unpack_frontier
 
 Progress = Callable[[str], None]
 
@@ -272,6 +271,10 @@ def plan_purge(session: Session, month: Month, time_zone: str) -> PurgePlan:
 def _hash_and_check(session: Session, plan: PurgePlan, progress: Progress) -> list[PurgedLeaves]:
     """The leaf hashes of the records to purge, after checking that every seal they are in
     still gives its signed root from the records (and the earlier purges' kept hashes)."""
+    # Imported here: sealing loads the signing code (cryptography), which the audit command,
+    # a reader of this module's month check, never needs.
+    from service.store.sealing import unpack_frontier
+
     previous = session.get(Seal, plan.floor) if plan.floor else None
     if previous is None:
         builder = TreeBuilder()

@@ -8,12 +8,12 @@ from dataclasses import dataclass
 from cryptography.hazmat.primitives.asymmetric.ed25519 import Ed25519PrivateKey
 
 from service.log.heads import (
-    SigningKeyError,
     key_id,
     load_signing_key,
     public_bytes,
     public_key_from_bytes,
 )
+from service.log.key_errors import SigningKeyError
 from service.settings import Settings
 
 log = logging.getLogger("evenhand.signing")

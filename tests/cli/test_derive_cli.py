@@ -295,13 +295,18 @@ def test_demo_data_is_reproducible(tmp_path: Path) -> None:
 
 
 def test_resamples_store_standard_errors_and_zero_skips_them(
-    demo_csv: Path, tmp_path: Path, capsys: pytest.CaptureFixture[str]
+    demo_csv: Path,
+    tmp_path: Path,
+    capsys: pytest.CaptureFixture[str],
+    monkeypatch: pytest.MonkeyPatch,
 ) -> None:
     first, second, third = tmp_path / "a", tmp_path / "b", tmp_path / "c"
     for d in (first, second, third):
         d.mkdir()
+    monkeypatch.delenv("EVENHAND_PROGRESS", raising=False)
     assert main(_argv(demo_csv, first, "--resamples", "12", "--resamples-seed", "3")) == 0
-    assert "resample 12 of 12" in capsys.readouterr().err
+    err = capsys.readouterr().err  # stderr is not a terminal here: no bar
+    assert "12/12" not in err and "resamples:" not in err and "\r" not in err
     policy = PolicyDocument.model_validate_json((first / "policy.json").read_text())
     assert policy.targets is not None and policy.targets.resamples == 12
     for target in policy.targets.groups.values():
@@ -314,8 +319,13 @@ def test_resamples_store_standard_errors_and_zero_skips_them(
         "stratified_by": ["group"],
         "method": "error",
     }
-    # Seeded: the same run writes the same document.
+    # Seeded: the same run writes the same document (here with the bar forced on: tqdm draws
+    # every resample's step up to 12 of 12).
+    monkeypatch.setenv("EVENHAND_PROGRESS", "1")
     assert main(_argv(demo_csv, second, "--resamples", "12", "--resamples-seed", "3")) == 0
+    err = capsys.readouterr().err
+    assert "resamples: 100%" in err and "12/12" in err
+    monkeypatch.delenv("EVENHAND_PROGRESS")
     assert (first / "policy.json").read_bytes() == (second / "policy.json").read_bytes()
     assert main(_argv(demo_csv, third, "--resamples", "0")) == 0
     plain = PolicyDocument.model_validate_json((third / "policy.json").read_text())
