@@ -409,3 +409,129 @@ def test_report_files_match_the_api_and_the_html_has_its_own_policy(
     assert "style-src 'unsafe-inline'" in csp and "sandbox" in csp
     assert "script" not in csp and "frame-ancestors 'none'" in csp
     assert client.get(f"/console/reports/readmission/{month}/report.pdf").status_code == 404
+
+
+# --- a new draft from the console -------------------------------------------------------------
+
+
+def test_submit_a_draft_through_the_confirmation_page(
+    client: TestClient, tokens: dict[str, str]
+) -> None:
+    import json
+
+    csrf = sign_in(client, tokens["admin"])
+    text = json.dumps(make_policy())
+    r = client.post(
+        "/console/drafts",
+        data={"csrf": csrf, "step": "check", "name": "readmission", "document": text},
+    )
+    assert r.status_code == 200, r.text
+    # The confirmation page: each group's rule in a sentence, as rule_view writes it.
+    south = Rule.model_validate(make_policy()["rules"]["south"])
+    assert describe_rule(south) in r.text
+    assert "readmission v1 is stored as a draft" in r.text
+    assert (
+        client.get("/v1/policies/readmission/versions", headers=bearer(tokens["admin"])).status_code
+        == 404
+    )
+    digest = re.search(r'name="content_hash" value="([0-9a-f]+)"', r.text)
+    assert digest is not None
+    r = client.post(
+        "/console/drafts",
+        data={
+            "csrf": csrf,
+            "step": "confirm",
+            "name": "readmission",
+            "document": text,
+            "content_hash": digest.group(1),
+        },
+        follow_redirects=False,
+    )
+    assert (
+        r.status_code == 303 and r.headers["location"] == "/console/policies/readmission/versions/1"
+    )
+    stored = client.get("/v1/policies/readmission/versions/1", headers=bearer(tokens["admin"]))
+    assert stored.json()["author"] == "admin-author"
+    assert stored.json()["status"] == "draft"
+    # Four-eyes holds for a console-submitted draft: its author cannot approve it.
+    r = client.post("/v1/policies/readmission/versions/1/approve", headers=bearer(tokens["admin"]))
+    assert r.status_code == 403 and r.json()["error"]["code"] == "four_eyes"
+
+
+def test_submit_by_file_upload(client: TestClient, tokens: dict[str, str]) -> None:
+    import json
+
+    csrf = sign_in(client, tokens["admin"])
+    r = client.post(
+        "/console/drafts",
+        data={"csrf": csrf, "step": "check", "name": "readmission", "document": ""},
+        files={"upload": ("policy.json", json.dumps(make_policy()).encode(), "application/json")},
+    )
+    assert r.status_code == 200, r.text
+    assert "Submit readmission v1 as a draft?" in r.text
+
+
+def test_submit_errors_show_field_and_reason_of_the_api(
+    client: TestClient, tokens: dict[str, str]
+) -> None:
+    import json
+
+    csrf = sign_in(client, tokens["admin"])
+    bad = make_policy(costs={"false_positive": -1.0, "false_negative": 4.0})
+    api = client.post(
+        "/v1/policies/readmission/versions", json=bad, headers=bearer(tokens["admin"])
+    )
+    assert api.status_code == 422
+    r = client.post(
+        "/console/drafts",
+        data={"csrf": csrf, "step": "check", "name": "readmission", "document": json.dumps(bad)},
+    )
+    assert r.status_code == 422
+    assert "costs.false_positive" in r.text
+    import html
+
+    api_messages = {d["message"] for d in api.json()["error"].get("details", [])} or {
+        api.json()["error"]["message"]
+    }
+    assert any(html.escape(m) in r.text for m in api_messages), (api.json(), r.text)
+    r = client.post(
+        "/console/drafts",
+        data={"csrf": csrf, "step": "check", "name": "readmission", "document": "{not json"},
+    )
+    assert r.status_code == 422 and "malformed_json" in r.text and "line 1, column 2" in r.text
+    r = client.post(
+        "/console/drafts",
+        data={
+            "csrf": csrf,
+            "step": "check",
+            "name": "other",
+            "document": json.dumps(make_policy()),
+        },
+    )
+    assert r.status_code == 422 and "name_mismatch" in r.text
+    # Without the CSRF token, or as an auditor, nothing is checked or stored.
+    r = client.post("/console/drafts", data={"step": "confirm", "name": "readmission"})
+    assert r.status_code == 403 and "csrf_failed" in r.text
+
+
+def test_submit_refuses_a_document_other_than_the_one_confirmed(
+    client: TestClient, tokens: dict[str, str]
+) -> None:
+    import json
+
+    csrf = sign_in(client, tokens["admin"])
+    r = client.post(
+        "/console/drafts",
+        data={
+            "csrf": csrf,
+            "step": "confirm",
+            "name": "readmission",
+            "document": json.dumps(make_policy()),
+            "content_hash": "0" * 64,
+        },
+    )
+    assert r.status_code == 422 and "document_changed" in r.text
+    assert (
+        client.get("/v1/policies/readmission/versions", headers=bearer(tokens["admin"])).status_code
+        == 404
+    )

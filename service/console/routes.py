@@ -3,6 +3,7 @@ confirmed lifecycle actions and the audit reports. See docs/console.md."""
 
 from __future__ import annotations
 
+import re
 import secrets
 from importlib.resources import files
 from typing import Annotated, Any
@@ -10,7 +11,7 @@ from typing import Annotated, Any
 from fastapi import APIRouter, Depends, Path, Request, Response
 from sqlalchemy.orm import Session, sessionmaker
 
-from service.console import actions, report_view
+from service.console import actions, drafts, report_view
 from service.console.report_view import history_tables
 from service.console.rule_view import describe_rule, rule_chart
 from service.console.sessions import ConsoleSession
@@ -31,8 +32,8 @@ from service.console.web import (
     sessions_of,
     set_cookie,
 )
-from service.errors import Forbidden, NotFound, ServiceError
-from service.policy.document import PolicyDocument
+from service.errors import Forbidden, NotFound, ServiceError, Unprocessable
+from service.policy.document import PolicyDocument, content_hash
 from service.store import keys, lifecycle
 from service.store import policies as repo
 from service.store.db import begin_read_only
@@ -241,6 +242,102 @@ def perform(request: Request, who: Who, form: PostedForm, name: Name, action: st
             error=exc,
         )
     return redirect(f"{PREFIX}/policies/{name}")
+
+
+# --- a new draft (admin): paste or upload, confirm, submit ----------------------------------
+
+NAME_PATTERN = re.compile(r"^[a-z0-9][a-z0-9._-]{0,63}$")
+
+
+async def read_draft_form(request: Request) -> Form:
+    """A draft's form (a dependency): URL-encoded or multipart (a file upload), up to the
+    API's own body limit (``EVENHAND_MAX_BODY_BYTES``) since a document may be large."""
+    body = await request.body()
+    if len(body) > request.app.state.settings.max_body_bytes:
+        raise Unprocessable("the form is larger than the service accepts")
+    return Form(drafts.form_fields(request.headers.get("content-type", ""), body))
+
+
+DraftForm = Annotated[Form, Depends(read_draft_form)]
+
+
+def _draft_form(
+    request: Request,
+    who: ConsoleSession,
+    name: str,
+    text: str,
+    error: ServiceError | None = None,
+) -> Response:
+    return render(
+        request,
+        "draft_form.html",
+        200 if error is None else error.status_code,
+        who=who,
+        title="Submit a draft",
+        name=name,
+        text=text,
+        error=error,
+    )
+
+
+@router.get("/drafts/new")
+def draft_form(request: Request, who: Who, name: str = "") -> Response:
+    require_admin(who)
+    return _draft_form(request, who, name[:64], "")
+
+
+@router.post("/drafts")
+def draft_submit(request: Request, who: Who, form: DraftForm) -> Response:
+    """``step=check``: validate (the API's checks) and show the confirmation page;
+    ``step=confirm``: store the draft, attributed to the signed-in key."""
+    check_csrf(form, who.csrf)
+    require_admin(who)
+    name = form.get("name")
+    text = drafts.document_text(form.fields)
+    try:
+        if not NAME_PATTERN.match(name):
+            raise Unprocessable(
+                "the policy name is 1 to 64 characters: lower-case letters, digits, '.', '_' "
+                "and '-', starting with a letter or digit",
+                code="invalid_name",
+                field="name",
+            )
+        document = lifecycle.check_submission(name, drafts.read_json(text))
+    except ServiceError as exc:
+        return _draft_form(request, who, name, text, exc)
+    digest = content_hash(document)
+    if form.get("step") != "confirm":
+        with _read_session(request) as session:
+            latest = repo.latest_version_number(session, name)
+        return render(
+            request,
+            "draft_confirm.html",
+            who=who,
+            title=f"Submit a draft of {name}",
+            name=name,
+            text=text,
+            digest=digest,
+            next_version=(latest or 0) + 1,
+            summary=drafts.summarise(document),
+        )
+    if form.get("content_hash") != digest:
+        return _draft_form(
+            request,
+            who,
+            name,
+            text,
+            Unprocessable(
+                "the document is not the one the confirmation page showed: check it again",
+                code="document_changed",
+                field="document",
+            ),
+        )
+    actor = keys.Actor(who.key_id, who.key_name)
+    with _write_session(request) as session:
+        view = lifecycle.submit(session, name, document, actor)
+        version = view.row.version
+        session.commit()
+    return redirect(f"{PREFIX}/policies/{name}/versions/{version}")
 
 
 # --- reports (audit) -----------------------------------------------------------------------
