@@ -535,3 +535,79 @@ def test_submit_refuses_a_document_other_than_the_one_confirmed(
         client.get("/v1/policies/readmission/versions", headers=bearer(tokens["admin"])).status_code
         == 404
     )
+
+
+# --- the diff of two versions -------------------------------------------------------------
+
+
+def test_diff_page_in_sentences_and_one_chart_per_rule(
+    client: TestClient, tokens: dict[str, str]
+) -> None:
+    import html
+
+    from service.console.rule_view import compare_chart
+
+    first = make_policy()
+    second = make_policy(
+        costs={"false_positive": 1.0, "false_negative": 6.0},
+        groups={"attributes": ["region"], "known": ["north", "south", "east"]},
+        rules={
+            "north": first["rules"]["north"],
+            "south": {
+                "steps": [{"from": 0.25, "probability": 0.4}, {"from": 0.5, "probability": 1.0}]
+            },
+            "east": {"steps": [{"from": 0.6, "probability": 1.0}]},
+        },
+    )
+    submit(client, tokens["admin"], **first)
+    submit(client, tokens["admin"], **second)
+    sign_in(client, tokens["audit"])  # auditors read the diff too
+    version_page = client.get("/console/policies/readmission/versions/2")
+    assert 'href="/console/policies/readmission/diff?from=1&amp;to=2"' in version_page.text
+    assert "compare with v1" in version_page.text
+    r = client.get("/console/policies/readmission/diff?from=1&to=2")
+    assert r.status_code == 200, r.text
+    page = r.text
+    api = client.get(
+        "/v1/policies/readmission/diff?from=1&to=2", headers=bearer(tokens["admin"])
+    ).json()
+    # Every changed setting the API names is on the page (rules are shown as sentences).
+    for change in api["changes"]:
+        if not change["section"].startswith("rules["):
+            assert change["text"][1:] in html.unescape(page), change
+    assert "Group 'east' added." in html.unescape(page)
+    south_a = Rule.model_validate(first["rules"]["south"])
+    south_b = Rule.model_validate(second["rules"]["south"])
+    east = Rule.model_validate(second["rules"]["east"])
+    for rule in (south_a, south_b, east):
+        assert describe_rule(rule) in page
+    # Both versions of a rule on one chart: the drawn lines are rule_chart's over the range.
+    chart = compare_chart(south_a, south_b, (0.0, 1.0))
+    assert chart.before is not None and chart.after is not None
+    assert f'class="step" points="{chart.before.points}"' in page
+    assert f'class="step-after" points="{chart.after.points}"' in page
+    # The added rule has no line for v1.
+    section = page[page.index("<h3>east") :]
+    section = section[: section.index("</section>")]
+    assert 'class="step"' not in section and 'class="step-after"' in section
+    assert "No rule of this name." in section
+    assert "north (unchanged)" in page and "(changed)" in page
+    # Same version twice: no differences.
+    same = client.get("/console/policies/readmission/diff?from=2&to=2")
+    assert "no differences" in same.text
+    assert client.get("/console/policies/readmission/diff?from=1&to=9").status_code == 404
+
+
+def test_compare_chart_levels_match_the_rules() -> None:
+    from service.console.rule_view import compare_chart
+
+    a = Rule.model_validate(
+        {"steps": [{"from": 0.2, "probability": 0.5}, {"from": 0.4, "probability": 1.0}]}
+    )
+    b = Rule.model_validate({"steps": [{"from": 0.3, "probability": 1.0}]})
+    chart = compare_chart(a, b, (0.0, 1.0))
+    assert chart.before == rule_chart(a, (0.0, 1.0))
+    assert chart.after == rule_chart(b, (0.0, 1.0))
+    assert [t.label for t in chart.x_ticks] == ["0", "0.2", "0.3", "0.4", "1"]
+    with pytest.raises(ValueError):
+        compare_chart(None, None, (0.0, 1.0))

@@ -8,12 +8,12 @@ import secrets
 from importlib.resources import files
 from typing import Annotated, Any
 
-from fastapi import APIRouter, Depends, Path, Request, Response
+from fastapi import APIRouter, Depends, Path, Query, Request, Response
 from sqlalchemy.orm import Session, sessionmaker
 
 from service.console import actions, drafts, report_view
 from service.console.report_view import history_tables
-from service.console.rule_view import describe_rule, rule_chart
+from service.console.rule_view import compare_chart, describe_rule, rule_chart
 from service.console.sessions import ConsoleSession
 from service.console.web import (
     CONSOLE_ROLES,
@@ -33,7 +33,7 @@ from service.console.web import (
     set_cookie,
 )
 from service.errors import Forbidden, NotFound, ServiceError, Unprocessable
-from service.policy.document import PolicyDocument, content_hash
+from service.policy.document import DEFAULT_RULE_KEY, PolicyDocument, content_hash
 from service.store import keys, lifecycle
 from service.store import policies as repo
 from service.store.db import begin_read_only
@@ -170,6 +170,12 @@ def version_page(request: Request, who: Who, name: Name, version: Version) -> Re
     with _read_session(request) as session:
         view = lifecycle.require_version(session, name, version)
         state = repo.get_state(session, name)
+        latest = repo.latest_version_number(session, name) or version
+    active_version = None if state is None else state.active_version
+    # "compare with vN": the previous version, the active one and the latest one.
+    compare = sorted(
+        {v for v in (version - 1, active_version, latest) if v is not None and 1 <= v != version}
+    )
     document = PolicyDocument.model_validate(view.row.document)
     score_range = (float(document.score_range[0]), float(document.score_range[1]))
     rules = [
@@ -198,8 +204,61 @@ def version_page(request: Request, who: Who, name: Name, version: Version) -> Re
         view=view,
         document=document,
         rules=rules,
-        active=None if state is None else state.active_version,
+        compare=compare,
+        active=active_version,
         shadow=None if state is None else state.shadow_version,
+    )
+
+
+@router.get("/policies/{name}/diff")
+def diff_page(
+    request: Request,
+    who: Who,
+    name: Name,
+    from_version: Annotated[int, Query(alias="from", ge=1, le=2_147_483_647)],
+    to_version: Annotated[int, Query(alias="to", ge=1, le=2_147_483_647)],
+) -> Response:
+    """Two versions in the same terms as the version page: per rule, each version's sentence
+    and both on one chart; the changed settings in words (the API's diff, ``policy_diff``)."""
+    with _read_session(request) as session:
+        a = lifecycle.require_version(session, name, from_version)
+        b = lifecycle.require_version(session, name, to_version)
+        changes = lifecycle.diff(session, name, from_version, to_version)
+    before = PolicyDocument.model_validate(a.row.document)
+    after = PolicyDocument.model_validate(b.row.document)
+    score_range = (
+        float(min(before.score_range[0], after.score_range[0])),
+        float(max(before.score_range[1], after.score_range[1])),
+    )
+    labels = (f"v{from_version}", f"v{to_version}")
+    keys_in_order = list(dict.fromkeys([*before.rules, *after.rules]))
+    pairs = [(key, before.rules.get(key), after.rules.get(key)) for key in keys_in_order]
+    default_a, default_b = before.groups.fallback.default, after.groups.fallback.default
+    if default_a is not None or default_b is not None:
+        pairs.append((DEFAULT_RULE_KEY, default_a, default_b))
+    rules = [
+        {
+            "group": "fallback (default rule)" if key == DEFAULT_RULE_KEY else key,
+            "before": None if ra is None else describe_rule(ra),
+            "after": None if rb is None else describe_rule(rb),
+            "changed": (None if ra is None else ra.describe())
+            != (None if rb is None else rb.describe()),
+            "chart": compare_chart(ra, rb, score_range, labels),
+        }
+        for key, ra, rb in pairs
+    ]
+    settings = [c for c in changes if not c.section.startswith("rules[")]
+    return render(
+        request,
+        "diff.html",
+        who=who,
+        title=f"{name}: v{from_version} and v{to_version}",
+        name=name,
+        a=from_version,
+        b=to_version,
+        rules=rules,
+        settings=settings,
+        same=not changes,
     )
 
 
