@@ -37,6 +37,7 @@ from service.policy.document import DEFAULT_RULE_KEY, PolicyDocument, content_ha
 from service.store import keys, lifecycle
 from service.store import policies as repo
 from service.store.db import begin_read_only
+from service.store.models import utcnow
 
 router = APIRouter(prefix=PREFIX, route_class=ConsoleRoute, include_in_schema=False)
 
@@ -109,7 +110,32 @@ def sign_in(request: Request, form: PostedForm) -> Response:
         session.rollback()
     if found is None:
         return _sign_in_page(request, 401, "Unknown or revoked API key.")
-    key_id, name, role = found
+    return _start_session(request, *found)
+
+
+@router.post("/sign-in/password")
+def sign_in_with_password(request: Request, form: PostedForm) -> Response:
+    """Sign in as a person with the password an admin set: the session is the key's the
+    person stands for (its role; actions attributed to its credential)."""
+    from service.console import passwords
+    from service.store import console_passwords
+
+    check_csrf(form, request.cookies.get(SIGN_IN_COOKIE))
+    person = form.get("person")[:64]
+    password = form.fields.get("password", "")[: passwords.MAX_LENGTH]
+    with _read_session(request) as session:
+        row = console_passwords.find(session, person) if person else None
+        stored = None if row is None else row.hashed()
+        ok = passwords.verify_or_spend(password, stored)
+        key = None if row is None or not ok else console_passwords.live_key(session, row.key_id)
+        found = None if key is None else (key.id, key.name, key.role)
+        session.rollback()
+    if found is None:
+        return _sign_in_page(request, 401, "Unknown name, wrong password or a revoked key.")
+    return _start_session(request, *found)
+
+
+def _start_session(request: Request, key_id: int, name: str, role: str) -> Response:
     if role not in CONSOLE_ROLES:
         return _sign_in_page(
             request, 403, f"A {role!r} key cannot sign in: the console is for admin and audit keys."
@@ -131,6 +157,79 @@ def sign_out(request: Request, who: Who, form: PostedForm) -> Response:
     response = redirect(f"{PREFIX}/sign-in")
     clear_cookie(request, response, SESSION_COOKIE)
     return response
+
+
+# --- people and their passwords (admin) -----------------------------------------------------
+
+
+def _people_page(
+    request: Request,
+    who: ConsoleSession,
+    status_code: int = 200,
+    message: str | None = None,
+    done: str | None = None,
+) -> Response:
+    from service.store import console_passwords
+
+    with _read_session(request) as session:
+        people = [
+            {"person": row.person, "key": key_name, "set_by": row.set_by, "set_at": row.set_at}
+            for row, key_name in console_passwords.people(session)
+        ]
+    return render(
+        request,
+        "people.html",
+        status_code,
+        who=who,
+        title="People",
+        people=people,
+        message=message,
+        done=done,
+    )
+
+
+@router.get("/people")
+def people_page(request: Request, who: Who) -> Response:
+    require_admin(who)
+    return _people_page(request, who)
+
+
+@router.post("/people")
+def set_password(request: Request, who: Who, form: PostedForm) -> Response:
+    """Bind a person to an API key (whose token the admin types in, so no one can stand for
+    a credential they do not hold) with a password (scrypt, service/console/passwords.py)."""
+    from service.console import passwords
+    from service.store import console_passwords
+
+    check_csrf(form, who.csrf)
+    require_admin(who)
+    person = form.get("person")
+    password = form.fields.get("password", "")
+    if not NAME_PATTERN.match(person):
+        return _people_page(
+            request, who, 422, "A name is 1 to 64 lower-case letters, digits, '.', '_' or '-'."
+        )
+    weak = passwords.weakness(password)
+    if weak is not None:
+        return _people_page(request, who, 422, f"Refused: {weak}.")
+    if password != form.fields.get("password_again", ""):
+        return _people_page(request, who, 422, "Refused: the two passwords differ.")
+    token = form.get("api_key")
+    with _write_session(request) as session:
+        key = keys.authenticate(session, token) if keys.well_formed(token) else None
+        if key is None or key.role not in CONSOLE_ROLES:
+            session.rollback()
+            return _people_page(
+                request, who, 422, "Refused: the API key is not a live admin or audit key."
+            )
+        key_name = key.name
+        console_passwords.set_password(
+            session, person, key, passwords.hash_password(password), who.key_name, utcnow()
+        )
+        session.commit()
+    return _people_page(
+        request, who, done=f"{person} can now sign in with a password, as key {key_name}."
+    )
 
 
 # --- policies ------------------------------------------------------------------------------
