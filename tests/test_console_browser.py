@@ -5,9 +5,10 @@ The draft's author is refused the approval (four-eyes) and a form stripped of it
 is refused; an admin activates a version through the confirmation page after another change
 landed (the 409 shown, then confirmed again) and rolls back with a reason; a draft is
 submitted through the console's form (an uploaded file refused with its field, then pasted
-text); a second admin signs in, opens the draft, approves it through the confirmation
-page and finds the approval in the history; the browser reports no console error on the
-way (a Content-Security-Policy violation is one). The auditor signs in, opens a month's
+text); a person signs in with the password an admin set; a second admin signs in, opens
+the draft, approves it through the confirmation page and finds the approval in the
+history; the browser reports no console error on the way (a Content-Security-Policy
+violation is one). The auditor signs in, opens a month's
 report, the months per group and check, a decision and the log's verification, and the API
 docs page draws itself: with every request to another host refused (none is made).
 Skipped when Chromium or Playwright is missing, except under CI=true, where that fails.
@@ -465,6 +466,41 @@ def test_submit_a_draft_through_the_console_form(
             assert "Description changed from 'test policy' to 'second version'" in (
                 page.locator("ul.settings-changes").inner_text()
             )
+        finally:
+            browser.close()
+    assert errors == [], errors
+
+
+def test_a_person_signs_in_with_a_password_an_admin_set(
+    served: tuple[ServerProcess, dict[str, str]],
+) -> None:
+    _need_browser()
+    from playwright.sync_api import sync_playwright
+
+    server, tokens = served
+    password = "long enough password"
+    errors: list[str] = []
+    with sync_playwright() as p:
+        browser = p.chromium.launch(executable_path=CHROMIUM, headless=True)
+        try:
+            page = _browser_page(browser, errors)
+            _sign_in(page, server.base_url, tokens["author"])
+            page.get_by_role("link", name="People").click()
+            page.get_by_label("Name", exact=True).fill("bo")
+            page.get_by_label("API key the name stands for").fill(tokens["approver"])
+            page.get_by_label("Password (at least 12 characters)").fill(password)
+            page.get_by_label("The password again").fill(password)
+            page.get_by_role("button", name="Set the password").click()
+            assert "bo can now sign in with a password, as key bo-approver" in (
+                page.get_by_role("status").inner_text()
+            )
+            page.get_by_role("button", name="Sign out").click()
+            page.wait_for_url("**/console/sign-in")
+            page.get_by_label("Name", exact=True).fill("bo")
+            page.get_by_label("Password", exact=True).fill(password)
+            page.get_by_role("button", name="Use the password").click()
+            page.wait_for_url("**/console/policies")
+            assert "bo-approver" in page.locator("header form.who").inner_text()
         finally:
             browser.close()
     assert errors == [], errors
