@@ -409,3 +409,205 @@ def test_report_files_match_the_api_and_the_html_has_its_own_policy(
     assert "style-src 'unsafe-inline'" in csp and "sandbox" in csp
     assert "script" not in csp and "frame-ancestors 'none'" in csp
     assert client.get(f"/console/reports/readmission/{month}/report.pdf").status_code == 404
+
+
+# --- a new draft from the console -------------------------------------------------------------
+
+
+def test_submit_a_draft_through_the_confirmation_page(
+    client: TestClient, tokens: dict[str, str]
+) -> None:
+    import json
+
+    csrf = sign_in(client, tokens["admin"])
+    text = json.dumps(make_policy())
+    r = client.post(
+        "/console/drafts",
+        data={"csrf": csrf, "step": "check", "name": "readmission", "document": text},
+    )
+    assert r.status_code == 200, r.text
+    # The confirmation page: each group's rule in a sentence, as rule_view writes it.
+    south = Rule.model_validate(make_policy()["rules"]["south"])
+    assert describe_rule(south) in r.text
+    assert "readmission v1 is stored as a draft" in r.text
+    assert (
+        client.get("/v1/policies/readmission/versions", headers=bearer(tokens["admin"])).status_code
+        == 404
+    )
+    digest = re.search(r'name="content_hash" value="([0-9a-f]+)"', r.text)
+    assert digest is not None
+    r = client.post(
+        "/console/drafts",
+        data={
+            "csrf": csrf,
+            "step": "confirm",
+            "name": "readmission",
+            "document": text,
+            "content_hash": digest.group(1),
+        },
+        follow_redirects=False,
+    )
+    assert (
+        r.status_code == 303 and r.headers["location"] == "/console/policies/readmission/versions/1"
+    )
+    stored = client.get("/v1/policies/readmission/versions/1", headers=bearer(tokens["admin"]))
+    assert stored.json()["author"] == "admin-author"
+    assert stored.json()["status"] == "draft"
+    # Four-eyes holds for a console-submitted draft: its author cannot approve it.
+    r = client.post("/v1/policies/readmission/versions/1/approve", headers=bearer(tokens["admin"]))
+    assert r.status_code == 403 and r.json()["error"]["code"] == "four_eyes"
+
+
+def test_submit_by_file_upload(client: TestClient, tokens: dict[str, str]) -> None:
+    import json
+
+    csrf = sign_in(client, tokens["admin"])
+    r = client.post(
+        "/console/drafts",
+        data={"csrf": csrf, "step": "check", "name": "readmission", "document": ""},
+        files={"upload": ("policy.json", json.dumps(make_policy()).encode(), "application/json")},
+    )
+    assert r.status_code == 200, r.text
+    assert "Submit readmission v1 as a draft?" in r.text
+
+
+def test_submit_errors_show_field_and_reason_of_the_api(
+    client: TestClient, tokens: dict[str, str]
+) -> None:
+    import json
+
+    csrf = sign_in(client, tokens["admin"])
+    bad = make_policy(costs={"false_positive": -1.0, "false_negative": 4.0})
+    api = client.post(
+        "/v1/policies/readmission/versions", json=bad, headers=bearer(tokens["admin"])
+    )
+    assert api.status_code == 422
+    r = client.post(
+        "/console/drafts",
+        data={"csrf": csrf, "step": "check", "name": "readmission", "document": json.dumps(bad)},
+    )
+    assert r.status_code == 422
+    assert "costs.false_positive" in r.text
+    import html
+
+    api_messages = {d["message"] for d in api.json()["error"].get("details", [])} or {
+        api.json()["error"]["message"]
+    }
+    assert any(html.escape(m) in r.text for m in api_messages), (api.json(), r.text)
+    r = client.post(
+        "/console/drafts",
+        data={"csrf": csrf, "step": "check", "name": "readmission", "document": "{not json"},
+    )
+    assert r.status_code == 422 and "malformed_json" in r.text and "line 1, column 2" in r.text
+    r = client.post(
+        "/console/drafts",
+        data={
+            "csrf": csrf,
+            "step": "check",
+            "name": "other",
+            "document": json.dumps(make_policy()),
+        },
+    )
+    assert r.status_code == 422 and "name_mismatch" in r.text
+    # Without the CSRF token, or as an auditor, nothing is checked or stored.
+    r = client.post("/console/drafts", data={"step": "confirm", "name": "readmission"})
+    assert r.status_code == 403 and "csrf_failed" in r.text
+
+
+def test_submit_refuses_a_document_other_than_the_one_confirmed(
+    client: TestClient, tokens: dict[str, str]
+) -> None:
+    import json
+
+    csrf = sign_in(client, tokens["admin"])
+    r = client.post(
+        "/console/drafts",
+        data={
+            "csrf": csrf,
+            "step": "confirm",
+            "name": "readmission",
+            "document": json.dumps(make_policy()),
+            "content_hash": "0" * 64,
+        },
+    )
+    assert r.status_code == 422 and "document_changed" in r.text
+    assert (
+        client.get("/v1/policies/readmission/versions", headers=bearer(tokens["admin"])).status_code
+        == 404
+    )
+
+
+# --- the diff of two versions -------------------------------------------------------------
+
+
+def test_diff_page_in_sentences_and_one_chart_per_rule(
+    client: TestClient, tokens: dict[str, str]
+) -> None:
+    import html
+
+    from service.console.rule_view import compare_chart
+
+    first = make_policy()
+    second = make_policy(
+        costs={"false_positive": 1.0, "false_negative": 6.0},
+        groups={"attributes": ["region"], "known": ["north", "south", "east"]},
+        rules={
+            "north": first["rules"]["north"],
+            "south": {
+                "steps": [{"from": 0.25, "probability": 0.4}, {"from": 0.5, "probability": 1.0}]
+            },
+            "east": {"steps": [{"from": 0.6, "probability": 1.0}]},
+        },
+    )
+    submit(client, tokens["admin"], **first)
+    submit(client, tokens["admin"], **second)
+    sign_in(client, tokens["audit"])  # auditors read the diff too
+    version_page = client.get("/console/policies/readmission/versions/2")
+    assert 'href="/console/policies/readmission/diff?from=1&amp;to=2"' in version_page.text
+    assert "compare with v1" in version_page.text
+    r = client.get("/console/policies/readmission/diff?from=1&to=2")
+    assert r.status_code == 200, r.text
+    page = r.text
+    api = client.get(
+        "/v1/policies/readmission/diff?from=1&to=2", headers=bearer(tokens["admin"])
+    ).json()
+    # Every changed setting the API names is on the page (rules are shown as sentences).
+    for change in api["changes"]:
+        if not change["section"].startswith("rules["):
+            assert change["text"][1:] in html.unescape(page), change
+    assert "Group 'east' added." in html.unescape(page)
+    south_a = Rule.model_validate(first["rules"]["south"])
+    south_b = Rule.model_validate(second["rules"]["south"])
+    east = Rule.model_validate(second["rules"]["east"])
+    for rule in (south_a, south_b, east):
+        assert describe_rule(rule) in page
+    # Both versions of a rule on one chart: the drawn lines are rule_chart's over the range.
+    chart = compare_chart(south_a, south_b, (0.0, 1.0))
+    assert chart.before is not None and chart.after is not None
+    assert f'class="step" points="{chart.before.points}"' in page
+    assert f'class="step-after" points="{chart.after.points}"' in page
+    # The added rule has no line for v1.
+    section = page[page.index("<h3>east") :]
+    section = section[: section.index("</section>")]
+    assert 'class="step"' not in section and 'class="step-after"' in section
+    assert "No rule of this name." in section
+    assert "north (unchanged)" in page and "(changed)" in page
+    # Same version twice: no differences.
+    same = client.get("/console/policies/readmission/diff?from=2&to=2")
+    assert "no differences" in same.text
+    assert client.get("/console/policies/readmission/diff?from=1&to=9").status_code == 404
+
+
+def test_compare_chart_levels_match_the_rules() -> None:
+    from service.console.rule_view import compare_chart
+
+    a = Rule.model_validate(
+        {"steps": [{"from": 0.2, "probability": 0.5}, {"from": 0.4, "probability": 1.0}]}
+    )
+    b = Rule.model_validate({"steps": [{"from": 0.3, "probability": 1.0}]})
+    chart = compare_chart(a, b, (0.0, 1.0))
+    assert chart.before == rule_chart(a, (0.0, 1.0))
+    assert chart.after == rule_chart(b, (0.0, 1.0))
+    assert [t.label for t in chart.x_ticks] == ["0", "0.2", "0.3", "0.4", "1"]
+    with pytest.raises(ValueError):
+        compare_chart(None, None, (0.0, 1.0))

@@ -2,9 +2,13 @@
 ``evenhand serve`` on a real port and a temporary SQLite database.
 
 The draft's author is refused the approval (four-eyes) and a form stripped of its CSRF token
-is refused; a second admin signs in, opens the draft, approves it through the confirmation
-page and finds the approval in the history; the browser reports no console error on the
-way (a Content-Security-Policy violation is one). The auditor signs in, opens a month's
+is refused; an admin activates a version through the confirmation page after another change
+landed (the 409 shown, then confirmed again) and rolls back with a reason; a draft is
+submitted through the console's form (an uploaded file refused with its field, then pasted
+text); a person signs in with the password an admin set; a second admin signs in, opens
+the draft, approves it through the confirmation page and finds the approval in the
+history; the browser reports no console error on the way (a Content-Security-Policy
+violation is one). The auditor signs in, opens a month's
 report, the months per group and check, a decision and the log's verification, and the API
 docs page draws itself: with every request to another host refused (none is made).
 Skipped when Chromium or Playwright is missing, except under CI=true, where that fails.
@@ -18,6 +22,7 @@ from collections.abc import Iterator
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
+from typing import Any
 
 import httpx
 import pytest
@@ -297,4 +302,205 @@ def test_the_auditor_reads_a_report_and_a_decision_offline(audited: Audited) -> 
         finally:
             browser.close()
     assert elsewhere == [], elsewhere
+    assert errors == [], errors
+
+
+@pytest.fixture
+def lifecycle_served(tmp_path: Path) -> Iterator[tuple[ServerProcess, dict[str, str]]]:
+    """readmission v1 active; v2 and v3 approved (submitted by one admin, approved by
+    another), for activation, a stale activation and a rollback."""
+    url = f"sqlite:///{tmp_path / 'lifecycle.db'}"
+    with changes_allowed():
+        upgrade(url)
+    engine = create_db_engine(Settings(database_url=url))
+    factory: sessionmaker[Session] = create_session_factory(engine)
+    tokens = {
+        "author": create_key(factory, "admin", "ada-author"),
+        "approver": create_key(factory, "admin", "bo-approver"),
+    }
+    author, approver = actor(factory, "ada-author"), actor(factory, "bo-approver")
+    south = {"steps": [{"from": 0.2, "probability": 0.5}, {"from": 0.4, "probability": 1.0}]}
+    with factory() as session:
+        for cut in (0.3, 0.35, 0.45):
+            rules = {"north": {"steps": [{"from": cut, "probability": 1.0}]}, "south": south}
+            view = lifecycle.submit(session, "readmission", make_policy(rules=rules), author)
+            lifecycle.approve(session, "readmission", view.row.version, approver)
+        lifecycle.activate(session, "readmission", 1, author, "first", expected_current=None)
+        session.commit()
+    engine.dispose()
+    server = ServerProcess(
+        {"EVENHAND_DATABASE_URL": url, "EVENHAND_DRAW_SECRET": TEST_SECRET},
+        tmp_path / "server.log",
+    )
+    server.start()
+    try:
+        yield server, tokens
+    finally:
+        server.stop()
+
+
+def _browser_page(browser: Any, errors: list[str]) -> Any:
+    page = browser.new_page()
+    page.on("console", lambda m: errors.append(m.text) if m.type == "error" else None)
+    page.on("pageerror", lambda e: errors.append(str(e)))
+    page.on(
+        "response",
+        lambda r: errors.append(f"{r.status} {r.url}") if r.status >= 400 else None,
+    )
+    return page
+
+
+def _sign_in(page: Any, base_url: str, token: str) -> None:
+    page.goto(f"{base_url}/console")
+    assert page.url.endswith("/console/sign-in")
+    page.get_by_label("API key").fill(token)
+    page.get_by_role("button", name="Sign in").click()
+    page.wait_for_url("**/console/policies")
+
+
+def test_activate_through_the_confirmation_page_then_roll_back(
+    lifecycle_served: tuple[ServerProcess, dict[str, str]],
+) -> None:
+    _need_browser()
+    from playwright.sync_api import sync_playwright
+
+    server, tokens = lifecycle_served
+    errors: list[str] = []
+    with sync_playwright() as p:
+        browser = p.chromium.launch(executable_path=CHROMIUM, headless=True)
+        try:
+            page = _browser_page(browser, errors)
+            _sign_in(page, server.base_url, tokens["approver"])
+            page.get_by_role("link", name="readmission").click()
+            page.get_by_role("link", name="v2", exact=True).click()
+            page.get_by_role("link", name="Activate…").click()
+            assert "expected current active version: v1" in page.content()
+            # Another admin activates v3 through the API while this page is open.
+            body = {"version": 3, "reason": "elsewhere", "expected_current": 1}
+            r = httpx.post(
+                f"{server.base_url}/v1/policies/readmission/activate",
+                json=body,
+                headers=bearer(tokens["author"]),
+                timeout=30,
+            )
+            assert r.status_code == 200, r.text
+            page.get_by_label("Reason (optional)").fill("tighter north cut")
+            with page.expect_response(lambda r: r.request.method == "POST") as refused:
+                page.get_by_role("button", name="Confirm: Activate readmission v2").click()
+            assert refused.value.status == 409
+            alert = page.get_by_role("alert").inner_text()
+            assert "current_changed" in alert
+            assert "the request expected v1 as the active version but v3 is" in alert
+            # The page was read afresh: its guard now names v3; confirming again works.
+            assert "expected current active version: v3" in page.content()
+            errors.clear()  # the refusal above is an expected 409
+            page.get_by_label("Reason (optional)").fill("tighter north cut")
+            page.get_by_role("button", name="Confirm: Activate readmission v2").click()
+            page.wait_for_url("**/console/policies/readmission")
+            assert "Active: v2" in page.locator("p.summary").inner_text()
+
+            # Roll back: the confirmation page needs a reason.
+            page.get_by_role("link", name="Roll back…").click()
+            assert "Roll back readmission to v3" in page.content()
+            page.get_by_label("Reason (required)").fill("alerts on the north group")
+            page.get_by_role("button", name="Confirm: Roll back readmission to v3").click()
+            page.wait_for_url("**/console/policies/readmission")
+            assert "Active: v3" in page.locator("p.summary").inner_text()
+            latest = page.locator("ol.timeline li").first.inner_text()
+            assert "rollback" in latest and "v2 → v3" in latest and "bo-approver" in latest
+            assert "Why: alerts on the north group" in latest
+        finally:
+            browser.close()
+    assert errors == [], errors
+    r = httpx.get(
+        f"{server.base_url}/v1/policies/readmission/history",
+        headers=bearer(tokens["author"]),
+        timeout=30,
+    )
+    last = r.json()[-1]
+    assert last["action"] == "rollback" and last["reason"] == "alerts on the north group"
+    assert last["actor"] == "bo-approver"
+
+
+def test_submit_a_draft_through_the_console_form(
+    served: tuple[ServerProcess, dict[str, str]], tmp_path: Path
+) -> None:
+    _need_browser()
+    import json
+
+    from playwright.sync_api import sync_playwright
+
+    server, tokens = served
+    bad = tmp_path / "bad.json"
+    bad.write_text(json.dumps(make_policy(costs={"false_positive": -1, "false_negative": 4})))
+    good = make_policy(description="second version")
+    errors: list[str] = []
+    with sync_playwright() as p:
+        browser = p.chromium.launch(executable_path=CHROMIUM, headless=True)
+        try:
+            page = _browser_page(browser, errors)
+            _sign_in(page, server.base_url, tokens["author"])
+            page.get_by_role("link", name="Submit a draft…").click()
+            page.get_by_label("Policy name").fill("readmission")
+            # An uploaded file with an invalid cost: the service's field and reason shown.
+            page.get_by_label("…or upload a JSON file").set_input_files(str(bad))
+            with page.expect_response(lambda r: r.request.method == "POST") as refused:
+                page.get_by_role("button", name="Check the document…").click()
+            assert refused.value.status == 422
+            alert = page.get_by_role("alert").inner_text()
+            assert "invalid_policy" in alert and "costs.false_positive" in alert
+            errors.clear()  # the refusal above is an expected 422
+            # Pasted text this time (the file input is empty again on the re-drawn form).
+            page.get_by_label("Policy document (JSON)").fill(json.dumps(good, indent=2))
+            page.get_by_role("button", name="Check the document…").click()
+            assert "Submit readmission v2 as a draft?" in page.content()
+            assert "from 0.2 up to (not including) 0.4 they get it with probability 0.5" in (
+                page.content()
+            )
+            page.get_by_role("button", name="Confirm: submit readmission as a draft").click()
+            page.wait_for_url("**/console/policies/readmission/versions/2")
+            assert "second version" in page.content()
+            assert page.locator("span.status-draft").count() == 1
+            assert "ada-author" in page.locator("dl.facts").inner_text()
+            page.get_by_role("link", name="compare with v1").click()
+            assert "Description changed from 'test policy' to 'second version'" in (
+                page.locator("ul.settings-changes").inner_text()
+            )
+        finally:
+            browser.close()
+    assert errors == [], errors
+
+
+def test_a_person_signs_in_with_a_password_an_admin_set(
+    served: tuple[ServerProcess, dict[str, str]],
+) -> None:
+    _need_browser()
+    from playwright.sync_api import sync_playwright
+
+    server, tokens = served
+    password = "long enough password"
+    errors: list[str] = []
+    with sync_playwright() as p:
+        browser = p.chromium.launch(executable_path=CHROMIUM, headless=True)
+        try:
+            page = _browser_page(browser, errors)
+            _sign_in(page, server.base_url, tokens["author"])
+            page.get_by_role("link", name="People").click()
+            page.get_by_label("Name", exact=True).fill("bo")
+            page.get_by_label("API key the name stands for").fill(tokens["approver"])
+            page.get_by_label("Password (at least 12 characters)").fill(password)
+            page.get_by_label("The password again").fill(password)
+            page.get_by_role("button", name="Set the password").click()
+            assert "bo can now sign in with a password, as key bo-approver" in (
+                page.get_by_role("status").inner_text()
+            )
+            page.get_by_role("button", name="Sign out").click()
+            page.wait_for_url("**/console/sign-in")
+            page.get_by_label("Name", exact=True).fill("bo")
+            page.get_by_label("Password", exact=True).fill(password)
+            page.get_by_role("button", name="Use the password").click()
+            page.wait_for_url("**/console/policies")
+            assert "bo-approver" in page.locator("header form.who").inner_text()
+        finally:
+            browser.close()
     assert errors == [], errors

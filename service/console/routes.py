@@ -3,16 +3,17 @@ confirmed lifecycle actions and the audit reports. See docs/console.md."""
 
 from __future__ import annotations
 
+import re
 import secrets
 from importlib.resources import files
 from typing import Annotated, Any
 
-from fastapi import APIRouter, Depends, Path, Request, Response
+from fastapi import APIRouter, Depends, Path, Query, Request, Response
 from sqlalchemy.orm import Session, sessionmaker
 
-from service.console import actions, report_view
+from service.console import actions, drafts, report_view
 from service.console.report_view import history_tables
-from service.console.rule_view import describe_rule, rule_chart
+from service.console.rule_view import compare_chart, describe_rule, rule_chart
 from service.console.sessions import ConsoleSession
 from service.console.web import (
     CONSOLE_ROLES,
@@ -31,11 +32,12 @@ from service.console.web import (
     sessions_of,
     set_cookie,
 )
-from service.errors import Forbidden, NotFound, ServiceError
-from service.policy.document import PolicyDocument
+from service.errors import Forbidden, NotFound, ServiceError, Unprocessable
+from service.policy.document import DEFAULT_RULE_KEY, PolicyDocument, content_hash
 from service.store import keys, lifecycle
 from service.store import policies as repo
 from service.store.db import begin_read_only
+from service.store.models import utcnow
 
 router = APIRouter(prefix=PREFIX, route_class=ConsoleRoute, include_in_schema=False)
 
@@ -108,7 +110,32 @@ def sign_in(request: Request, form: PostedForm) -> Response:
         session.rollback()
     if found is None:
         return _sign_in_page(request, 401, "Unknown or revoked API key.")
-    key_id, name, role = found
+    return _start_session(request, *found)
+
+
+@router.post("/sign-in/password")
+def sign_in_with_password(request: Request, form: PostedForm) -> Response:
+    """Sign in as a person with the password an admin set: the session is the key's the
+    person stands for (its role; actions attributed to its credential)."""
+    from service.console import passwords
+    from service.store import console_passwords
+
+    check_csrf(form, request.cookies.get(SIGN_IN_COOKIE))
+    person = form.get("person")[:64]
+    password = form.fields.get("password", "")[: passwords.MAX_LENGTH]
+    with _read_session(request) as session:
+        row = console_passwords.find(session, person) if person else None
+        stored = None if row is None else row.hashed()
+        ok = passwords.verify_or_spend(password, stored)
+        key = None if row is None or not ok else console_passwords.live_key(session, row.key_id)
+        found = None if key is None else (key.id, key.name, key.role)
+        session.rollback()
+    if found is None:
+        return _sign_in_page(request, 401, "Unknown name, wrong password or a revoked key.")
+    return _start_session(request, *found)
+
+
+def _start_session(request: Request, key_id: int, name: str, role: str) -> Response:
     if role not in CONSOLE_ROLES:
         return _sign_in_page(
             request, 403, f"A {role!r} key cannot sign in: the console is for admin and audit keys."
@@ -130,6 +157,79 @@ def sign_out(request: Request, who: Who, form: PostedForm) -> Response:
     response = redirect(f"{PREFIX}/sign-in")
     clear_cookie(request, response, SESSION_COOKIE)
     return response
+
+
+# --- people and their passwords (admin) -----------------------------------------------------
+
+
+def _people_page(
+    request: Request,
+    who: ConsoleSession,
+    status_code: int = 200,
+    message: str | None = None,
+    done: str | None = None,
+) -> Response:
+    from service.store import console_passwords
+
+    with _read_session(request) as session:
+        people = [
+            {"person": row.person, "key": key_name, "set_by": row.set_by, "set_at": row.set_at}
+            for row, key_name in console_passwords.people(session)
+        ]
+    return render(
+        request,
+        "people.html",
+        status_code,
+        who=who,
+        title="People",
+        people=people,
+        message=message,
+        done=done,
+    )
+
+
+@router.get("/people")
+def people_page(request: Request, who: Who) -> Response:
+    require_admin(who)
+    return _people_page(request, who)
+
+
+@router.post("/people")
+def set_password(request: Request, who: Who, form: PostedForm) -> Response:
+    """Bind a person to an API key (whose token the admin types in, so no one can stand for
+    a credential they do not hold) with a password (scrypt, service/console/passwords.py)."""
+    from service.console import passwords
+    from service.store import console_passwords
+
+    check_csrf(form, who.csrf)
+    require_admin(who)
+    person = form.get("person")
+    password = form.fields.get("password", "")
+    if not NAME_PATTERN.match(person):
+        return _people_page(
+            request, who, 422, "A name is 1 to 64 lower-case letters, digits, '.', '_' or '-'."
+        )
+    weak = passwords.weakness(password)
+    if weak is not None:
+        return _people_page(request, who, 422, f"Refused: {weak}.")
+    if password != form.fields.get("password_again", ""):
+        return _people_page(request, who, 422, "Refused: the two passwords differ.")
+    token = form.get("api_key")
+    with _write_session(request) as session:
+        key = keys.authenticate(session, token) if keys.well_formed(token) else None
+        if key is None or key.role not in CONSOLE_ROLES:
+            session.rollback()
+            return _people_page(
+                request, who, 422, "Refused: the API key is not a live admin or audit key."
+            )
+        key_name = key.name
+        console_passwords.set_password(
+            session, person, key, passwords.hash_password(password), who.key_name, utcnow()
+        )
+        session.commit()
+    return _people_page(
+        request, who, done=f"{person} can now sign in with a password, as key {key_name}."
+    )
 
 
 # --- policies ------------------------------------------------------------------------------
@@ -169,6 +269,12 @@ def version_page(request: Request, who: Who, name: Name, version: Version) -> Re
     with _read_session(request) as session:
         view = lifecycle.require_version(session, name, version)
         state = repo.get_state(session, name)
+        latest = repo.latest_version_number(session, name) or version
+    active_version = None if state is None else state.active_version
+    # "compare with vN": the previous version, the active one and the latest one.
+    compare = sorted(
+        {v for v in (version - 1, active_version, latest) if v is not None and 1 <= v != version}
+    )
     document = PolicyDocument.model_validate(view.row.document)
     score_range = (float(document.score_range[0]), float(document.score_range[1]))
     rules = [
@@ -197,8 +303,61 @@ def version_page(request: Request, who: Who, name: Name, version: Version) -> Re
         view=view,
         document=document,
         rules=rules,
-        active=None if state is None else state.active_version,
+        compare=compare,
+        active=active_version,
         shadow=None if state is None else state.shadow_version,
+    )
+
+
+@router.get("/policies/{name}/diff")
+def diff_page(
+    request: Request,
+    who: Who,
+    name: Name,
+    from_version: Annotated[int, Query(alias="from", ge=1, le=2_147_483_647)],
+    to_version: Annotated[int, Query(alias="to", ge=1, le=2_147_483_647)],
+) -> Response:
+    """Two versions in the same terms as the version page: per rule, each version's sentence
+    and both on one chart; the changed settings in words (the API's diff, ``policy_diff``)."""
+    with _read_session(request) as session:
+        a = lifecycle.require_version(session, name, from_version)
+        b = lifecycle.require_version(session, name, to_version)
+        changes = lifecycle.diff(session, name, from_version, to_version)
+    before = PolicyDocument.model_validate(a.row.document)
+    after = PolicyDocument.model_validate(b.row.document)
+    score_range = (
+        float(min(before.score_range[0], after.score_range[0])),
+        float(max(before.score_range[1], after.score_range[1])),
+    )
+    labels = (f"v{from_version}", f"v{to_version}")
+    keys_in_order = list(dict.fromkeys([*before.rules, *after.rules]))
+    pairs = [(key, before.rules.get(key), after.rules.get(key)) for key in keys_in_order]
+    default_a, default_b = before.groups.fallback.default, after.groups.fallback.default
+    if default_a is not None or default_b is not None:
+        pairs.append((DEFAULT_RULE_KEY, default_a, default_b))
+    rules = [
+        {
+            "group": "fallback (default rule)" if key == DEFAULT_RULE_KEY else key,
+            "before": None if ra is None else describe_rule(ra),
+            "after": None if rb is None else describe_rule(rb),
+            "changed": (None if ra is None else ra.describe())
+            != (None if rb is None else rb.describe()),
+            "chart": compare_chart(ra, rb, score_range, labels),
+        }
+        for key, ra, rb in pairs
+    ]
+    settings = [c for c in changes if not c.section.startswith("rules[")]
+    return render(
+        request,
+        "diff.html",
+        who=who,
+        title=f"{name}: v{from_version} and v{to_version}",
+        name=name,
+        a=from_version,
+        b=to_version,
+        rules=rules,
+        settings=settings,
+        same=not changes,
     )
 
 
@@ -241,6 +400,102 @@ def perform(request: Request, who: Who, form: PostedForm, name: Name, action: st
             error=exc,
         )
     return redirect(f"{PREFIX}/policies/{name}")
+
+
+# --- a new draft (admin): paste or upload, confirm, submit ----------------------------------
+
+NAME_PATTERN = re.compile(r"^[a-z0-9][a-z0-9._-]{0,63}$")
+
+
+async def read_draft_form(request: Request) -> Form:
+    """A draft's form (a dependency): URL-encoded or multipart (a file upload), up to the
+    API's own body limit (``EVENHAND_MAX_BODY_BYTES``) since a document may be large."""
+    body = await request.body()
+    if len(body) > request.app.state.settings.max_body_bytes:
+        raise Unprocessable("the form is larger than the service accepts")
+    return Form(drafts.form_fields(request.headers.get("content-type", ""), body))
+
+
+DraftForm = Annotated[Form, Depends(read_draft_form)]
+
+
+def _draft_form(
+    request: Request,
+    who: ConsoleSession,
+    name: str,
+    text: str,
+    error: ServiceError | None = None,
+) -> Response:
+    return render(
+        request,
+        "draft_form.html",
+        200 if error is None else error.status_code,
+        who=who,
+        title="Submit a draft",
+        name=name,
+        text=text,
+        error=error,
+    )
+
+
+@router.get("/drafts/new")
+def draft_form(request: Request, who: Who, name: str = "") -> Response:
+    require_admin(who)
+    return _draft_form(request, who, name[:64], "")
+
+
+@router.post("/drafts")
+def draft_submit(request: Request, who: Who, form: DraftForm) -> Response:
+    """``step=check``: validate (the API's checks) and show the confirmation page;
+    ``step=confirm``: store the draft, attributed to the signed-in key."""
+    check_csrf(form, who.csrf)
+    require_admin(who)
+    name = form.get("name")
+    text = drafts.document_text(form.fields)
+    try:
+        if not NAME_PATTERN.match(name):
+            raise Unprocessable(
+                "the policy name is 1 to 64 characters: lower-case letters, digits, '.', '_' "
+                "and '-', starting with a letter or digit",
+                code="invalid_name",
+                field="name",
+            )
+        document = lifecycle.check_submission(name, drafts.read_json(text))
+    except ServiceError as exc:
+        return _draft_form(request, who, name, text, exc)
+    digest = content_hash(document)
+    if form.get("step") != "confirm":
+        with _read_session(request) as session:
+            latest = repo.latest_version_number(session, name)
+        return render(
+            request,
+            "draft_confirm.html",
+            who=who,
+            title=f"Submit a draft of {name}",
+            name=name,
+            text=text,
+            digest=digest,
+            next_version=(latest or 0) + 1,
+            summary=drafts.summarise(document),
+        )
+    if form.get("content_hash") != digest:
+        return _draft_form(
+            request,
+            who,
+            name,
+            text,
+            Unprocessable(
+                "the document is not the one the confirmation page showed: check it again",
+                code="document_changed",
+                field="document",
+            ),
+        )
+    actor = keys.Actor(who.key_id, who.key_name)
+    with _write_session(request) as session:
+        view = lifecycle.submit(session, name, document, actor)
+        version = view.row.version
+        session.commit()
+    return redirect(f"{PREFIX}/policies/{name}/versions/{version}")
 
 
 # --- reports (audit) -----------------------------------------------------------------------

@@ -129,3 +129,53 @@ def rule_chart(rule: Rule, score_range: tuple[float, float]) -> RuleChart:
         axis_bottom=HEIGHT - BOTTOM,
         title=describe_rule(rule),
     )
+
+
+@dataclass(frozen=True, slots=True)
+class CompareChart:
+    """Two versions' rules for one group on one chart: the earlier as a solid line, the later
+    dashed (told apart by the line's pattern and the legend, not by colour alone)."""
+
+    width: float
+    height: float
+    before: RuleChart | None
+    after: RuleChart | None
+    x_ticks: list[Tick]
+    y_ticks: list[Tick]
+    axis_left: float
+    axis_right: float
+    axis_top: float
+    axis_bottom: float
+    title: str
+
+
+def compare_chart(
+    before: Rule | None,
+    after: Rule | None,
+    score_range: tuple[float, float],
+    labels: tuple[str, str] = ("before", "after"),
+) -> CompareChart:
+    """``before`` and ``after`` (either may be missing) drawn over the same ``score_range``."""
+    charts = [None if r is None else rule_chart(r, score_range) for r in (before, after)]
+    drawn = [c for c in charts if c is not None]
+    if not drawn:
+        raise ValueError("compare_chart needs at least one rule")
+    ticks = {t.position: t for c in drawn for t in c.x_ticks}
+    words = [
+        f"{label}: {'no rule' if c is None else c.title}"
+        for label, c in zip(labels, charts, strict=True)
+    ]
+    first = drawn[0]
+    return CompareChart(
+        width=WIDTH,
+        height=HEIGHT,
+        before=charts[0],
+        after=charts[1],
+        x_ticks=[ticks[p] for p in sorted(ticks)],
+        y_ticks=first.y_ticks,
+        axis_left=first.axis_left,
+        axis_right=first.axis_right,
+        axis_top=first.axis_top,
+        axis_bottom=first.axis_bottom,
+        title=" ".join(words),
+    )

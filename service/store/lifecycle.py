@@ -155,8 +155,10 @@ def _flush(session: Session) -> None:
         ) from None
 
 
-def submit(session: Session, name: str, data: Any, author: Actor) -> VersionView:
-    """Store a new draft version of policy ``name``, numbered after the last one."""
+def check_submission(name: str, data: Any) -> PolicyDocument:
+    """The checks a new draft of ``name`` must pass before it is stored (the API's and the
+    console's submit): a valid document (422 ``invalid_policy`` with every error's field),
+    naming the policy it is submitted to, that the audit can check."""
     document = parse_document(data)
     if document.name != name:
         raise Unprocessable(
@@ -165,6 +167,12 @@ def submit(session: Session, name: str, data: Any, author: Actor) -> VersionView
             field="name",
         )
     check_auditable(document)
+    return document
+
+
+def submit(session: Session, name: str, data: Any, author: Actor) -> VersionView:
+    """Store a new draft version of policy ``name``, numbered after the last one."""
+    document = check_submission(name, data)
     locked = _lock_policy(session, name, switch=False, create=True)
     number = max(locked.versions, default=0) + 1
     row = PolicyVersion(
