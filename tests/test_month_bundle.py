@@ -4,7 +4,7 @@ verifier runs in a bare interpreter with the standard library and ``cryptography
 
 The Merkle checks are the RFC 9162 algorithms (section 2.1), already checked against the
 Certificate Transparency test vectors in ``tests/test_merkle.py``; here the bundle's heads are
-also recomputed independently, with ``tests/test_log_seal.py``'s transcription of the RFC.
+also recomputed independently, with ``tests/test_log_seal.py``'s own implementation of the RFC.
 """
 
 from __future__ import annotations
@@ -104,7 +104,7 @@ def test_a_month_round_trips_and_recounts(bundle: bytes) -> None:
         if line["type"] == "record":
             assert line["leaf"] == _h(b"\x00" + str(line["data"]).encode()).hex()
     assert result.key_ids == [SIGNER.key_id]
-    # The heads and the consistency proof, checked with this suite's own transcription of
+    # The heads and the consistency proof, checked with this suite's own implementation of
     # RFC 9162 section 2.1.4.2 and Ed25519 from `cryptography` directly.
     public = Ed25519PublicKey.from_public_bytes(SIGNER.public_key)
     heads = [line for line in lines if line["type"] in ("head", "latest")]
