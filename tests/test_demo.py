@@ -8,7 +8,8 @@ from pathlib import Path
 import pytest
 from sqlalchemy import create_engine, func, select
 
-from service.demo.story import DemoContext, DemoError, prepare_output, run_demo
+from service.demo.context import DemoContext, DemoError
+from service.demo.story import prepare_output, run_demo
 from service.store.log_sources import SOURCES
 from service.store.models import Recommendation
 

@@ -13,7 +13,8 @@ from sqlalchemy.orm import Session
 from service.audit.month import Month
 from service.audit.reports import get_snapshot
 from service.demo.audit_stages import alert_summary, full_stages
-from service.demo.story import DemoContext, run_demo
+from service.demo.context import DemoContext
+from service.demo.story import run_demo
 from service.store.audit_models import OutcomeRecord
 
 

@@ -36,8 +36,9 @@ SCORE_ONE = """
 import sys
 from pathlib import Path
 from service.demo import story
+from service.demo.context import DemoContext
 
-ctx = story.DemoContext(output_dir=Path(sys.argv[1]), cases=10)
+ctx = DemoContext(output_dir=Path(sys.argv[1]), cases=10)
 story.prepare_output(ctx)
 if len(sys.argv) > 2:
     ctx.database_url = sys.argv[2]

@@ -8,9 +8,10 @@ from typing import Any
 
 from service.cli.common import CliError
 from service.demo.audit_stages import full_stages
+from service.demo.context import DemoContext, DemoError
 from service.demo.fernhollow import DEFAULT_SEED
 from service.demo.server import ServerFailed
-from service.demo.story import DemoContext, DemoError, run_demo
+from service.demo.story import run_demo
 
 
 def register(sub: Any) -> None:

@@ -13,7 +13,8 @@ from typing import Any
 import httpx
 import numpy as np
 
-from service.demo.story import DemoContext, Stage, default_stages, print_summary
+from service.demo.context import DemoContext, Stage
+from service.demo.story import default_stages, print_summary
 
 OUTCOME_BATCH = 500
 OVERRIDE_REASONS = ("patient-declined", "clinical-judgement", "already-in-programme")

@@ -13,17 +13,14 @@ from __future__ import annotations
 
 import secrets
 import shutil
-import sys
 import threading
 from collections import Counter
-from collections.abc import Callable, Sequence
+from collections.abc import Sequence
 from concurrent.futures import ThreadPoolExecutor
-from dataclasses import dataclass, field
-from pathlib import Path
-from typing import Any
 
 from service.demo.api_client import EvenhandClient
-from service.demo.fernhollow import DEFAULT_SEED, Discharges, generate, write_csv
+from service.demo.context import CLIENT_THREADS, MARKER, DemoContext, DemoError, SentCase, Stage
+from service.demo.fernhollow import generate, write_csv
 from service.demo.policy import demo_policy, group_blind_variant
 from service.demo.server import ServerProcess
 from service.log.heads import new_signing_key
@@ -33,54 +30,6 @@ from service.store.db import create_db_engine, create_session_factory
 from service.store.log_upkeep import keep_log
 from service.store.migrate import upgrade
 from service.store.signing import signer_from_settings
-
-MARKER = ".evenhand-demo"
-CLIENT_THREADS = 4
-
-
-class DemoError(RuntimeError):
-    """The demo cannot go on; the message says why."""
-
-
-@dataclass
-class SentCase:
-    """One discharge sent for a recommendation, with what came back."""
-
-    index: int  # row in ``ctx.discharges``
-    case_id: str
-    recommendation_id: str
-    version: int
-    action: bool
-    phase: str
-
-
-@dataclass
-class DemoContext:
-    output_dir: Path
-    cases: int = 2000
-    seed: int = DEFAULT_SEED
-    database_url: str = ""
-    draw_secret: str = ""
-    signing_key_file: Path | None = None
-    tokens: dict[str, str] = field(default_factory=dict)  # author, reviewer, scoring, audit
-    server: ServerProcess | None = None
-    base_url: str = ""
-    policy_name: str = ""
-    versions: dict[str, int] = field(default_factory=dict)  # "reviewed", "group-blind"
-    discharges: Discharges | None = None
-    sent: list[SentCase] = field(default_factory=list)
-    verify: dict[str, Any] = field(default_factory=dict)
-    summary: list[str] = field(default_factory=list)  # lines for the closing summary
-
-    def say(self, message: str) -> None:
-        print(message, file=sys.stderr, flush=True)
-
-    def client(self) -> EvenhandClient:
-        return EvenhandClient(self.base_url)
-
-
-Stage = Callable[[DemoContext], None]
-
 
 # -- stages ------------------------------------------------------------------------------
 
