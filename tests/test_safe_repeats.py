@@ -17,7 +17,7 @@ from typing import Any
 import pytest
 from fastapi.testclient import TestClient
 
-from service.cli import policy as policy_cli
+from service.cli import policy_backends
 from service.cli.main import main
 from tests.helpers import bearer, make_policy
 
@@ -160,7 +160,7 @@ def over_http(
     def connect(self: Any, url: str, token: str) -> None:
         self._client = TestClient(client.app, headers={"Authorization": f"Bearer {token}"})
 
-    monkeypatch.setattr(policy_cli.HttpBackend, "__init__", connect)
+    monkeypatch.setattr(policy_backends.HttpBackend, "__init__", connect)
     yield ("--url", "http://testserver")
 
 
