@@ -9,11 +9,12 @@ cannot approve it. Versions and events are insert-only; what a change moves is t
 derived state row (``policy_state``: active version, shadow version, last event), updated in
 the transaction that records the event.
 
-Concurrency: every change first locks the policy's state row (:func:`_lock_policy`) and then
-reads its versions and events afresh, so two admins acting at once are served one after the
-other and the second sees what the first did (two approvals of one draft: one succeeds, the
-other is a 409). Switches of the active or shadow version also take the switch lock that
-orders them against scoring (``service.store.switch_lock``).
+Concurrency: every change first locks the policy's state row
+(:func:`~service.store.policy_locks.lock_policy`) and then reads its versions and events
+afresh, so two admins acting at once are served one after the other and the second sees what
+the first did (two approvals of one draft: one succeeds, the other is a 409). Switches of the
+active or shadow version also take the switch lock that orders them against scoring
+(``service.store.switch_lock``).
 
 Safe repeats: activate, rollback and shadow on/off require ``expected_current``, the version
 the caller believes is active (the shadow version, for shadow on/off; ``None`` for "none").
@@ -26,13 +27,8 @@ current state in the error's details. The event records the expectation the requ
 
 from __future__ import annotations
 
-from dataclasses import dataclass
 from typing import Any
 
-from sqlalchemy import select
-from sqlalchemy.dialects.postgresql import insert as postgresql_insert
-from sqlalchemy.dialects.sqlite import insert as sqlite_insert
-from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
 from service.errors import Conflict, Forbidden, NotFound, Unprocessable
@@ -42,7 +38,6 @@ from service.store.keys import Actor
 from service.store.models import (
     LifecycleAction,
     PolicyEvent,
-    PolicyState,
     PolicyVersion,
     VersionStatus,
     utcnow,
@@ -50,49 +45,8 @@ from service.store.models import (
 from service.store.policies import ShadowView, VersionView
 from service.store.policy_diff import Change, diff_documents
 from service.store.policy_documents import check_auditable, parse_document
+from service.store.policy_locks import Locked, flush_change, lock_policy, record_event, version_in
 from service.store.stale_requests import current_changed
-from service.store.switch_lock import hold_for_switch
-
-
-@dataclass(frozen=True, slots=True)
-class _Locked:
-    """A policy as read under its lock: the state row (changed in place by switches) and its
-    versions with their derived statuses."""
-
-    state: PolicyState
-    versions: dict[int, PolicyVersion]
-    statuses: dict[int, str]
-
-
-def _record(
-    session: Session,
-    state: PolicyState,
-    action: LifecycleAction,
-    actor: Actor,
-    *,
-    from_version: int | None = None,
-    to_version: int | None = None,
-    reason: str | None = None,
-    expected: tuple[int | None] | None = None,
-) -> PolicyEvent:
-    """Insert one event and make it the state's last; ``expected``: the request's
-    ``expected_current`` as a 1-tuple, or None when the request carried none."""
-    event = PolicyEvent(
-        name=state.name,
-        action=action.value,
-        actor_key_id=actor.key_id,
-        actor=actor.name,
-        at=utcnow(),
-        from_version=from_version,
-        to_version=to_version,
-        reason=reason,
-        expected_sent=expected is not None,
-        expected_current=None if expected is None else expected[0],
-    )
-    session.add(event)
-    _flush(session)
-    state.last_event_id = event.id
-    return event
 
 
 def require_version(session: Session, name: str, version: int) -> VersionView:
@@ -102,57 +56,6 @@ def require_version(session: Session, name: str, version: int) -> VersionView:
             raise NotFound(f"no policy named {name!r}", code="unknown_policy")
         raise NotFound(f"policy {name!r} has no version {version}", code="unknown_version")
     return view
-
-
-def _create_state(session: Session, name: str) -> None:
-    """The policy's state row, if it has none yet (a first submission); two first
-    submissions at once both end up queued on the one row."""
-    conn = session.connection()
-    insert = postgresql_insert if conn.dialect.name == "postgresql" else sqlite_insert
-    conn.execute(insert(PolicyState).values(name=name).on_conflict_do_nothing())
-
-
-def _lock_policy(session: Session, name: str, *, switch: bool, create: bool = False) -> _Locked:
-    """Serialise lifecycle changes of ``name``; its state, versions and statuses, read afresh.
-
-    A switch of the active or shadow version first takes the switch lock exclusively (before
-    any row lock: the lock order of ``service.store.switch_lock``). Then the policy's state
-    row is locked (PostgreSQL ``FOR NO KEY UPDATE``: changes of one policy queue up; SQLite
-    holds its single write lock already) and everything is read again, replacing whatever
-    the session had loaded before: every check after this sees the latest committed state.
-    """
-    if switch:
-        hold_for_switch(session)
-    if create:
-        _create_state(session, name)
-    state = session.scalar(
-        select(PolicyState)
-        .where(PolicyState.name == name)
-        .with_for_update(key_share=True)
-        .execution_options(populate_existing=True)
-    )
-    if state is None:
-        raise NotFound(f"no policy named {name!r}", code="unknown_policy")
-    rows = repo.list_versions(session, name)
-    views = repo.views_of(session, name, rows, state.active_version)
-    return _Locked(state, {r.version: r for r in rows}, {v.row.version: v.status for v in views})
-
-
-def _version_in(locked: _Locked, name: str, version: int) -> PolicyVersion:
-    row = locked.versions.get(version)
-    if row is None:
-        raise NotFound(f"policy {name!r} has no version {version}", code="unknown_version")
-    return row
-
-
-def _flush(session: Session) -> None:
-    try:
-        session.flush()
-    except IntegrityError:
-        raise Conflict(
-            "another lifecycle change to this policy happened at the same time; retry",
-            code="concurrent_change",
-        ) from None
 
 
 def check_submission(name: str, data: Any) -> PolicyDocument:
@@ -173,7 +76,7 @@ def check_submission(name: str, data: Any) -> PolicyDocument:
 def submit(session: Session, name: str, data: Any, author: Actor) -> VersionView:
     """Store a new draft version of policy ``name``, numbered after the last one."""
     document = check_submission(name, data)
-    locked = _lock_policy(session, name, switch=False, create=True)
+    locked = lock_policy(session, name, switch=False, create=True)
     number = max(locked.versions, default=0) + 1
     row = PolicyVersion(
         name=name,
@@ -185,9 +88,9 @@ def submit(session: Session, name: str, data: Any, author: Actor) -> VersionView
         created_at=utcnow(),
     )
     session.add(row)
-    _flush(session)
-    _record(session, locked.state, LifecycleAction.SUBMIT, author, to_version=number)
-    _flush(session)
+    flush_change(session)
+    record_event(session, locked.state, LifecycleAction.SUBMIT, author, to_version=number)
+    flush_change(session)
     return VersionView(row, VersionStatus.DRAFT.value, None, None)
 
 
@@ -198,8 +101,8 @@ def _same_credential(row: PolicyVersion, actor: Actor) -> bool:
 
 
 def approve(session: Session, name: str, version: int, approver: Actor) -> VersionView:
-    locked = _lock_policy(session, name, switch=False)
-    row = _version_in(locked, name, version)
+    locked = lock_policy(session, name, switch=False)
+    row = version_in(locked, name, version)
     status = locked.statuses[version]
     if status != VersionStatus.DRAFT.value:
         raise Conflict(
@@ -212,14 +115,16 @@ def approve(session: Session, name: str, version: int, approver: Actor) -> Versi
             "admin key must approve it (four-eyes rule)",
             code="four_eyes",
         )
-    event = _record(session, locked.state, LifecycleAction.APPROVE, approver, to_version=version)
-    _flush(session)
+    event = record_event(
+        session, locked.state, LifecycleAction.APPROVE, approver, to_version=version
+    )
+    flush_change(session)
     return VersionView(row, VersionStatus.APPROVED.value, approver.name, event.at)
 
 
 def _switch(
     session: Session,
-    locked: _Locked,
+    locked: Locked,
     target: int,
     actor: Actor,
     action: LifecycleAction,
@@ -233,9 +138,9 @@ def _switch(
     if state.shadow_version == target:
         # Shadowing the active version itself would only duplicate it.
         state.shadow_version = None
-        _record(session, state, LifecycleAction.UNSHADOW, actor, from_version=target)
+        record_event(session, state, LifecycleAction.UNSHADOW, actor, from_version=target)
     state.active_version = target
-    _record(
+    record_event(
         session,
         state,
         action,
@@ -245,7 +150,7 @@ def _switch(
         reason=reason,
         expected=(expected,),
     )
-    _flush(session)
+    flush_change(session)
     return require_version(session, state.name, target)
 
 
@@ -280,8 +185,8 @@ def activate(
     expected_current: int | None,
 ) -> VersionView:
     """Make an approved version the active one; the previously active version retires."""
-    locked = _lock_policy(session, name, switch=True)
-    _version_in(locked, name, version)
+    locked = lock_policy(session, name, switch=True)
+    version_in(locked, name, version)
     current = locked.state.active_version
     if expected_current != current:
         action = LifecycleAction.ACTIVATE
@@ -312,7 +217,7 @@ def rollback(
     """Re-activate the previously active version, or the named approved/retired one."""
     if not reason or not reason.strip():
         raise Unprocessable("a rollback needs a reason", code="reason_required", field="reason")
-    locked = _lock_policy(session, name, switch=True)
+    locked = lock_policy(session, name, switch=True)
     current = locked.state.active_version
     if expected_current != current:
         action = LifecycleAction.ROLLBACK
@@ -333,7 +238,7 @@ def rollback(
                 code="nothing_to_roll_back_to",
             )
         to_version = activation.from_version
-    _version_in(locked, name, to_version)
+    version_in(locked, name, to_version)
     if to_version == current:
         raise Conflict(f"{name} v{to_version} is already active", code="invalid_transition")
     status = locked.statuses[to_version]
@@ -359,8 +264,8 @@ def set_shadow(
     """Evaluate an approved version beside the active one on every recommendation.
 
     ``expected_current`` is the shadow version the caller expects (``None``: none)."""
-    locked = _lock_policy(session, name, switch=True)
-    _version_in(locked, name, version)
+    locked = lock_policy(session, name, switch=True)
+    version_in(locked, name, version)
     state = locked.state
     previous = state.shadow_version
     if expected_current != previous:
@@ -384,7 +289,7 @@ def set_shadow(
             code="invalid_transition",
         )
     state.shadow_version = version
-    event = _record(
+    event = record_event(
         session,
         state,
         LifecycleAction.SHADOW,
@@ -393,7 +298,7 @@ def set_shadow(
         to_version=version,
         expected=(expected_current,),
     )
-    _flush(session)
+    flush_change(session)
     return ShadowView(name, version, actor.name, event.at)
 
 
@@ -401,7 +306,7 @@ def clear_shadow(
     session: Session, name: str, actor: Actor, *, expected_current: int | None
 ) -> None:
     """Stop shadow evaluation. ``expected_current``: the shadow version the caller ends."""
-    locked = _lock_policy(session, name, switch=True)
+    locked = lock_policy(session, name, switch=True)
     state = locked.state
     previous = state.shadow_version
     if expected_current != previous:
@@ -417,7 +322,7 @@ def clear_shadow(
     if previous is None:
         raise NotFound(f"policy {name!r} has no shadow version", code="no_shadow")
     state.shadow_version = None
-    _record(
+    record_event(
         session,
         state,
         LifecycleAction.UNSHADOW,
@@ -425,7 +330,7 @@ def clear_shadow(
         from_version=previous,
         expected=(expected_current,),
     )
-    _flush(session)
+    flush_change(session)
 
 
 def history(session: Session, name: str) -> list[PolicyEvent]:
