@@ -35,7 +35,8 @@ from dataclasses import dataclass, field
 from typing import IO, Any
 
 from service.log import bundle_format as fmt
-from service.log.bundle_recount import MonthCounter, Recount, RecountProblem, compare
+from service.log.bundle_compare import compare
+from service.log.bundle_recount import MonthCounter, Recount, RecountProblem
 from service.log.heads import TreeHead, key_id, public_key_from_bytes, verify_head
 from service.log.merkle import TreeBuilder, verify_consistency
 
