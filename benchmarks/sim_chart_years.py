@@ -90,7 +90,8 @@ from service.audit.gap_charts import designs, in_control_step
 from service.audit.monitoring import WINDOW, Monitor, MonthCounts
 from service.audit.outcome_charts import ODDS
 from service.audit.realized import fraction_of
-from service.audit.verdicts import CheckKind, decide, version_checks
+from service.audit.verdicts import CheckKind, decide
+from service.audit.version_checks import version_checks
 from service.policy.document import AuditPlan
 from service.stats.cusum import (
     binomial_llr,

@@ -85,7 +85,8 @@ from service.audit.monitoring import (
     version_monitors,
 )
 from service.audit.month import Month
-from service.audit.verdicts import DEFAULT_MIN_COUNT, Check, MonthContext, decide, version_checks
+from service.audit.verdicts import DEFAULT_MIN_COUNT, Check, MonthContext, decide
+from service.audit.version_checks import version_checks
 from service.audit.version_settings import VersionSettings, resolve_settings
 from service.policy.document import AuditPlan
 

@@ -75,8 +75,8 @@ from service.audit.verdicts import (
     MonthContext,
     Status,
     decide,
-    version_checks,
 )
+from service.audit.version_checks import version_checks
 from service.audit.version_settings import resolve_settings
 from service.policy.crossfit import DEFAULT_FOLDS, DEFAULT_FOLDS_SEED, assign_folds, cross_fit
 from service.policy.derive import solve

@@ -1,10 +1,10 @@
 """Error rates of the monthly verdicts, measured by simulation (issue "honest monthly verdicts").
 
-Calls the audit's pure functions (``resolve_settings``, ``version_checks``, ``decide`` in
-``service/audit/verdicts.py``) on simulated months of the demo's nine groups
-(``benchmarks/sim_scenario.py``): an equal-opportunity policy, tolerance 0.05, audit level
-0.05, outcome coverage 88%. Each simulated month is independent; a two-sample month draws its
-own calibration sample of 20,000 rows first.
+Calls the audit's pure functions (``resolve_settings``, ``version_checks`` in
+``service/audit/version_checks.py``, ``decide`` in ``service/audit/verdicts.py``) on simulated
+months of the demo's nine groups (``benchmarks/sim_scenario.py``): an equal-opportunity
+policy, tolerance 0.05, audit level 0.05, outcome coverage 88%. Each simulated month is
+independent; a two-sample month draws its own calibration sample of 20,000 rows first.
 
 - **Size of the breach test**: the share of months with any ``breach`` when the policy keeps its
   promise (true rates = promised, TPR gaps 0) and when every checked quantity of every
@@ -66,8 +66,8 @@ from service.audit.verdicts import (
     MonthContext,
     Status,
     decide,
-    version_checks,
 )
+from service.audit.version_checks import version_checks
 from service.audit.version_settings import resolve_settings
 from service.policy.document import AuditPlan
 

@@ -27,8 +27,8 @@ from service.audit.verdicts import (
     Procedure,
     Status,
     decide,
-    version_checks,
 )
+from service.audit.version_checks import version_checks
 from service.audit.version_settings import DEFAULT_TOLERANCE, resolve_settings, strictest_plan
 from service.policy.document import AuditPlan, PolicyDocument
 

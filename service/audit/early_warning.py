@@ -31,7 +31,8 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
 from service.audit.realized import CellCounts
-from service.audit.verdicts import Check, MonthContext, version_checks
+from service.audit.verdicts import Check, MonthContext
+from service.audit.version_checks import version_checks
 from service.audit.version_settings import VersionSettings, strictest_plan
 from service.policy.document import PolicyDocument
 from service.stats.drift import homogeneity_mc_test, population_stability_index

@@ -32,7 +32,8 @@ from service.audit.snapshot_model import (
     VersionSection,
 )
 from service.audit.suppression import SMALL_CELL_LIMIT
-from service.audit.verdicts import Check, Family, MonthContext, Status, decide, version_checks
+from service.audit.verdicts import Check, Family, MonthContext, Status, decide
+from service.audit.version_checks import version_checks
 from service.audit.version_counts import VersionCounts
 from service.audit.version_settings import VersionSettings, resolve_settings, strictest_plan
 from service.policy.document import AuditPlan
