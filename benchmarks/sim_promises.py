@@ -55,14 +55,9 @@ from service.demo.fernhollow import generate
 from service.policy.crossfit import DEFAULT_FOLDS, DEFAULT_FOLDS_SEED, assign_folds, cross_fit
 from service.policy.derive import solve
 from service.policy.derive_document import PolicyIdentity, build_document
-from service.policy.document import (
-    GROUP_SEPARATOR,
-    Criterion,
-    PolicyDocument,
-    Rule,
-    resolve_rule_key,
-)
+from service.policy.document import GROUP_SEPARATOR, PolicyDocument, Rule, resolve_rule_key
 from service.policy.promise_spread import ERROR_METHOD, PROMISE_METHOD, bootstrap_spreads
+from service.policy.targets import Criterion
 from service.policy.units import CalibrationData, DeriveError, DeriveSettings, prepare
 
 CRITERION = Criterion.EQUAL_OPPORTUNITY

@@ -27,7 +27,8 @@ from service.audit.snapshot_model import (
 )
 from service.audit.version_counts import VersionCounts
 from service.audit.version_settings import VersionSettings
-from service.policy.document import GroupTarget, PolicyDocument
+from service.policy.document import PolicyDocument
+from service.policy.targets import GroupTarget
 from service.stats.ratios import katz_ratio_interval
 from service.stats.selective_labels import selective_rates
 

@@ -45,7 +45,8 @@ from service.audit.outcome_charts import ODDS, outcome_monitor
 from service.audit.realized import fraction_of
 from service.audit.verdicts import CRITERION_METRICS, CheckKind
 from service.audit.version_settings import VersionSettings
-from service.policy.document import Criterion, PolicyDocument
+from service.policy.document import PolicyDocument
+from service.policy.targets import Criterion
 
 __all__ = [
     "DESIGN_HORIZON",

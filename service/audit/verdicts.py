@@ -40,7 +40,8 @@ from collections.abc import Sequence
 from dataclasses import dataclass, replace
 from enum import StrEnum
 
-from service.policy.document import AuditPlan, Criterion
+from service.policy.document import AuditPlan
+from service.policy.targets import Criterion
 from service.stats.multiplicity import Method, adjust_p_values
 
 FOUR_FIFTHS_FLOOR = 0.8

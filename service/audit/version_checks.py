@@ -24,7 +24,8 @@ from service.audit.verdicts import (
     Status,
 )
 from service.audit.version_settings import VersionSettings
-from service.policy.document import Criterion, GroupTarget, PolicyDocument
+from service.policy.document import PolicyDocument
+from service.policy.targets import Criterion, GroupTarget
 from service.stats.design_effect import effective_counts
 from service.stats.differences import difference_evidence
 from service.stats.margins import MarginEvidence

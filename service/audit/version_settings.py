@@ -13,7 +13,8 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
 from service.audit.realized import CellCounts, Favourable
-from service.policy.document import AuditPlan, GroupTarget, PolicyDocument
+from service.policy.document import AuditPlan, PolicyDocument
+from service.policy.targets import GroupTarget
 
 DEFAULT_TOLERANCE = 0.05
 """Used only for a stored version whose targets carry no positive tolerance (new versions are

@@ -35,13 +35,14 @@ from service.policy.crossfit import (
 from service.policy.derive import FRONTIER_TOLERANCES, frontier, solve
 from service.policy.derive_document import PolicyIdentity, build_document
 from service.policy.derive_report import build_report
-from service.policy.document import Criterion, document_json
+from service.policy.document import document_json
 from service.policy.errors import InternalDeriveError
 from service.policy.promise_spread import (
     DEFAULT_RESAMPLES,
     DEFAULT_RESAMPLES_SEED,
     bootstrap_errors,
 )
+from service.policy.targets import Criterion
 from service.policy.units import DeriveError, DeriveSettings, prepare
 
 _SLUG = re.compile(r"^[a-z0-9][a-z0-9._-]{0,63}$")

@@ -27,9 +27,9 @@ import numpy.typing as npt
 
 from service.policy.derive import CHECK_TOLERANCE, GAP_RATES, RATE_NAMES, Solution, solve
 from service.policy.derive_lp import FOUR_FIFTHS
-from service.policy.document import CalibrationCounts, Criterion
 from service.policy.errors import InternalDeriveError
 from service.policy.rates import ExpectedCounts, rule_bands
+from service.policy.targets import CalibrationCounts, Criterion
 from service.policy.units import (
     CalibrationData,
     DeriveError,

@@ -38,10 +38,11 @@ from dataclasses import dataclass
 import numpy as np
 
 from service.policy.derive_lp import FOUR_FIFTHS, solve_lp
-from service.policy.document import Criterion, Rule
+from service.policy.document import Rule
 from service.policy.errors import InternalDeriveError
 from service.policy.mixture import LpPoint, rule_for_point, rule_from_weights
 from service.policy.rates import ExpectedCounts, rule_bands
+from service.policy.targets import Criterion
 from service.policy.units import POOLED_UNIT, DeriveError, Prepared, Unit
 
 FRONTIER_TOLERANCES = (0.0, 0.01, 0.02, 0.05, 0.1)

@@ -18,17 +18,9 @@ import numpy.typing as npt
 
 from service.policy.crossfit import CrossFitted
 from service.policy.derive import Solution
-from service.policy.document import (
-    Costs,
-    Criterion,
-    Fallback,
-    Groups,
-    GroupTarget,
-    PolicyDocument,
-    PromiseErrors,
-    Targets,
-)
+from service.policy.document import Costs, Fallback, Groups, PolicyDocument
 from service.policy.promise_spread import PromiseSpread
+from service.policy.targets import Criterion, GroupTarget, PromiseErrors, Targets
 from service.policy.units import DEFAULT_UNIT, POOLED_UNIT, CalibrationData, FloatArray, Prepared
 
 DECILES = np.arange(1, 10) / 10.0

@@ -29,8 +29,8 @@ import numpy.typing as npt
 from scipy import sparse
 from scipy.optimize import linprog
 
-from service.policy.document import Criterion
 from service.policy.mixture import LpPoint
+from service.policy.targets import Criterion
 from service.policy.units import DeriveError, DeriveSettings, FloatArray, Unit
 
 FOUR_FIFTHS = 0.8

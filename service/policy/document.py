@@ -15,13 +15,9 @@ from __future__ import annotations
 import hashlib
 import json
 from collections.abc import Mapping
-from enum import StrEnum
-from itertools import pairwise
 from typing import Any, Literal, Self
 
 from pydantic import (
-    BaseModel,
-    ConfigDict,
     Field,
     field_validator,
     model_validator,
@@ -35,44 +31,29 @@ from service.policy.attributes import (
     is_canonical,
     read_attribute,
 )
+from service.policy.targets import Targets
 from service.policy.values import (
-    MAX_COUNT,
     Cost,
-    Count,
     GroupKey,
     Label,
-    NonNegative,
     Probability,
     Prose,
     ScoreValue,
     Slug,
+    StrictModel,
 )
 
 __all__ = ["GROUP_SEPARATOR"]
 
 
-class Criterion(StrEnum):
-    MAX_UTILITY = "max-utility"
-    SINGLE_CUT = "single-cut"
-    DEMOGRAPHIC_PARITY = "demographic-parity"
-    EQUAL_OPPORTUNITY = "equal-opportunity"
-    PREDICTIVE_EQUALITY = "predictive-equality"
-    EQUALIZED_ODDS = "equalized-odds"
-    FOUR_FIFTHS = "four-fifths"
-
-
-class _Strict(BaseModel):
-    model_config = ConfigDict(extra="forbid", frozen=True, populate_by_name=True)
-
-
-class Step(_Strict):
+class Step(StrictModel):
     """From score ``start`` upward the action is taken with ``probability``."""
 
     start: ScoreValue = Field(alias="from")
     probability: Probability
 
 
-class Rule(_Strict):
+class Rule(StrictModel):
     """A non-decreasing step function from score to P(action)."""
 
     steps: list[Step] = Field(min_length=1)
@@ -135,7 +116,7 @@ class Rule(_Strict):
         return f"never act below {first:g}; " + "; ".join(parts)
 
 
-class Costs(_Strict):
+class Costs(StrictModel):
     """Error costs the policy was derived with (per case, in any one unit)."""
 
     false_positive: Cost
@@ -148,7 +129,7 @@ class Costs(_Strict):
         return self
 
 
-class Fallback(_Strict):
+class Fallback(StrictModel):
     """What to do for a group without a rule of its own.
 
     Tried in order: the parent group (drop attributes from the right, so
@@ -163,7 +144,7 @@ class Fallback(_Strict):
     unknown_groups: Literal["fallback", "refuse"] = "refuse"
 
 
-class Groups(_Strict):
+class Groups(StrictModel):
     attributes: list[Slug] = Field(
         min_length=1, max_length=MAX_ATTRIBUTES, description="request attributes forming the key"
     )
@@ -203,139 +184,7 @@ class Groups(_Strict):
         return self
 
 
-class CalibrationCounts(_Strict):
-    """The counts one group's promised rates rest on, from calibration rows the rules were not
-    fitted on (cross-fitting): ``n`` rows, ``positives`` of them with outcome 1, and the rules'
-    expected actions among the positives (``tp``) and the negatives (``fp``), sums of
-    P(action | score). The audit compares a month's realized counts with these as a second
-    sample, not with an exact number."""
-
-    n: int = Field(ge=1, le=MAX_COUNT)
-    positives: Count
-    tp: NonNegative
-    fp: NonNegative
-
-    @model_validator(mode="after")
-    def _consistent(self) -> Self:
-        slack = 1e-6 * max(1, self.n)  # sums of probabilities carry rounding
-        if self.positives > self.n:
-            raise ValueError(f"positives ({self.positives}) exceed n ({self.n})")
-        if self.tp > self.positives + slack:
-            raise ValueError(f"tp ({self.tp}) exceeds positives ({self.positives})")
-        if self.fp > self.n - self.positives + slack:
-            raise ValueError(f"fp ({self.fp}) exceeds negatives ({self.n - self.positives})")
-        return self
-
-
-class PromiseErrors(_Strict):
-    """Bootstrap standard errors of one group's cross-fitted promised rates.
-
-    Each is the standard deviation of the promised rate's error over resamples of the
-    calibration rows (rows drawn with replacement within each group, the cross-fitting run
-    again on each; the error is the resample's promise minus the rate of the resample's own
-    fitted rules on the original rows: Efron & Tibshirani 1993, An Introduction to the
-    Bootstrap, ch. 10). Versions derived before that estimator store the standard deviation of
-    the resampled promise itself (larger; audited as stored). The audit widens its two-sample
-    test of a promise by the design effect, this variance over the binomial variance of the
-    promise (Rao & Scott 1992). None: the rate was undefined on too many resamples to say.
-    """
-
-    action_rate: NonNegative | None = None
-    tpr: NonNegative | None = None
-    fpr: NonNegative | None = None
-
-
-class GroupTarget(_Strict):
-    """Rates the policy was expected to produce for one group on its calibration data.
-
-    With ``out_of_sample`` the rates are those counts' ratios (honest promises); without it
-    they are in-sample figures, taken by the audit as exact numbers. ``standard_errors``
-    (only with ``out_of_sample``) are the promised rates' bootstrap standard errors; a document
-    without them is audited with the promise as a binomial sample of its counts.
-    """
-
-    n: Count | None = None
-    prevalence: Probability | None = None
-    action_rate: Probability
-    tpr: Probability
-    fpr: Probability
-    out_of_sample: CalibrationCounts | None = None
-    standard_errors: PromiseErrors | None = Field(
-        default=None,
-        description="bootstrap standard errors of the cross-fitted promised rates "
-        "(needs out_of_sample)",
-    )
-    score_counts: list[Count] | None = Field(
-        default=None,
-        description="calibration rows per score bin (bins cut at targets.score_edges)",
-    )
-    outside_promise: Prose | None = Field(
-        default=None,
-        description="why the criterion's promise does not cover this group (None: it does), "
-        "e.g. a fallback rule that misses the criterion on the calibration data",
-    )
-
-    @model_validator(mode="after")
-    def _errors_of_counts(self) -> Self:
-        if self.standard_errors is not None and self.out_of_sample is None:
-            raise ValueError(
-                "standard_errors are those of cross-fitted promises: they need out_of_sample"
-            )
-        return self
-
-
-class Targets(_Strict):
-    criterion: Criterion
-    tolerance: NonNegative | None = Field(
-        default=None,
-        description="largest gap between groups (for gap criteria) and between realized and "
-        "promised rates that keeps the promise; required and positive at submit",
-    )
-    expected_cost: Cost | None = None
-    reference_group: GroupKey | None = Field(
-        default=None,
-        description="group every gap is taken against, and the four-fifths comparator "
-        "(default: the largest calibration group for gaps, the calibration group with the "
-        "highest favourable rate for four-fifths)",
-    )
-    capacity: Probability | None = Field(
-        default=None, description="largest overall action rate the rules were derived under"
-    )
-    folds: int | None = Field(
-        default=None,
-        ge=2,
-        le=1000,
-        description="cross-fitting folds behind groups[*].out_of_sample",
-    )
-    resamples: int | None = Field(
-        default=None,
-        ge=2,
-        le=100000,
-        description="bootstrap resamples behind groups[*].standard_errors",
-    )
-    score_edges: list[ScoreValue] | None = Field(
-        default=None,
-        description="inner edges of the score bins of groups[*].score_counts, increasing",
-    )
-    groups: dict[GroupKey, GroupTarget] = Field(default_factory=dict)
-
-    @model_validator(mode="after")
-    def _bins_match(self) -> Self:
-        edges = self.score_edges
-        if edges is not None and any(b <= a for a, b in pairwise(edges)):
-            raise ValueError("targets.score_edges must be strictly increasing")
-        for key, target in self.groups.items():
-            if target.score_counts is None:
-                continue
-            if edges is None or len(target.score_counts) != len(edges) + 1:
-                raise ValueError(
-                    f"targets.groups[{key!r}].score_counts needs one count per bin "
-                    "(len(targets.score_edges) + 1)"
-                )
-        return self
-
-
-class AuditPlan(_Strict):
+class AuditPlan(StrictModel):
     """How the audit decides statuses for this policy: part of what is approved."""
 
     level: float = Field(
@@ -361,7 +210,7 @@ class AuditPlan(_Strict):
     )
 
 
-class PolicyDocument(_Strict):
+class PolicyDocument(StrictModel):
     """One policy: how a score becomes a recommendation, for every group."""
 
     name: Slug

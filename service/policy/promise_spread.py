@@ -41,9 +41,9 @@ import numpy as np
 
 from service.policy.crossfit import CrossFitted, assign_folds, cross_fit
 from service.policy.derive import Solution, solve
-from service.policy.document import Criterion
 from service.policy.errors import InternalDeriveError
 from service.policy.rates import ExpectedCounts, rule_bands
+from service.policy.targets import Criterion
 from service.policy.units import (
     CalibrationData,
     DeriveError,

@@ -1,4 +1,5 @@
-"""The bounded value types of the policy document: numbers and text a version may hold.
+"""The bounded value types of the policy document: numbers and text a version may hold, and
+the strict base model every part of the document derives from.
 
 Every bound keeps what the service computes from a document finite and storable: scores and
 costs stay far from the largest double, counts are exact as doubles, and text holds no control
@@ -9,7 +10,7 @@ from __future__ import annotations
 
 from typing import Annotated
 
-from pydantic import Field, StringConstraints
+from pydantic import BaseModel, ConfigDict, Field, StringConstraints
 
 from service.policy.attributes import MAX_GROUP_KEY_CHARS, TEXT_PATTERN
 
@@ -40,3 +41,9 @@ Prose = Annotated[str, StringConstraints(max_length=MAX_PROSE_CHARS, pattern=TEX
 GroupKey = Annotated[
     str, StringConstraints(min_length=1, max_length=MAX_GROUP_KEY_CHARS, pattern=TEXT_PATTERN)
 ]
+
+
+class StrictModel(BaseModel):
+    """The base of every part of the policy document: unknown members refused, frozen."""
+
+    model_config = ConfigDict(extra="forbid", frozen=True, populate_by_name=True)

@@ -14,8 +14,9 @@ from service.cli.main import main
 from service.demo.fernhollow import generate, write_csv
 from service.policy import crossfit
 from service.policy.derive import Solution, solve
-from service.policy.document import Criterion, PolicyDocument, content_hash
+from service.policy.document import PolicyDocument, content_hash
 from service.policy.errors import InternalDeriveError
+from service.policy.targets import Criterion
 from service.policy.units import Prepared
 
 

@@ -11,9 +11,9 @@ import pytest
 from service.policy import crossfit
 from service.policy.crossfit import CrossFitted, assign_folds, cross_fit, promise_warnings
 from service.policy.derive import Solution, solve
-from service.policy.document import Criterion
 from service.policy.errors import InternalDeriveError
 from service.policy.rules import rule_probabilities
+from service.policy.targets import Criterion
 from service.policy.units import CalibrationData, DeriveError, DeriveSettings, Prepared, prepare
 
 

@@ -12,9 +12,9 @@ from sklearn.metrics import roc_curve as sk_roc_curve
 
 from service.policy.crossfit import assign_folds, compare
 from service.policy.derive import frontier, solve
-from service.policy.document import Criterion
 from service.policy.roc import roc_curve, upper_hull
 from service.policy.rules import rule_probabilities
+from service.policy.targets import Criterion
 from service.policy.units import CalibrationData, DeriveError, DeriveSettings, prepare
 from tests.policy.reference_lp import reference_cost
 

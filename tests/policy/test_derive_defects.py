@@ -8,11 +8,11 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from service.policy.derive import _four_fifths_miss, _gap_miss, solve
-from service.policy.document import Criterion
 from service.policy.mixture import LpPoint, rule_for_point
 from service.policy.rates import expected_counts
 from service.policy.roc import hull_of, roc_curve
 from service.policy.rules import rule_probabilities
+from service.policy.targets import Criterion
 from service.policy.units import CalibrationData, DeriveError, DeriveSettings, prepare
 
 

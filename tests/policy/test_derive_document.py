@@ -17,10 +17,11 @@ from service.policy.derive_document import (
     score_counts,
     score_edges,
 )
-from service.policy.document import Criterion, PolicyDocument, Rule, Step, document_json
+from service.policy.document import PolicyDocument, Rule, Step, document_json
 from service.policy.rates import expected_counts, rule_bands
 from service.policy.roc import counts_at, roc_curve
 from service.policy.rules import rule_probabilities
+from service.policy.targets import Criterion
 from service.policy.units import CalibrationData, DeriveSettings, prepare
 
 unit = st.floats(0.0, 1.0, allow_nan=False)

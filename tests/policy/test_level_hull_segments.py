@@ -17,11 +17,11 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from service.policy.derive import solve
-from service.policy.document import Criterion
 from service.policy.mixture import LpPoint, rule_for_point
 from service.policy.rates import expected_counts
 from service.policy.roc import hull_of, roc_curve
 from service.policy.rules import rule_probabilities
+from service.policy.targets import Criterion
 from service.policy.units import CalibrationData, DeriveSettings, prepare
 
 

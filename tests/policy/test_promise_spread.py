@@ -22,7 +22,7 @@ import pytest
 from service.policy.crossfit import assign_folds, cross_fit
 from service.policy.derive import solve
 from service.policy.derive_document import PolicyIdentity, build_document
-from service.policy.document import Criterion, PolicyDocument, Rule
+from service.policy.document import PolicyDocument, Rule
 from service.policy.promise_spread import (
     ERROR_METHOD,
     PROMISE_METHOD,
@@ -32,6 +32,7 @@ from service.policy.promise_spread import (
     resample_rows,
     served_rates,
 )
+from service.policy.targets import Criterion
 from service.policy.units import CalibrationData, DeriveError, DeriveSettings, prepare
 
 SETTINGS = DeriveSettings(cost_fp=1.0, cost_fn=4.0)

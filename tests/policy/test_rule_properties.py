@@ -9,15 +9,9 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from service.policy.derive import solve
-from service.policy.document import (
-    Costs,
-    Criterion,
-    Groups,
-    PolicyDocument,
-    Rule,
-    Step,
-)
+from service.policy.document import Costs, Groups, PolicyDocument, Rule, Step
 from service.policy.rules import evaluate, evaluate_batch, rule_probabilities
+from service.policy.targets import Criterion
 from service.policy.units import CalibrationData, DeriveSettings, prepare
 
 unit = st.floats(0.0, 1.0, allow_nan=False)
