@@ -7,6 +7,7 @@ time. matplotlib is imported only when a chart is drawn, and only through its ob
 
 from __future__ import annotations
 
+import functools
 import io
 import math
 from typing import TYPE_CHECKING, Any, cast
@@ -283,18 +284,22 @@ def _fmt_p(value: float | None) -> str:
     return "<0.0001" if value < 1e-4 else f"{value:.4f}"
 
 
-_ENV = Environment(
-    loader=PackageLoader("service.audit", "templates"),
-    autoescape=select_autoescape(["html", "j2"]),
-    trim_blocks=True,
-    lstrip_blocks=True,
-)
-_ENV.filters["fmt"] = _fmt
-_ENV.filters["count"] = _fmt_count
-_ENV.filters["estimate"] = _fmt_estimate
-_ENV.filters["gap"] = lambda e: _fmt_estimate(e, signed=True)
-_ENV.filters["pvalue"] = _fmt_p
-_ENV.globals["labels"] = METRIC_LABELS
+@functools.cache
+def _environment() -> Environment:
+    """The report's template environment, made on first use (nothing is done on import)."""
+    env = Environment(
+        loader=PackageLoader("service.audit", "templates"),
+        autoescape=select_autoescape(["html", "j2"]),
+        trim_blocks=True,
+        lstrip_blocks=True,
+    )
+    env.filters["fmt"] = _fmt
+    env.filters["count"] = _fmt_count
+    env.filters["estimate"] = _fmt_estimate
+    env.filters["gap"] = lambda e: _fmt_estimate(e, signed=True)
+    env.filters["pvalue"] = _fmt_p
+    env.globals["labels"] = METRIC_LABELS
+    return env
 
 
 def to_html(snapshot: Snapshot) -> str:
@@ -312,12 +317,16 @@ def to_html(snapshot: Snapshot) -> str:
         for c in v.checks:
             if c.status not in ("breach", "holds", "undecided"):
                 undecided[(v.version, c.status)] = undecided.get((v.version, c.status), 0) + 1
-    return _ENV.get_template("report.html.j2").render(
-        s=snapshot,
-        charts=charts,
-        untested=sorted(undecided.items()),
-        # The favourable rate is the action rate or its complement; overrides have their own
-        # table: leaving them out keeps the table within a printed page.
-        table_rates=[m for m in RATE_METRICS if m not in ("favourable_rate", "override_rate")],
-        gap_metrics=GAP_METRICS,
+    return (
+        _environment()
+        .get_template("report.html.j2")
+        .render(
+            s=snapshot,
+            charts=charts,
+            untested=sorted(undecided.items()),
+            # The favourable rate is the action rate or its complement; overrides have their own
+            # table: leaving them out keeps the table within a printed page.
+            table_rates=[m for m in RATE_METRICS if m not in ("favourable_rate", "override_rate")],
+            gap_metrics=GAP_METRICS,
+        )
     )

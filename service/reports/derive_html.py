@@ -6,24 +6,21 @@ import io
 from typing import Any
 
 import matplotlib
-
-matplotlib.use("Agg")  # no display: render to SVG in memory
-import matplotlib.pyplot as plt
 import numpy as np
 from jinja2 import Environment, PackageLoader, select_autoescape
+from matplotlib.figure import Figure
 
 from service.policy.roc import RocCurve, upper_hull
 
 _MAX_PLOTTED_POINTS = 400
 
 
-def _svg(fig: Any) -> str:
+def _svg(fig: Figure) -> str:
     buf = io.StringIO()
     # No date or creator metadata and fixed element ids: the same report gives the same page.
     metadata = {"Creator": None, "Date": None, "Format": None, "Type": None}
     with matplotlib.rc_context({"svg.hashsalt": "evenhand"}):
         fig.savefig(buf, format="svg", bbox_inches="tight", metadata=metadata)
-    plt.close(fig)
     text = buf.getvalue()
     return text[text.index("<svg") :]  # drop the XML prolog: the SVG sits inside HTML
 
@@ -39,7 +36,9 @@ def roc_svg(report: dict[str, Any], curves: dict[str, RocCurve]) -> str:
     keys = list(curves)
     cols = min(3, len(keys))
     rows = (len(keys) + cols - 1) // cols
-    fig, axes = plt.subplots(rows, cols, figsize=(3.2 * cols, 3.2 * rows), squeeze=False)
+    # The object interface: no pyplot, so no backend or global state is chosen on import.
+    fig = Figure(figsize=(3.2 * cols, 3.2 * rows))
+    axes = fig.subplots(rows, cols, squeeze=False)
     for ax, key in zip(axes.flat, keys, strict=False):
         curve = curves[key]
         fx, ty = _thin(curve.fpr, curve.tpr)
@@ -65,7 +64,8 @@ def roc_svg(report: dict[str, Any], curves: dict[str, RocCurve]) -> str:
 
 def frontier_svg(report: dict[str, Any]) -> str:
     points = [p for p in report["frontier"]["points"] if p["expected_cost"] is not None]
-    fig, ax = plt.subplots(figsize=(4.5, 3))
+    fig = Figure(figsize=(4.5, 3))
+    ax = fig.subplots()
     ax.plot(
         [p["tolerance"] for p in points],
         [p["expected_cost"] for p in points],
