@@ -7,6 +7,8 @@ import io
 import re
 import subprocess
 import sys
+import typing
+from pathlib import Path
 
 import pandas as pd
 import pytest
@@ -14,6 +16,7 @@ import pytest
 from service.audit.render_csv import CSV_COLUMNS, NOTES, to_csv
 from service.audit.render_html import to_html
 from service.audit.snapshot import CALIBRATION_CONFLICT
+from service.audit.snapshot_model import Withheld
 from tests.test_snapshot import result, snapshot
 
 
@@ -76,3 +79,16 @@ def test_rendering_does_not_change_matplotlib_globals() -> None:
     )
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == "[]"
+
+
+def test_every_csv_note_is_documented_and_every_withheld_reason_is_a_note() -> None:
+    """docs/audit.md ("CSV") lists exactly the notes the CSV can carry."""
+    text = (Path(__file__).resolve().parents[1] / "docs" / "audit.md").read_text()
+    table = text.split("| note | meaning |", 1)[1].split("\n\n", 1)[0]
+    documented = {
+        line.split("`")[1]: line.split("|")[2].strip()
+        for line in table.splitlines()
+        if line.startswith("| `")
+    }
+    assert documented == NOTES
+    assert set(typing.get_args(Withheld)) <= set(NOTES)

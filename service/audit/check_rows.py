@@ -23,11 +23,12 @@ METRIC_LABELS = {
 }
 
 _UNTESTED_TEXT = {
-    Status.TOO_FEW: "too few cases to test (a denominator is below {min_count})",
-    Status.NOT_IDENTIFIABLE: "not identifiable: outcomes are observed only after some decisions",
+    Status.TOO_FEW: "too-few: not tested, a denominator is below {min_count}",
+    Status.NOT_IDENTIFIABLE: "not-identifiable: outcomes are observed only after some decisions",
     Status.PENDING: "pending: the month's outcomes are not mature yet",
-    Status.OUTSIDE_PROMISE: "outside the promise (recorded in the version: {reason})",
+    Status.OUTSIDE_PROMISE: "outside-promise (recorded in the version: {reason})",
 }
+"""Each untested status's message, led by the status as the JSON, CSV and HTML write it."""
 
 
 def what_is_checked(c: Check) -> str:

@@ -261,10 +261,12 @@ def _fmt_count(value: Any) -> str:
 
 _WITHHELD_TEXT = {
     "small-cell": "withheld",
-    "not-identifiable": "not identifiable",
-    "no-cases": "no cases",
+    "not-identifiable": "not-identifiable",
+    "no-cases": "no-cases",
     "pending": "pending",
 }
+"""What the page shows for a figure without a number: the CSV's note (docs/audit.md, "CSV"),
+except that a small-cell figure reads "withheld", as withheld counts do."""
 
 
 def _fmt_estimate(e: Estimate | None, signed: bool = False) -> str:
