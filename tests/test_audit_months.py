@@ -4,8 +4,8 @@ group's outcomes is flagged by the monitoring before any single month shows a br
 sudden shift is a breach found and named.
 
 The service stamps each decision with the time it was made; to play several months in a few
-seconds the test moves the scoring clock (``service.store.scoring.utcnow``) to the middle of
-each month, and audits each month as if two months had passed since it ended.
+seconds the test moves the scoring clock (``service.store.decision_pipeline.utcnow``) to the
+middle of each month, and audits each month as if two months had passed since it ended.
 """
 
 from __future__ import annotations
@@ -96,7 +96,9 @@ def play_month(
 ) -> None:
     """Score ``n`` cases in the middle of ``month`` and report every outcome."""
     start, _ = month.bounds("UTC")
-    monkeypatch.setattr("service.store.scoring.utcnow", lambda: start + timedelta(days=14))
+    monkeypatch.setattr(
+        "service.store.decision_pipeline.utcnow", lambda: start + timedelta(days=14)
+    )
     groups, score = cases(rng, n)
     y = outcomes(rng, groups, score, shift)
     decided: list[dict[str, Any]] = []

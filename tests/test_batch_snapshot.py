@@ -115,6 +115,6 @@ def test_an_unchanged_snapshot_is_written_as_decided(
     prepared = _between_the_steps(monkeypatch, lambda: None)
     responses, created = scoring.recommend_batch(engine, _batch(5), ctx)
     assert len(prepared) == 1 and created == 5
-    assert [r["recommendation_id"] for r in prepared[0].rows] == [
+    assert [r.recommendation_id for r in prepared[0].rows] == [
         r.split('"recommendation_id":"')[1][:36] for r in responses
     ]

@@ -23,7 +23,7 @@ from sqlalchemy.orm import Session, sessionmaker
 
 import service.store.committer as committer_module
 from service.api.recommendation_schemas import RecommendationRequest
-from service.store import keys, lifecycle, scoring
+from service.store import decision_pipeline, keys, lifecycle
 from service.store.committer import GroupCommitter
 from service.store.scoring import DocumentCache, ScoringContext
 from tests.helpers import TEST_SECRET, count_rows, make_policy, make_request
@@ -154,14 +154,14 @@ def test_a_request_that_cannot_be_built_fails_alone(
     monkeypatch: pytest.MonkeyPatch,
     session_factory: sessionmaker[Session],
 ) -> None:
-    real_row = scoring._row
+    real_record = decision_pipeline._record
 
-    def row(plan: Any, req: Any, *args: Any) -> Any:
+    def record(plan: Any, req: Any, *args: Any) -> Any:
         if req.case_id == "unbuildable":
             raise ValueError("test: this record cannot be built")
-        return real_row(plan, req, *args)
+        return real_record(plan, req, *args)
 
-    monkeypatch.setattr(scoring, "_row", row)
+    monkeypatch.setattr(decision_pipeline, "_record", record)
     results, sizes = _in_one_group(engine, ctx, monkeypatch, _requests("unbuildable"))
     _check(results, sizes, session_factory, lambda e: isinstance(e, ValueError))
 

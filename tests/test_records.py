@@ -1,6 +1,6 @@
-"""The record encoding: a decision's canonical bytes are key-sorted compact JSON naming its
-kind, the hot-path response is exactly ``json.dumps`` of the response fields, leaves are
-RFC 9162 leaf hashes, and record ids are UUIDs of version 7."""
+"""The decision record: its canonical bytes are key-sorted compact JSON naming its kind, its
+response text is exactly the documented response schema as ``json.dumps`` writes it, leaves
+are RFC 9162 leaf hashes, and record ids are UUIDs of version 7."""
 
 from __future__ import annotations
 
@@ -14,14 +14,16 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from service.api.recommendation_schemas import BatchResponse, RecommendationResponse
 from service.log.merkle import leaf_hash
 from service.log.records import (
     RECORD_FIELDS,
     RESPONSE_FIELDS,
+    DecisionRecord,
+    batch_response_text,
     new_record_ids,
     record_bytes,
     record_payload,
-    response_text,
 )
 
 text = st.text(max_size=20)  # any unicode: quotes, backslashes, control characters
@@ -53,20 +55,40 @@ rows = st.fixed_dictionaries(
 )
 
 
+def _compact(value: Any, sort_keys: bool = False) -> str:
+    # The reference: the standard library's json module, compact, UTF-8.
+    return json.dumps(value, sort_keys=sort_keys, separators=(",", ":"), ensure_ascii=False)
+
+
 @settings(max_examples=300, deadline=None)
 @given(rows)
 def test_encodings_are_json_as_the_standard_library_writes_it(row: dict[str, Any]) -> None:
     assert set(row) == set(RECORD_FIELDS)
-    payload = record_payload(row)
-    # The reference: the standard library's json module, keys sorted, compact, UTF-8.
+    record = DecisionRecord(**row, request_fingerprint=b"f" * 16)
+    assert DecisionRecord.from_stored(row, b"f" * 16) == record
+    assert record_payload(row) == record.log_payload()
+    # The log: every field and the kind, keys sorted.
     expected = dict(row, kind="decision", issued_at=row["issued_at"].strftime(ISO))
-    assert record_bytes(row) == json.dumps(
-        expected, sort_keys=True, separators=(",", ":"), ensure_ascii=False
-    ).encode("utf-8")
-    assert json.loads(record_bytes(row)) == expected
-    # The response: json.dumps of the response fields in their order (compact, UTF-8).
-    response = {k: expected[k] for k in RESPONSE_FIELDS}
-    assert response_text(payload) == json.dumps(response, separators=(",", ":"), ensure_ascii=False)
+    assert record.canonical_bytes() == _compact(expected, sort_keys=True).encode("utf-8")
+    assert record_bytes(row) == record.canonical_bytes()
+    assert json.loads(record.canonical_bytes()) == expected
+    # The response: the documented schema (RecommendationResponse), its fields in order.
+    answer = record.response_text()
+    model = RecommendationResponse.model_validate_json(answer)
+    assert answer == _compact(model.model_dump())
+    assert list(model.model_dump()) == list(RESPONSE_FIELDS)
+    assert model.model_dump() == {k: expected[k] for k in RESPONSE_FIELDS}
+
+
+@settings(max_examples=50, deadline=None)
+@given(st.lists(rows, max_size=4), st.integers(min_value=0, max_value=10_000))
+def test_the_batch_response_is_the_documented_schema(
+    items: list[dict[str, Any]], created: int
+) -> None:
+    answer = batch_response_text([DecisionRecord(**r).response_text() for r in items], created)
+    model = BatchResponse.model_validate_json(answer)
+    assert answer == _compact(model.model_dump())
+    assert len(model.items) == len(items) and model.created == created
 
 
 def test_a_naive_timestamp_is_refused() -> None:

@@ -21,6 +21,7 @@ from service.api.recommendation_schemas import (
     RecommendationResponse,
 )
 from service.errors import BatchRefused, check_batch_size
+from service.log.records import batch_response_text
 from service.store import scoring
 from service.store.committer import GroupCommitter
 from service.store.scoring import ScoringContext
@@ -88,6 +89,4 @@ def _decide_batch(
         raise BatchRefused(batch.problems + more, batch.total)
     items, created = scoring.recommend_batch(engine, batch.items, ctx)
     # The items are JSON texts already (the same bytes a single request would get).
-    return _json_text(
-        f'{{"items":[{",".join(items)}],"created":{created}}}', 201 if created else 200
-    )
+    return _json_text(batch_response_text(items, created), 201 if created else 200)

@@ -1,4 +1,8 @@
-"""The canonical encoding of a decision record, and the scoring path's response text.
+"""The decision record: its canonical encoding in the log and the scoring response text.
+
+:class:`DecisionRecord` is the one form a decision takes from the rule to the log to the
+response: the scoring pipeline builds it, the store writes its row, the log hashes its
+canonical bytes and the client gets its response text, each derived from the same record.
 
 A decision's leaf in the log is SHA-256(0x00 || canonical bytes) (RFC 9162 section 2.1), the
 canonical bytes being compact, key-sorted UTF-8 JSON (``canonical``) of every field that makes
@@ -16,7 +20,8 @@ import json
 import math
 import os
 import time
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
 from datetime import UTC, datetime
 from typing import Any
 
@@ -51,7 +56,7 @@ RECORD_FIELDS: tuple[str, ...] = (
     "shadow_probability",
     "shadow_action",
 )
-"""The stored fields of a decision, in the order of the table and the response."""
+"""The fields of a decision the log encodes, in the order of the table and the response."""
 
 
 def format_timestamp(value: datetime) -> str:
@@ -61,8 +66,142 @@ def format_timestamp(value: datetime) -> str:
     return value.astimezone(UTC).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
 
 
+_last_stamp: tuple[datetime, str] = (
+    datetime(1970, 1, 1, tzinfo=UTC),
+    "1970-01-01T00:00:00.000000Z",
+)
+
+
+def _stamp(value: datetime) -> str:
+    """:func:`format_timestamp`, remembering the last value: the records of a group or a batch
+    share one ``issued_at``. (An aware datetime never equals a naive one, so a naive value
+    still reaches the check.)"""
+    global _last_stamp
+    last = _last_stamp  # one read: another thread may replace the pair meanwhile
+    if last[0] == value and value.tzinfo is not None:
+        return last[1]
+    text = format_timestamp(value)
+    _last_stamp = (value, text)
+    return text
+
+
+_string = json.encoder.encode_basestring  # the encoder's own routine (ensure_ascii=False)
+
+
+@dataclass(frozen=True, slots=True)
+class DecisionRecord:
+    """One decision as issued. The attributes are those the policy groups by (not to be
+    changed once the record is built)."""
+
+    recommendation_id: str
+    request_id: str
+    case_id: str
+    policy: str
+    version: int
+    score: float
+    attributes: dict[str, Any]
+    group: str
+    rule: str
+    probability: float
+    draw: float
+    action: bool
+    action_label: str
+    issued_at: datetime
+    shadow_version: int | None
+    shadow_probability: float | None
+    shadow_action: bool | None
+    request_fingerprint: bytes = b""
+    """A digest of the request that asked for it, stored beside it to tell a replay from a
+    reuse of its request_id; not part of the log's encoding (empty when read from the log)."""
+
+    @classmethod
+    def from_stored(cls, rec: Any, request_fingerprint: bytes = b"") -> DecisionRecord:
+        """The record from a :class:`~service.store.models.Recommendation`, a result row or a
+        mapping of column values, normalised so every database gives the same."""
+        # Decided once per record, not per field: verify reads every record in the log.
+        get = _get_item if isinstance(rec, Mapping) else getattr
+        return cls(
+            str(get(rec, "recommendation_id")),
+            str(get(rec, "request_id")),
+            str(get(rec, "case_id")),
+            str(get(rec, "policy")),
+            int(get(rec, "version")),
+            float(get(rec, "score")),
+            dict(get(rec, "attributes")),
+            str(get(rec, "group")),
+            str(get(rec, "rule")),
+            float(get(rec, "probability")),
+            float(get(rec, "draw")),
+            bool(get(rec, "action")),
+            str(get(rec, "action_label")),
+            _aware(get(rec, "issued_at")),
+            _opt_int(get(rec, "shadow_version")),
+            _opt_float(get(rec, "shadow_probability")),
+            _opt_bool(get(rec, "shadow_action")),
+            request_fingerprint,
+        )
+
+    def log_payload(self) -> dict[str, Any]:
+        """The record as plain JSON data, with its kind: what :meth:`canonical_bytes` encodes."""
+        return {
+            "kind": DECISION,
+            "recommendation_id": self.recommendation_id,
+            "request_id": self.request_id,
+            "case_id": self.case_id,
+            "policy": self.policy,
+            "version": self.version,
+            "score": self.score,
+            "attributes": self.attributes,
+            "group": self.group,
+            "rule": self.rule,
+            "probability": self.probability,
+            "draw": self.draw,
+            "action": self.action,
+            "action_label": self.action_label,
+            "issued_at": _stamp(self.issued_at),
+            "shadow_version": self.shadow_version,
+            "shadow_probability": self.shadow_probability,
+            "shadow_action": self.shadow_action,
+        }
+
+    def canonical_bytes(self) -> bytes:
+        """The canonical bytes of the record: its leaf in the log hashes them."""
+        return canonical(self.log_payload())
+
+    def response_text(self) -> str:
+        """The API response (``RecommendationResponse``, JSON text): ``json.dumps`` of the
+        response fields in :data:`RESPONSE_FIELDS` order, compact and UTF-8, each field
+        encoded once by its known type (the scoring hot path; tests/test_records.py checks it
+        against the schema and the standard library's encoder). A replay re-encodes the
+        stored record with it, so it gets the same bytes as the first answer."""
+        probability, draw = self.probability, self.draw
+        if not (math.isfinite(probability) and math.isfinite(draw)):
+            raise ValueError("NaN or infinity in a record")
+        text = _string
+        return _RESPONSE_TEMPLATE % (  # in RESPONSE_FIELDS order
+            text(self.recommendation_id),
+            text(self.request_id),
+            text(self.case_id),
+            text(self.policy),
+            int.__repr__(self.version),
+            text(self.group),
+            text(self.rule),
+            float.__repr__(probability),
+            float.__repr__(draw),
+            "true" if self.action else "false",
+            text(self.action_label),
+            text(_stamp(self.issued_at)),
+        )
+
+
 def _get_item(rec: Any, name: str) -> Any:
     return rec[name]
+
+
+def _aware(value: Any) -> datetime:
+    if not isinstance(value, datetime) or value.tzinfo is None:
+        raise ValueError("naive datetime in a record: timestamps must be aware (UTC)")
+    return value
 
 
 def _opt_float(value: Any) -> float | None:
@@ -78,37 +217,12 @@ def _opt_bool(value: Any) -> bool | None:
 
 
 def record_payload(rec: Any) -> dict[str, Any]:
-    """The record's fields as plain JSON data, normalised so every database gives the same.
-
-    ``rec`` may be a :class:`~service.store.models.Recommendation`, a result row or a mapping
-    of column values.
-    """
-    # Decided once per record, not per field: verify calls this for every record in the log.
-    _get = _get_item if isinstance(rec, Mapping) else getattr
-    return {
-        "kind": DECISION,
-        "recommendation_id": str(_get(rec, "recommendation_id")),
-        "request_id": str(_get(rec, "request_id")),
-        "case_id": str(_get(rec, "case_id")),
-        "policy": str(_get(rec, "policy")),
-        "version": int(_get(rec, "version")),
-        "score": float(_get(rec, "score")),
-        "attributes": dict(_get(rec, "attributes")),
-        "group": str(_get(rec, "group")),
-        "rule": str(_get(rec, "rule")),
-        "probability": float(_get(rec, "probability")),
-        "draw": float(_get(rec, "draw")),
-        "action": bool(_get(rec, "action")),
-        "action_label": str(_get(rec, "action_label")),
-        "issued_at": format_timestamp(_get(rec, "issued_at")),
-        "shadow_version": _opt_int(_get(rec, "shadow_version")),
-        "shadow_probability": _opt_float(_get(rec, "shadow_probability")),
-        "shadow_action": _opt_bool(_get(rec, "shadow_action")),
-    }
+    """A stored record's fields as plain JSON data (see :meth:`DecisionRecord.from_stored`)."""
+    return DecisionRecord.from_stored(rec).log_payload()
 
 
 def record_bytes(rec: Any) -> bytes:
-    """The canonical bytes of a decision record."""
+    """The canonical bytes of a stored decision record."""
     return canonical(record_payload(rec))
 
 
@@ -118,42 +232,15 @@ def encode_attributes(attributes: dict[str, Any]) -> str:
 
 
 # The response is the record without the score, the attributes and the shadow result, in
-# the record's field order (the order the API has always sent; a replay re-encodes a stored
-# record with json.dumps in this order and must give the same bytes).
+# the record's field order (the order the API has always sent).
 RESPONSE_FIELDS: tuple[str, ...] = tuple(
     f
     for f in RECORD_FIELDS
     if f not in ("score", "attributes", "shadow_version", "shadow_probability", "shadow_action")
 )
 _RESPONSE_TEMPLATE = "{" + ",".join(f'"{k}":%s' for k in RESPONSE_FIELDS) + "}"
-_string = json.encoder.encode_basestring  # the encoder's own routine (ensure_ascii=False)
 
-
-def response_text(payload: dict[str, Any]) -> str:
-    """The API response (JSON text) of a new decision given in :func:`record_payload` form
-    (``issued_at`` already formatted): ``json.dumps`` of the response fields, compact and
-    UTF-8, each field encoded once by its known type (the scoring hot path)."""
-    probability, draw = payload["probability"], payload["draw"]
-    if not (math.isfinite(probability) and math.isfinite(draw)):
-        raise ValueError("NaN or infinity in a record")
-    text = _string
-    return _RESPONSE_TEMPLATE % (  # in RESPONSE_FIELDS order
-        text(payload["recommendation_id"]),
-        text(payload["request_id"]),
-        text(payload["case_id"]),
-        text(payload["policy"]),
-        int.__repr__(payload["version"]),
-        text(payload["group"]),
-        text(payload["rule"]),
-        float.__repr__(probability),
-        float.__repr__(draw),
-        "true" if payload["action"] else "false",
-        text(payload["action_label"]),
-        text(payload["issued_at"]),
-    )
-
-
-assert RESPONSE_FIELDS == (
+if RESPONSE_FIELDS != (
     "recommendation_id",
     "request_id",
     "case_id",
@@ -166,7 +253,13 @@ assert RESPONSE_FIELDS == (
     "action",
     "action_label",
     "issued_at",
-), "response_text writes the fields in this order"
+):
+    raise AssertionError("DecisionRecord.response_text writes the fields in this order")
+
+
+def batch_response_text(responses: Sequence[str], created: int) -> str:
+    """The batch response (``BatchResponse``, JSON text) from its items' response texts."""
+    return f'{{"items":[{",".join(responses)}],"created":{int(created)}}}'
 
 
 def new_record_ids(count: int) -> list[str]:

@@ -1,8 +1,8 @@
 """One stored decision by its recommendation_id, with its outcome and final decision
 (queries only; no commits).
 
-The decision is given as the response first sent for it (``scoring.response_of``: the same
-fields and values), plus what the record keeps beside it: the score and the attributes the
+The decision is given as the response first sent for it (``DecisionRecord.response_text``: the
+same fields and values), plus what the record keeps beside it: the score and the attributes the
 policy grouped by, the shadow version's answer, the outcome that counts (the latest report,
 with how many corrections it has had) and the person's final decision.
 """
@@ -18,11 +18,10 @@ from sqlalchemy import func, select
 from sqlalchemy.orm import Session
 
 from service.errors import NotFound
-from service.log.records import RESPONSE_FIELDS
+from service.log.records import DecisionRecord
 from service.store.audit_models import FinalDecision, OutcomeRecord
 from service.store.feedback import canonical_recommendation_id
 from service.store.models import Recommendation
-from service.store.scoring import response_of
 
 
 @dataclass(frozen=True)
@@ -74,10 +73,9 @@ def find_decision(session: Session, recommendation_id: str) -> StoredDecision:
         raise NotFound(
             f"no recommendation has the id {recommendation_id!r}", code="unknown_recommendation"
         )
-    values = {f: getattr(row, f) for f in RESPONSE_FIELDS}
     return StoredDecision(
         row_id=row.id,
-        response=json.loads(response_of(values)),
+        response=json.loads(DecisionRecord.from_stored(row).response_text()),
         score=row.score,
         attributes=dict(row.attributes),
         shadow_version=row.shadow_version,

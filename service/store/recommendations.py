@@ -1,33 +1,37 @@
 """Writing and reading decision log records (queries only; no commits).
 
-``insert_records`` is the scoring hot path: one ``executemany`` with the values already in
-the database's own form, skipping SQLAlchemy's per-row parameter processing (a batch of
-5,000 would otherwise spend most of its time there). The values match what the column types
-would bind: SQLite stores UTC datetimes as naive ``YYYY-MM-DD HH:MM:SS.ffffff`` text, JSON
-as text and UUIDs as 32 hex digits; PostgreSQL takes aware datetimes, JSON text and UUID
-text. Reading back through the models gives the same values (a test compares a row written
-here with one written through the model).
+Rows are derived from :class:`~service.log.records.DecisionRecord`. ``insert_records`` is the
+scoring hot path: one ``executemany`` with the values already in the database's own form,
+skipping SQLAlchemy's per-row parameter processing (a batch of 5,000 would otherwise spend
+most of its time there). The values match what the column types would bind: SQLite stores UTC
+datetimes as naive ``YYYY-MM-DD HH:MM:SS.ffffff`` text, JSON as text and UUIDs as 32 hex
+digits; PostgreSQL takes aware datetimes, JSON text and UUID text. Reading back through the
+models gives the same values (a test compares a row written here with one written through
+the model).
+
+``stored_records`` is the one replay look-up: the records already stored for some
+request_ids.
 """
 
 from __future__ import annotations
 
-import json
 from collections.abc import Sequence
 from datetime import UTC, datetime
-from operator import itemgetter
+from functools import lru_cache
+from operator import attrgetter
 from typing import Any
 
-from sqlalchemy import Connection, Dialect, Table
+from sqlalchemy import Connection, Dialect, Table, bindparam, select
 
+from service.log.records import DecisionRecord, encode_attributes
 from service.store.models import Recommendation
+from service.store.switch_lock import SCORING_LOCK_SQL
 
 TABLE: Table = Recommendation.__table__  # type: ignore[assignment]
-# Every column the scoring path sets; the id is assigned by the database.
+# Every column the scoring path sets; the id is assigned by the database. Each is a field
+# of DecisionRecord of the same name.
 INSERT_COLUMNS: tuple[str, ...] = tuple(c.name for c in TABLE.columns if c.name != "id")
-_JSON = json.JSONEncoder(separators=(",", ":"), ensure_ascii=False, allow_nan=False)
-ATTRIBUTES_JSON = "_attributes_json"
-"""Optional row key: the attributes already encoded (the JSON column's text)."""
-_GET_ROW = itemgetter(*INSERT_COLUMNS)
+_VALUES = attrgetter(*INSERT_COLUMNS)
 _ATTRIBUTES_AT = INSERT_COLUMNS.index("attributes")
 _ISSUED_AT = INSERT_COLUMNS.index("issued_at")
 _RECOMMENDATION_ID = INSERT_COLUMNS.index("recommendation_id")
@@ -66,16 +70,16 @@ def _sqlite_multi_row_sql(dialect: Dialect, count: int) -> str:
     return sql
 
 
-def insert_records(conn: Connection, rows: Sequence[dict[str, Any]]) -> None:
+def insert_records(conn: Connection, records: Sequence[DecisionRecord]) -> None:
     """Insert many records (request_ids already checked: a duplicate is an error).
 
     On SQLite as multi-row INSERTs: the driver runs ``executemany`` one row at a time and
     releases the GIL around each, so a group of rows costs as many thread hand-offs with the
     event loop; one statement per 256 rows costs one.
     """
-    if not rows:
+    if not records:
         return
-    params = _driver_params(conn.dialect, rows)
+    params = _driver_params(conn.dialect, records)
     if conn.dialect.name != "sqlite":
         conn.exec_driver_sql(_insert_sql(conn.dialect), params)
         return
@@ -85,15 +89,15 @@ def insert_records(conn: Connection, rows: Sequence[dict[str, Any]]) -> None:
         conn.exec_driver_sql(_sqlite_multi_row_sql(conn.dialect, len(chunk)), flat)
 
 
-def insert_new_record(conn: Connection, row: dict[str, Any]) -> bool:
+def insert_new_record(conn: Connection, record: DecisionRecord) -> bool:
     """Insert one record unless its request_id is stored; False when it was."""
     result = conn.exec_driver_sql(
-        _insert_sql(conn.dialect, skip_existing=True), _driver_params(conn.dialect, [row])[0]
+        _insert_sql(conn.dialect, skip_existing=True), _driver_params(conn.dialect, [record])[0]
     )
     return bool(result.rowcount == 1)
 
 
-def _driver_params(dialect: Dialect, rows: Sequence[dict[str, Any]]) -> list[Any]:
+def _driver_params(dialect: Dialect, records: Sequence[DecisionRecord]) -> list[Any]:
     if dialect.name == "sqlite":
         stamps: dict[datetime, str] = {}  # a batch shares one issued_at: format it once
 
@@ -104,17 +108,83 @@ def _driver_params(dialect: Dialect, rows: Sequence[dict[str, Any]]) -> list[Any
             return text
 
         params: list[Any] = []
-        for row in rows:
-            values = list(_GET_ROW(row))
-            values[_ATTRIBUTES_AT] = _attributes_text(row)
-            values[_ISSUED_AT] = stamp(row["issued_at"])
+        for record in records:
+            values = list(_VALUES(record))
+            values[_ATTRIBUTES_AT] = _attributes_text(record.attributes)
+            values[_ISSUED_AT] = stamp(record.issued_at)
             # SQLAlchemy's Uuid keeps 32 hex digits on SQLite (a native uuid on PostgreSQL).
-            values[_RECOMMENDATION_ID] = row["recommendation_id"].replace("-", "")
+            values[_RECOMMENDATION_ID] = record.recommendation_id.replace("-", "")
             params.append(tuple(values))
         return params
-    return [{**row, "attributes": _attributes_text(row)} for row in rows]
+    rows = []
+    for record in records:
+        row = dict(zip(INSERT_COLUMNS, _VALUES(record), strict=True))
+        row["attributes"] = _attributes_text(record.attributes)
+        rows.append(row)
+    return rows
 
 
-def _attributes_text(row: dict[str, Any]) -> str:
-    text = row.get(ATTRIBUTES_JSON)
-    return text if text is not None else _JSON.encode(row["attributes"])
+def _attributes_text(attributes: dict[str, Any]) -> str:
+    # Keyed with each value's type: 1, 1.0 and True are equal as keys but not as JSON.
+    return _attributes_json(tuple((k, type(v), v) for k, v in attributes.items()))
+
+
+@lru_cache(maxsize=4096)
+def _attributes_json(items: tuple[tuple[str, type, Any], ...]) -> str:
+    return encode_attributes({k: v for k, _, v in items})
+
+
+# -- the replay look-up -------------------------------------------------------------------
+
+_STORED = select(
+    *[getattr(Recommendation, c) for c in INSERT_COLUMNS if c != "request_fingerprint"],
+    Recommendation.request_fingerprint,
+).where(Recommendation.request_id.in_(bindparam("ids", expanding=True)))
+_PROBE_SQL: dict[tuple[str, int, bool], str] = {}
+CHUNK = 1024
+"""request_ids per look-up statement."""
+
+
+def stored_records(
+    conn: Connection, request_ids: Sequence[str], lock: bool = False
+) -> dict[str, DecisionRecord]:
+    """The records stored for any of ``request_ids``, by request_id (each with its request's
+    fingerprint).
+
+    First a plain statement on the driver says which ids are stored (most requests are new,
+    so the typed read runs only for the ones found). ``lock``: take the switch lock for
+    scoring with it; on PostgreSQL the lock rides on the first statement (one round trip
+    for both), and the statements after it read with snapshots taken after it was granted.
+    """
+    found: list[str] = []
+    for start in range(0, len(request_ids), CHUNK):
+        found += _probe(conn, request_ids[start : start + CHUNK], lock and start == 0)
+    if not request_ids and lock and conn.dialect.name == "postgresql":
+        conn.exec_driver_sql(SCORING_LOCK_SQL)
+    records: dict[str, DecisionRecord] = {}
+    for start in range(0, len(found), CHUNK):
+        for row in conn.execute(_STORED, {"ids": found[start : start + CHUNK]}):
+            records[row.request_id] = DecisionRecord.from_stored(
+                row, bytes(row.request_fingerprint)
+            )
+    return records
+
+
+def _probe(conn: Connection, ids: Sequence[str], lock: bool) -> list[str]:
+    # Padded to a power of two (repeating the first id), so few statements are ever built.
+    size = 1 << (len(ids) - 1).bit_length()
+    dialect = conn.dialect
+    lock = lock and dialect.name == "postgresql"
+    key = (dialect.name, size, lock)
+    sql = _PROBE_SQL.get(key)
+    if sql is None:
+        mark = "?" if dialect.paramstyle == "qmark" else "%s"
+        sql = (
+            "SELECT request_id FROM recommendations WHERE request_id IN "
+            f"({', '.join([mark] * size)})"
+        )
+        if lock:
+            sql += f" UNION ALL SELECT NULL FROM ({SCORING_LOCK_SQL}) AS switch_lock"
+        _PROBE_SQL[key] = sql
+    padded = tuple(ids) + (ids[0],) * (size - len(ids))
+    return [row[0] for row in conn.exec_driver_sql(sql, padded) if row[0] is not None]

@@ -1,336 +1,57 @@
-"""Scoring: turn requests into recommendations and their decision log records.
+"""Scoring's transactions: a single request, a group of them and a batch, each a thin
+wrapper around the one decide-and-record pipeline (``service.store.decision_pipeline``).
 
 A request is evaluated against the policy's active version (and its shadow version, if one
-is designated; the shadow result is recorded, never returned). The record and the response
-are built from the same values, and a repeated ``request_id`` is answered from the stored
-record, so a replayed request gets byte-for-byte the same answer. Single requests
+is designated; the shadow result is recorded, never returned). Single requests
 (:func:`recommend`, :func:`recommend_group`) commit nothing: the caller (the group committer)
 commits before anyone is answered. :func:`recommend_batch` owns its transactions: a read
-snapshot to decide in, then a short write.
-
-The active version is looked up in the transaction that writes the records (once per policy
-and group of requests; one indexed query that also finds the shadow): correct across worker
-processes and rollbacks without any invalidation. Only the parsed documents are cached, by
-content hash, since a stored version never changes. ``issued_at`` is stamped after the
-active versions are read, under the switch lock (``service.store.switch_lock``), so every
-record's version is the one the history shows active at its ``issued_at``.
+snapshot to decide in, then a short write. Answers are the records' response texts
+(:meth:`~service.log.records.DecisionRecord.response_text`).
 """
 
 from __future__ import annotations
 
-import hashlib
-import json
-import threading
-from collections.abc import Mapping, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass
-from datetime import datetime
-from functools import lru_cache
-from typing import Any, Protocol
+from typing import Any
 
-from sqlalchemy import Connection, Engine, bindparam, select
+from sqlalchemy import Connection, Engine
 from sqlalchemy.exc import IntegrityError
-from sqlalchemy.orm import aliased
 
-from service.errors import (
-    BatchRefused,
-    Conflict,
-    ServiceError,
-    Unprocessable,
-    check_batch_size,
-    item_problem,
-)
-from service.log.records import (
-    RESPONSE_FIELDS,
-    encode_attributes,
-    format_timestamp,
-    new_record_ids,
-    response_text,
-)
-from service.policy.document import PolicyDocument, resolve_rule_key
+from service.errors import BatchRefused, Conflict, ServiceError, check_batch_size, item_problem
+from service.log.records import DecisionRecord
 from service.policy.errors import PolicyError
-from service.policy.rules import check_score, evaluate, evaluate_batch, rule_for
 from service.store.db import READ_ONLY
-from service.store.models import (
-    PolicyState,
-    PolicyVersion,
-    Recommendation,
-    utcnow,
+from service.store.decision_pipeline import (
+    DecisionPipeline,
+    ScoreInput,
+    fingerprint,
+    look_up,
 )
-from service.store.recommendations import ATTRIBUTES_JSON, insert_new_record, insert_records
-from service.store.switch_lock import SCORING_LOCK_SQL, hold_for_scoring
+from service.store.recommendations import insert_new_record, insert_records
+from service.store.scoring_plans import (
+    DocumentCache,
+    Plan,
+    ScoringContext,
+    last_switch,
+    resolve_plan,
+)
+from service.store.switch_lock import hold_for_scoring
 
-AttributeValue = str | int | float | bool
-
-
-class ScoreInput(Protocol):
-    @property
-    def request_id(self) -> str: ...
-    @property
-    def case_id(self) -> str: ...
-    @property
-    def policy(self) -> str: ...
-    @property
-    def score(self) -> float: ...
-    @property
-    def attributes(self) -> Mapping[str, AttributeValue]: ...
-
-
-_STORED = [getattr(Recommendation, f) for f in RESPONSE_FIELDS if f != "issued_at"] + [
-    Recommendation.issued_at,
-    Recommendation.request_fingerprint,
+__all__ = [
+    "DocumentCache",
+    "GroupResult",
+    "PreparedBatch",
+    "ScoreInput",
+    "ScoringContext",
+    "batch_problems",
+    "fingerprint",
+    "prepare_batch",
+    "recommend",
+    "recommend_batch",
+    "recommend_group",
+    "resolve_plan",
 ]
-
-
-class DocumentCache:
-    """Parsed policy documents by (name, version, content hash).
-
-    Stored versions never change, so an entry never goes stale; the content hash in the key
-    makes even a database that was emptied and refilled safe.
-    """
-
-    def __init__(self) -> None:
-        self._docs: dict[tuple[str, int, str], PolicyDocument] = {}
-        self._lock = threading.Lock()
-
-    def get(self, conn: Connection, name: str, version: int, digest: str) -> PolicyDocument:
-        key = (name, version, digest)
-        doc = self._docs.get(key)
-        if doc is not None:
-            return doc
-        data = conn.scalar(
-            select(PolicyVersion.document).where(
-                PolicyVersion.name == name, PolicyVersion.version == version
-            )
-        )
-        doc = PolicyDocument.model_validate(data)
-        with self._lock:
-            self._docs[key] = doc
-        return doc
-
-
-@dataclass(frozen=True, slots=True)
-class ScoringContext:
-    secret: bytes
-    documents: DocumentCache
-    max_batch_items: int = 10_000
-
-
-@dataclass(frozen=True, slots=True)
-class Plan:
-    """What a policy's requests are evaluated with right now."""
-
-    name: str
-    version: int
-    document: PolicyDocument
-    shadow_version: int | None
-    shadow: PolicyDocument | None
-    stored_attributes: tuple[str, ...]
-
-
-_Active = aliased(PolicyVersion)
-_Shadow = aliased(PolicyVersion)
-
-# Hot-path statements, built once (only their parameters change per request). The policy's
-# state row names its active and shadow versions (one primary-key lookup, then two on the
-# versions' unique index); an unknown policy has no row, a policy without an active
-# version a row whose active version is NULL.
-_PLAN_QUERY = (
-    select(
-        PolicyState.active_version,
-        _Active.content_hash,
-        PolicyState.shadow_version,
-        _Shadow.content_hash,
-    )
-    .select_from(PolicyState)
-    .outerjoin(
-        _Active,
-        (_Active.name == PolicyState.name) & (_Active.version == PolicyState.active_version),
-    )
-    .outerjoin(
-        _Shadow,
-        (_Shadow.name == PolicyState.name) & (_Shadow.version == PolicyState.shadow_version),
-    )
-    .where(PolicyState.name == bindparam("name"))
-)
-# The same lookup as plain SQL for the sqlite3 driver: the hot path skips SQLAlchemy's
-# statement and result processing (the four columns are plain integers and text), which
-# halves its CPU on SQLite. On PostgreSQL the driver-level form measured slower than the
-# compiled statement (psycopg), so it keeps _PLAN_QUERY. Keep the two equal.
-_PLAN_SQL_SQLITE = (
-    "SELECT p.active_version, v.content_hash, p.shadow_version, s.content_hash "
-    "FROM policy_state AS p "
-    "LEFT OUTER JOIN policy_versions AS v ON v.name = p.name AND v.version = p.active_version "
-    "LEFT OUTER JOIN policy_versions AS s ON s.name = p.name AND s.version = p.shadow_version "
-    "WHERE p.name = ?"
-)
-_EXISTING_QUERY = select(*_STORED).where(Recommendation.request_id == bindparam("request_id"))
-_EXISTING_MANY = select(*_STORED).where(
-    Recommendation.request_id.in_(bindparam("ids", expanding=True))
-)
-_STORED_IDS_SQL: dict[tuple[str, int], str] = {}
-
-
-def _lock_and_find_stored(conn: Connection, ids: list[str]) -> set[str]:
-    """Take the switch lock for scoring and say which of ``ids`` are stored, in one plain
-    statement on the driver (most groups find none, so the full typed lookup runs only for
-    the ones found). On PostgreSQL the lock rides on this statement (one round trip for
-    both); the statements after it read with snapshots taken after the lock was granted."""
-    dialect = conn.dialect
-    key = (dialect.name, len(ids))
-    sql = _STORED_IDS_SQL.get(key)
-    if sql is None:
-        mark = "?" if dialect.paramstyle == "qmark" else "%s"
-        sql = (
-            "SELECT request_id FROM recommendations WHERE request_id IN "
-            f"({', '.join([mark] * len(ids))})"
-        )
-        if dialect.name == "postgresql":
-            sql += f" UNION ALL SELECT NULL FROM ({SCORING_LOCK_SQL}) AS switch_lock"
-        _STORED_IDS_SQL[key] = sql
-    found = {row[0] for row in conn.exec_driver_sql(sql, tuple(ids))}
-    found.discard(None)
-    return found
-
-
-def resolve_plan(conn: Connection, name: str, ctx: ScoringContext) -> Plan:
-    """The active (and shadow) version of ``name``, read in the request's transaction."""
-    if conn.dialect.name == "sqlite":
-        row = conn.exec_driver_sql(_PLAN_SQL_SQLITE, (name,)).first()
-    else:
-        row = conn.execute(_PLAN_QUERY, {"name": name}).first()
-    if row is None:
-        raise Unprocessable(f"no policy named {name!r}", code="unknown_policy", field="policy")
-    if row[0] is None:
-        raise Conflict(
-            f"policy {name!r} has no active version: an admin must activate one",
-            code="no_active_version",
-            field="policy",
-        )
-    version, digest, shadow_version, shadow_digest = row
-    document = ctx.documents.get(conn, name, version, digest)
-    shadow = None
-    if shadow_version is not None:
-        shadow = ctx.documents.get(conn, name, shadow_version, shadow_digest)
-    attrs = list(document.groups.attributes)
-    if shadow is not None:
-        attrs += [a for a in shadow.groups.attributes if a not in attrs]
-    return Plan(name, int(version), document, shadow_version, shadow, tuple(attrs))
-
-
-def fingerprint(req: ScoreInput) -> bytes:
-    """A digest of the request body (the first 16 bytes of SHA-256), to tell a replay from
-    a reuse of its request_id.
-
-    Only ever compared with itself, so it need not be canonical JSON: ``repr`` of a tuple of
-    str, float and sorted (name, value) pairs is deterministic and keeps 1, 1.0 and True apart.
-    """
-    body = (
-        req.request_id,
-        req.case_id,
-        req.policy,
-        float(req.score),
-        sorted(req.attributes.items()),
-    )
-    return hashlib.sha256(repr(body).encode("utf-8")).digest()[:16]
-
-
-def response_of(values: Any) -> str:
-    """The API response (JSON text) for a stored record: a row or a mapping of its values.
-
-    The same bytes as the answer first given for it (``response_text``), so a replay is
-    byte-for-byte the original."""
-    get = values.__getitem__ if isinstance(values, Mapping) else values._mapping.__getitem__
-    out = {f: get(f) for f in RESPONSE_FIELDS}
-    out["issued_at"] = format_timestamp(out["issued_at"])
-    out["action"] = bool(out["action"])
-    return _RESPONSE_JSON.encode(out)
-
-
-_RESPONSE_JSON = json.JSONEncoder(separators=(",", ":"), ensure_ascii=False, allow_nan=False)
-
-
-def _replay(row: Any, req: ScoreInput, fp: bytes) -> str:
-    if bytes(row.request_fingerprint) != fp:
-        raise Conflict(
-            f"request_id {req.request_id!r} was already used with a different body; use a new "
-            "request_id for a new request",
-            code="idempotency_conflict",
-            field="request_id",
-        )
-    return response_of(row)
-
-
-def find_existing(conn: Connection, req: ScoreInput) -> str | None:
-    """The stored answer for this request_id (None if new); 409 if the body differs."""
-    row = conn.execute(_EXISTING_QUERY, {"request_id": req.request_id}).first()
-    return None if row is None else _replay(row, req, fingerprint(req))
-
-
-def _stored_attributes(plan: Plan, attributes: Mapping[str, AttributeValue]) -> dict[str, Any]:
-    # Keep only what the policy needs (data minimisation); the fingerprint covers the rest.
-    return {a: attributes[a] for a in plan.stored_attributes if a in attributes}
-
-
-@lru_cache(maxsize=4096)
-def _attributes_json(items: tuple[tuple[str, type, Any], ...]) -> str:
-    # Keyed with the value's type: 1, 1.0 and True are equal as keys but not as JSON.
-    return encode_attributes({k: v for k, _, v in items})
-
-
-def _shadow_one(plan: Plan, req: ScoreInput, secret: bytes) -> tuple[float | None, bool | None]:
-    if plan.shadow is None or plan.shadow_version is None:
-        return None, None
-    try:
-        d = evaluate(
-            plan.shadow, plan.shadow_version, req.score, dict(req.attributes), req.case_id, secret
-        )
-    except PolicyError:
-        return None, None  # the shadow could not decide; recorded as such
-    return d.probability, d.action
-
-
-def _row(
-    plan: Plan,
-    req: ScoreInput,
-    fp: bytes,
-    decision: tuple[str, str, float, float, bool],
-    shadow: tuple[float | None, bool | None],
-    issued_at: tuple[datetime, str],
-    record_id: str,
-) -> tuple[dict[str, Any], str]:
-    """(row to insert, response JSON) for one decision, both from the same values."""
-    group, rule, probability, draw, action = decision
-    attributes = _stored_attributes(plan, req.attributes)
-    attributes_json = _attributes_json(tuple((k, type(v), v) for k, v in attributes.items()))
-    payload = {
-        "recommendation_id": record_id,
-        "request_id": req.request_id,
-        "case_id": req.case_id,
-        "policy": plan.name,
-        "version": plan.version,
-        "score": float(req.score),
-        "attributes": attributes,
-        "group": group,
-        "rule": rule,
-        "probability": probability,
-        "draw": draw,
-        "action": action,
-        "action_label": plan.document.action_label if action else plan.document.no_action_label,
-        "issued_at": issued_at[1],
-        "shadow_version": plan.shadow_version,
-        "shadow_probability": shadow[0],
-        "shadow_action": shadow[1],
-    }
-    response = response_text(payload)
-    payload["issued_at"] = issued_at[0]
-    payload["request_fingerprint"] = fp
-    payload[ATTRIBUTES_JSON] = attributes_json
-    return payload, response
-
-
-def _now() -> tuple[datetime, str]:
-    now = utcnow()
-    return now, format_timestamp(now)
 
 
 def recommend(conn: Connection, req: ScoreInput, ctx: ScoringContext) -> tuple[str, bool]:
@@ -344,26 +65,19 @@ def recommend(conn: Connection, req: ScoreInput, ctx: ScoringContext) -> tuple[s
     The single write is the last statement, so a failure leaves nothing to undo.
     """
     hold_for_scoring(conn)
-    try:
-        plan = resolve_plan(conn, req.policy, ctx)
-        d = evaluate(
-            plan.document, plan.version, req.score, dict(req.attributes), req.case_id, ctx.secret
-        )
-    except (ServiceError, PolicyError):
-        existing = find_existing(conn, req)
-        if existing is not None:
-            return existing, False
-        raise
-    decision = (d.group, d.rule, float(d.probability), float(d.draw), bool(d.action))
-    shadow = _shadow_one(plan, req, ctx.secret)
-    (record_id,) = new_record_ids(1)
-    row, response = _row(plan, req, fingerprint(req), decision, shadow, _now(), record_id)
-    if insert_new_record(conn, row):
-        return response, True
-    existing = find_existing(conn, req)
-    if existing is None:  # cannot happen: the conflicting row is visible once we waited on it
+    fp = fingerprint(req)
+    (outcome,) = DecisionPipeline(conn, ctx).decide([req], [fp])
+    if isinstance(outcome, DecisionRecord) and insert_new_record(conn, outcome):
+        return outcome.response_text(), True
+    (stored,) = look_up(conn, [req], [fp])
+    if isinstance(stored, DecisionRecord):
+        return stored.response_text(), False
+    if stored is not None:
+        raise stored
+    if isinstance(outcome, DecisionRecord):
+        # Cannot happen: the conflicting row is visible once we waited on it.
         raise Conflict("request_id is being recorded concurrently; retry", code="concurrent_change")
-    return existing, False
+    raise outcome
 
 
 GroupResult = tuple[str, bool] | ServiceError | PolicyError
@@ -376,13 +90,13 @@ def recommend_group(
     """Decide independent single requests in one transaction; each succeeds or fails alone.
 
     The same answers as :func:`recommend` one after another, in fewer statements: one lookup
-    of the stored request_ids, one plan lookup per policy and one multi-row insert. Requests
-    that share a request_id (a client retrying while its first try is still queued) go in
-    later rounds, so a repeat sees the first as stored and gets its answer, as it would
-    have one at a time. Nothing is written for a refused request. The insert is the last
-    statement: if another process stored one of the request_ids meanwhile it raises
-    ``IntegrityError``, and the caller rolls back and decides the requests one by one.
-    The switch lock is taken by the first statement (:func:`_lock_and_find_stored`).
+    of the stored request_ids (which takes the switch lock), one plan lookup per policy and
+    one multi-row insert. Requests that share a request_id (a client retrying while its first
+    try is still queued) go in later rounds, so a repeat sees the first as stored and gets
+    its answer, as it would have one at a time. Nothing is written for a refused request. The
+    insert is the last statement: if another process stored one of the request_ids meanwhile
+    it raises ``IntegrityError``, and the caller rolls back and decides the requests one by
+    one.
     """
     results: list[GroupResult | None] = [None] * len(reqs)
     rounds: list[list[int]] = []
@@ -393,69 +107,30 @@ def recommend_group(
         if n == len(rounds):
             rounds.append([])
         rounds[n].append(i)
-    plans: dict[str, Plan | ServiceError] = {}
+    pipeline = DecisionPipeline(conn, ctx)
     for members in rounds:
-        _decide_round(conn, reqs, members, plans, results, ctx)
+        fps = [fingerprint(reqs[i]) for i in members]
+        new: list[int] = []
+        for i, stored in zip(
+            members, look_up(conn, [reqs[i] for i in members], fps, lock=True), strict=True
+        ):
+            if stored is None:
+                new.append(i)
+            elif isinstance(stored, DecisionRecord):
+                results[i] = (stored.response_text(), False)
+            else:
+                results[i] = stored
+        at = {i: k for k, i in enumerate(members)}
+        records: list[DecisionRecord] = []
+        outcomes = pipeline.decide([reqs[i] for i in new], [fps[at[i]] for i in new])
+        for i, outcome in zip(new, outcomes, strict=True):
+            if isinstance(outcome, DecisionRecord):
+                records.append(outcome)
+                results[i] = (outcome.response_text(), True)
+            else:
+                results[i] = outcome
+        insert_records(conn, records)
     return [r for r in results if r is not None]
-
-
-def _decide_round(
-    conn: Connection,
-    reqs: Sequence[ScoreInput],
-    members: list[int],
-    plans: dict[str, Plan | ServiceError],
-    results: list[GroupResult | None],
-    ctx: ScoringContext,
-) -> None:
-    fingerprints = {i: fingerprint(reqs[i]) for i in members}
-    by_id = {reqs[i].request_id: i for i in members}
-    found = _lock_and_find_stored(conn, list(by_id))
-    stored_rows = conn.execute(_EXISTING_MANY, {"ids": list(found)}) if found else ()
-    for stored in stored_rows:
-        i = by_id[stored.request_id]
-        try:
-            results[i] = (_replay(stored, reqs[i], fingerprints[i]), False)
-        except Conflict as exc:
-            results[i] = exc
-    for i in members:
-        name = reqs[i].policy
-        if results[i] is None and name not in plans:
-            try:
-                plans[name] = resolve_plan(conn, name, ctx)
-            except ServiceError as exc:
-                plans[name] = exc
-    # Stamped after the active versions were read (see the module's docstring).
-    issued_at = _now()
-    record_ids = iter(new_record_ids(len(members)))
-    rows: list[dict[str, Any]] = []
-    for i in members:
-        if results[i] is not None:
-            continue
-        req = reqs[i]
-        plan = plans[req.policy]
-        if isinstance(plan, ServiceError):
-            results[i] = plan
-            continue
-        try:
-            d = evaluate(
-                plan.document,
-                plan.version,
-                req.score,
-                dict(req.attributes),
-                req.case_id,
-                ctx.secret,
-            )
-        except PolicyError as exc:
-            results[i] = exc
-            continue
-        decision = (d.group, d.rule, float(d.probability), float(d.draw), bool(d.action))
-        shadow = _shadow_one(plan, req, ctx.secret)
-        row, response = _row(
-            plan, req, fingerprints[i], decision, shadow, issued_at, next(record_ids)
-        )
-        rows.append(row)
-        results[i] = (response, True)
-    insert_records(conn, rows)
 
 
 # -- batches ------------------------------------------------------------------------------
@@ -466,7 +141,7 @@ class PreparedBatch:
     """A batch decided against one snapshot of the store, ready to be written."""
 
     responses: list[str]  # JSON of each item, in input order
-    rows: list[dict[str, Any]]  # the new records
+    rows: list[DecisionRecord]  # the new records, in input order
     versions: dict[str, tuple[int, int | None]]  # policy -> (version, shadow) decided with
     switches: dict[str, int | None]  # policy -> id of its last event, read before it
 
@@ -505,16 +180,6 @@ def recommend_batch(
     return prepared.responses, len(prepared.rows)
 
 
-_LAST_EVENT = select(PolicyState.last_event_id).where(PolicyState.name == bindparam("name"))
-
-
-def _last_switch(conn: Connection, name: str) -> int | None:
-    """The id of the policy's last lifecycle event (any switch moves it; so do submissions
-    and approvals, which only cost a batch a second decision)."""
-    value = conn.scalar(_LAST_EVENT, {"name": name})
-    return None if value is None else int(value)
-
-
 def batch_problems(
     engine: Engine, items: Sequence[ScoreInput], ctx: ScoringContext, positions: Sequence[int]
 ) -> list[dict[str, Any]]:
@@ -534,7 +199,7 @@ def _same_versions(conn: Connection, prepared: PreparedBatch, ctx: ScoringContex
     """No switch since the batch was decided: the same versions, and the same last switch
     (a switch away and back again leaves the versions equal but moves the history on)."""
     for name, versions in prepared.versions.items():
-        if _last_switch(conn, name) != prepared.switches[name]:
+        if last_switch(conn, name) != prepared.switches[name]:
             return False
         try:
             plan = resolve_plan(conn, name, ctx)
@@ -577,117 +242,38 @@ def prepare_batch(
             )
         else:
             seen[req.request_id] = i
-    fingerprints = [fingerprint(r) for r in items]
+    fps = [fingerprint(r) for r in items]
     responses: list[str | None] = [None] * len(items)
-    ids = list(seen)
-    for start in range(0, len(ids), 1000):
-        chunk = ids[start : start + 1000]
-        for row in conn.execute(_EXISTING_MANY, {"ids": chunk}):
-            i = seen[row.request_id]
-            try:
-                responses[i] = _replay(row, items[i], fingerprints[i])
-            except Conflict as exc:
-                refuse(i, exc)
+    firsts = list(seen.values())
+    for i, stored in zip(
+        firsts, look_up(conn, [items[i] for i in firsts], [fps[i] for i in firsts]), strict=True
+    ):
+        if isinstance(stored, DecisionRecord):
+            responses[i] = stored.response_text()
+        elif stored is not None:
+            refuse(i, stored)  # and decided below, as a new request would be
+    new = [i for i in range(len(items)) if responses[i] is None]
 
-    new_by_policy: dict[str, list[int]] = {}
-    for i, req in enumerate(items):
-        if responses[i] is None:
-            new_by_policy.setdefault(req.policy, []).append(i)
-
-    plans: dict[str, Plan] = {}
+    pipeline = DecisionPipeline(conn, ctx)
     switches: dict[str, int | None] = {}
-    groups: dict[int, str] = {}
-    for name, members in new_by_policy.items():
-        try:
-            # The last event before the plan: a switch in between shows as a change.
-            switches[name] = _last_switch(conn, name)
-            plans[name] = plan = resolve_plan(conn, name, ctx)
-        except ServiceError as exc:
-            for i in members:
-                refuse(i, exc)
-            continue
-        rule_ok: dict[str, bool] = {}
-        for i in members:
-            req = items[i]
-            try:
-                check_score(plan.document, req.score)
-                g = plan.document.group_key(req.attributes)
-                if g not in rule_ok:
-                    rule_ok[g] = resolve_rule_key(plan.document, g) is not None
-                if not rule_ok[g]:
-                    rule_for(plan.document, g)  # raises the engine's UnknownGroup
-                groups[i] = g
-            except PolicyError as exc:
-                refuse(i, exc)
+    for name in dict.fromkeys(items[i].policy for i in new):
+        # The last event before the plan: a switch in between shows as a change.
+        switches[name] = last_switch(conn, name)
+        pipeline.plan(name)
+    records: list[DecisionRecord] = []
+    for i, outcome in zip(
+        new, pipeline.decide([items[i] for i in new], [fps[i] for i in new]), strict=True
+    ):
+        if isinstance(outcome, DecisionRecord):
+            records.append(outcome)
+            responses[i] = outcome.response_text()
+        else:
+            refuse(i, outcome)
     if errors:
         raise BatchRefused(errors, len(items))
-
-    issued_at = _now()
-    rows_out: list[dict[str, Any]] = []
-    for name, idx in new_by_policy.items():
-        new_rows, outs = _evaluate_policy_rows(
-            plans[name], idx, items, groups, fingerprints, issued_at, ctx
-        )
-        rows_out.extend(new_rows)
-        for i, out in zip(idx, outs, strict=True):
-            responses[i] = out
-    versions = {name: (plan.version, plan.shadow_version) for name, plan in plans.items()}
-    return PreparedBatch([r for r in responses if r is not None], rows_out, versions, switches)
-
-
-def _evaluate_policy_rows(
-    plan: Plan,
-    idx: list[int],
-    items: Sequence[ScoreInput],
-    groups: dict[int, str],
-    fingerprints: list[bytes],
-    issued_at: tuple[datetime, str],
-    ctx: ScoringContext,
-) -> tuple[list[dict[str, Any]], list[str]]:
-    reqs = [items[i] for i in idx]
-    scores = [float(r.score) for r in reqs]
-    case_ids = [r.case_id for r in reqs]
-    main = evaluate_batch(
-        plan.document, plan.version, scores, [groups[i] for i in idx], case_ids, ctx.secret
-    )
-    shadow_p: list[float | None] = [None] * len(idx)
-    shadow_a: list[bool | None] = [None] * len(idx)
-    if plan.shadow is not None and plan.shadow_version is not None:
-        ok: list[int] = []
-        sgroups: list[str] = []
-        for j, r in enumerate(reqs):
-            try:
-                g = plan.shadow.group_key(r.attributes)
-            except PolicyError:
-                continue
-            if (
-                resolve_rule_key(plan.shadow, g) is not None
-                and plan.shadow.score_range[0] <= r.score <= plan.shadow.score_range[1]
-            ):
-                ok.append(j)
-                sgroups.append(g)
-        if ok:
-            sb = evaluate_batch(
-                plan.shadow,
-                plan.shadow_version,
-                [scores[j] for j in ok],
-                sgroups,
-                [case_ids[j] for j in ok],
-                ctx.secret,
-            )
-            for k, j in enumerate(ok):
-                shadow_p[j] = float(sb.probability[k])
-                shadow_a[j] = bool(sb.action[k])
-    probs = main.probability.tolist()
-    draws = main.draw.tolist()
-    acts = main.action.tolist()
-    record_ids = new_record_ids(len(reqs))
-    rows: list[dict[str, Any]] = []
-    outs: list[str] = []
-    for j, r in enumerate(reqs):
-        decision = (main.group[j], main.rule[j], probs[j], draws[j], bool(acts[j]))
-        shadow = (shadow_p[j], shadow_a[j])
-        row, out = _row(plan, r, fingerprints[idx[j]], decision, shadow, issued_at, record_ids[j])
-        rows.append(row)
-        outs.append(out)
-    return rows, outs
+    versions = {
+        name: (plan.version, plan.shadow_version)
+        for name, plan in pipeline.plans.items()
+        if isinstance(plan, Plan)
+    }
+    return PreparedBatch([r for r in responses if r is not None], records, versions, switches)
