@@ -93,3 +93,71 @@ def set_password(request: Request, who: Who, form: PostedForm) -> Response:
     return _people_page(
         request, who, done=f"{person} can now sign in with a password, as key {key_name}."
     )
+
+
+# --- a signed-in person's own password ---------------------------------------------------------
+
+
+def _password_page(
+    request: Request,
+    who: ConsoleSession,
+    status_code: int = 200,
+    message: str | None = None,
+    done: str | None = None,
+) -> Response:
+    from service.store import console_passwords
+
+    with read_session(request) as session:
+        row = console_passwords.of_key(session, who.key_id)
+        person = None if row is None else row.person
+    return render(
+        request,
+        "password.html",
+        status_code,
+        who=who,
+        title="Your password",
+        person=person,
+        message=message,
+        done=done,
+    )
+
+
+@router.get("/password")
+def password_page(request: Request, who: Who) -> Response:
+    return _password_page(request, who)
+
+
+@router.post("/password")
+def change_password(request: Request, who: Who, form: PostedForm) -> Response:
+    """The signed-in person changes their own password: the old one is required (and counted
+    against the attempt limit like a sign-in), the new one follows the same rules as on the
+    People page. The person is the one bound to the signed-in key."""
+    from service.console import attempts, passwords
+    from service.store import console_passwords
+
+    check_csrf(form, who.csrf)
+    old = form.fields.get("old_password", "")[: passwords.MAX_LENGTH]
+    new = form.fields.get("password", "")
+    with read_session(request) as session:
+        row = console_passwords.of_key(session, who.key_id)
+        found = None if row is None else (row.person, row.hashed())
+    if found is None:
+        return _password_page(
+            request, who, 404, f"No password is set for key {who.key_name}: an admin sets one."
+        )
+    person, stored = found
+    weak = passwords.weakness(new)
+    if weak is not None:
+        return _password_page(request, who, 422, f"Refused: {weak}.")
+    if new != form.fields.get("password_again", ""):
+        return _password_page(request, who, 422, "Refused: the two new passwords differ.")
+    counted = attempts.count(request, person)  # 429 past the limit, before any scrypt work
+    if not passwords.verify(old, stored):
+        return _password_page(request, who, 401, "Refused: the old password is wrong.")
+    attempts.succeeded(request, counted)
+    with write_session(request) as session:
+        console_passwords.change_password(
+            session, person, passwords.hash_password(new), who.key_name, utcnow()
+        )
+        session.commit()
+    return _password_page(request, who, done=f"The password of {person} is changed.")

@@ -102,12 +102,13 @@ def sign_in(request: Request, form: PostedForm) -> Response:
 def sign_in_with_password(request: Request, form: PostedForm) -> Response:
     """Sign in as a person with the password an admin set: the session is the key's the
     person stands for (its role; actions attributed to its credential)."""
-    from service.console import passwords
+    from service.console import attempts, passwords
     from service.store import console_passwords
 
     check_csrf(form, request.cookies.get(SIGN_IN_COOKIE))
     person = form.get("person")[:64]
     password = form.fields.get("password", "")[: passwords.MAX_LENGTH]
+    counted = attempts.count(request, person)  # 429 past the limit, before any scrypt work
     with _read_session(request) as session:
         row = console_passwords.find(session, person) if person else None
         stored = None if row is None else row.hashed()
@@ -117,6 +118,7 @@ def sign_in_with_password(request: Request, form: PostedForm) -> Response:
         session.rollback()
     if found is None:
         return _sign_in_page(request, 401, "Unknown name, wrong password or a revoked key.")
+    attempts.succeeded(request, counted)
     return _start_session(request, *found)
 
 

@@ -9,4 +9,5 @@ from service.store import (  # noqa: F401
     console_sessions,
     log_verifications,
     models,
+    sign_in_limits,
 )
