@@ -178,3 +178,18 @@ def test_the_decision_page_shows_an_inclusion_proof_that_verifies(
     assert _rfc9162_root(leaf, index + 1, size, path) != root
     bent = [path[0][:-1] + bytes([path[0][-1] ^ 1]), *path[1:]]
     assert _rfc9162_root(leaf, index, size, bent) != root
+
+
+def test_the_openapi_document_names_the_roles_and_errors(client: TestClient) -> None:
+    paths = client.get("/openapi.json").json()["paths"]
+    for path, status in (
+        ("/v1/recommendations", {"401", "403", "422"}),
+        ("/v1/recommendations/{recommendation_id}", {"401", "403", "404", "422"}),
+    ):
+        op = paths[path]["get"]
+        assert "Roles: scoring, audit." in op["description"]
+        assert status <= set(op["responses"])
+    limit = next(
+        p for p in paths["/v1/recommendations"]["get"]["parameters"] if p["name"] == "limit"
+    )
+    assert (limit["schema"]["minimum"], limit["schema"]["maximum"]) == (1, 50)

@@ -12,7 +12,7 @@ from datetime import timedelta
 
 import pytest
 from fastapi.testclient import TestClient
-from sqlalchemy import Engine, update
+from sqlalchemy import Engine, select, update
 from sqlalchemy.orm import Session, sessionmaker
 
 from service.app import create_app
@@ -90,6 +90,12 @@ def test_429_after_exactly_the_limit_per_name_and_per_address(
         session.execute(update(SignInFailureRow).values(window_start=old))
         session.commit()
     assert _attempt(x, "bo", PASSWORD)[0] == 303
+    with session_factory() as session:  # past windows were purged; this success counts 0
+        rows = session.scalars(select(SignInFailureRow)).all()
+        assert sorted((r.scope, r.subject, r.failures) for r in rows) == [
+            ("address", "192.0.2.1", 0),
+            ("name", "bo", 0),
+        ]
 
 
 def test_a_success_takes_back_only_its_own_count(

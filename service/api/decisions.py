@@ -112,8 +112,8 @@ class DecisionResponse(BaseModel):
 def get_decision(
     recommendation_id: RecommendationIdPath, _key: ReaderKey, session: ReadSession
 ) -> DecisionResponse:
-    """404 ``unknown_recommendation`` when no recommendation has this id (a text that is not
-    a UUID names none)."""
+    """Roles: scoring, audit. 404 ``unknown_recommendation`` when no recommendation has this
+    id (a text that is not a UUID names none)."""
     return DecisionResponse.of(find_decision(session, recommendation_id))
 
 
@@ -153,7 +153,9 @@ def decisions_for_case(
         Query(ge=1, le=2**62, description="only record ids below this (the previous next_before)"),
     ] = None,
 ) -> CaseDecisions:
-    """A case may have several decisions (one per scoring request); none is an empty list."""
+    """Roles: scoring, audit. A case may have several decisions (one per scoring request),
+    each as ``GET /v1/recommendations/{id}`` gives it; none is an empty list. Pages of at
+    most 50: pass ``next_before`` as ``before`` for the next one."""
     page = decisions_of_case(session, case_id, policy, limit, before)
     return CaseDecisions(
         decisions=[DecisionResponse.of(d) for d in page.decisions], next_before=page.next_before

@@ -16,7 +16,7 @@ import math
 from collections.abc import Sequence
 from datetime import datetime, timedelta
 
-from sqlalchemy import Integer, String, case, delete, select, update
+from sqlalchemy import Integer, String, case, delete, select, tuple_, update
 from sqlalchemy.dialects.postgresql import insert as postgresql_insert
 from sqlalchemy.dialects.sqlite import insert as sqlite_insert
 from sqlalchemy.orm import Mapped, Session, mapped_column
@@ -48,8 +48,20 @@ def count_attempt(
     passed). Returns None while every subject has at most ``limit`` attempts in its window,
     else the seconds until the latest such window ends (the attempt must be refused)."""
     cutoff = now - window
-    session.execute(delete(SignInFailureRow).where(SignInFailureRow.window_start <= cutoff))
     dialect = session.connection().dialect.name
+    # Past windows go; on PostgreSQL only rows no other attempt holds (SKIP LOCKED), so the
+    # purge never waits, and the upserts below take their rows in one order (name, then
+    # address, as ``subjects`` gives them): two attempts cannot deadlock.
+    past = select(SignInFailureRow.scope, SignInFailureRow.subject).where(
+        SignInFailureRow.window_start <= cutoff
+    )
+    if dialect == "postgresql":
+        past = past.with_for_update(skip_locked=True)
+    session.execute(
+        delete(SignInFailureRow).where(
+            tuple_(SignInFailureRow.scope, SignInFailureRow.subject).in_(past)
+        )
+    )
     insert = postgresql_insert if dialect == "postgresql" else sqlite_insert
     expired = SignInFailureRow.window_start <= cutoff
     over, wait = False, 0.0
