@@ -122,9 +122,10 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     ):
         app.include_router(router, responses=unavailable)
     # The console for admins and auditors (server-rendered pages under /console).
-    from service.console.routes import router as console_router
+    from service.console import log_pages, lookup_pages, people_pages, routes
 
-    app.include_router(console_router)
+    for console_pages in (routes, people_pages, lookup_pages, log_pages):
+        app.include_router(console_pages.router)
     app.include_router(docs.docs_router())
     app.include_router(metrics_router(settings.metrics_access), include_in_schema=False)
     app.state.request_metrics = RequestMetrics()

@@ -66,6 +66,17 @@ class Unprocessable(ServiceError):
     code = "invalid_input"
 
 
+class TooManyRequests(ServiceError):
+    """429: too many attempts; answered with ``Retry-After: retry_after`` seconds."""
+
+    status_code = 429
+    code = "too_many_attempts"
+
+    def __init__(self, message: str, retry_after: int) -> None:
+        super().__init__(message)
+        self.retry_after = retry_after
+
+
 class ServiceUnavailable(ServiceError):
     """503: try again later; answered with ``Retry-After: retry_after`` seconds."""
 

@@ -136,6 +136,19 @@ class Settings(BaseSettings):
         le=7 * 24,
         description="a console session ends this many hours after sign-in, however active",
     )
+    console_sign_in_limit: int = Field(
+        default=10,
+        ge=1,
+        le=10_000,
+        description="failed password sign-ins allowed per name and per client address in a "
+        "window; the next attempt answers 429 until the window ends",
+    )
+    console_sign_in_window_minutes: float = Field(
+        default=15.0,
+        gt=0,
+        le=24 * 60,
+        description="the fixed window of the password sign-in limit, from its first failure",
+    )
     console_secure_cookie: bool = Field(
         default=False,
         description="always mark the console's cookies Secure (set it behind a TLS-terminating "

@@ -1,14 +1,22 @@
 """The console's log page (audit role), on SQLite and PostgreSQL: the latest signed head as
-the API publishes it, and a verification run on demand that reports what the API reports."""
+the API publishes it, and the log's verification as a background run whose result is kept
+(table ``log_verifications``) and reports what the API reports; runs of
+``evenhand log verify`` are kept and shown too."""
 
 from __future__ import annotations
 
+import time
 from collections.abc import Callable
 
+import pytest
 from fastapi.testclient import TestClient
-from sqlalchemy import Engine
+from sqlalchemy import Engine, select
 from sqlalchemy.orm import Session, sessionmaker
 
+from service.cli.main import main
+from service.store import log_verifications
+from service.store.log_verifications import LogVerificationRow
+from service.store.models import utcnow
 from tests.helpers import bearer, make_request
 from tests.log_helpers import seal, tamper
 from tests.test_console import csrf_of, sign_in
@@ -24,7 +32,19 @@ def _decide(client: TestClient, tokens: dict[str, str], make_key: Callable[..., 
         assert r.status_code == 201, r.text
 
 
-def test_head_and_verification_match_the_api(
+def _finished(client: TestClient, timeout: float = 60.0) -> str:
+    """The log page once no verification is running."""
+    deadline = time.monotonic() + timeout
+    while True:
+        page = client.get("/console/log")
+        assert page.status_code == 200
+        if "<strong>Running</strong>" not in page.text:
+            return page.text
+        assert time.monotonic() < deadline, "the verification did not finish"
+        time.sleep(0.05)
+
+
+def test_head_and_background_verification_match_the_api(
     client: TestClient,
     tokens: dict[str, str],
     make_key: Callable[..., str],
@@ -33,7 +53,8 @@ def test_head_and_verification_match_the_api(
 ) -> None:
     _decide(client, tokens, make_key)
     csrf = sign_in(client, tokens["audit"])
-    assert "Nothing has been sealed yet" in client.get("/console/log").text
+    first = client.get("/console/log").text
+    assert "Nothing has been sealed yet" in first and "has not been verified yet" in first
     seal(session_factory)
     audit = bearer(tokens["audit"])
     head = client.get("/v1/log/heads", headers=audit).json()[-1]
@@ -42,21 +63,73 @@ def test_head_and_verification_match_the_api(
     for value in (head["head"]["root"], head["head"]["key_id"], head["signature"]):
         assert value in page.text
     assert f"{head['head']['tree_size']:,}" in page.text
-    # Without the form's token: refused, nothing run.
+    # Without the form's token: refused, nothing started.
     refused = client.post("/console/log/verify", data={})
-    assert refused.status_code == 403 and "Verification" not in refused.text
+    assert refused.status_code == 403
+    with session_factory() as session:
+        assert session.scalars(select(LogVerificationRow)).all() == []
     api = client.get("/v1/log/verify", headers=audit).json()
-    ran = client.post("/console/log/verify", data={"csrf": csrf})
-    assert ran.status_code == 200
-    assert api["ok"] is True and "<strong>Verified</strong>" in ran.text
-    assert f'Records checked</th><td class="num">{api["records_checked"]}<' in ran.text
+    started = client.post("/console/log/verify", data={"csrf": csrf}, follow_redirects=False)
+    assert started.status_code == 303 and started.headers["location"] == "/console/log"
+    done = _finished(client)
+    assert api["ok"] is True and "<strong>Verified</strong>" in done
+    assert f'Records checked</th><td class="num">{api["records_checked"]}<' in done
+    assert f'Seals checked</th><td class="num">{api["seals_checked"]}<' in done
+    assert "by console: auditor" in done
+    with session_factory() as session:
+        (row,) = session.scalars(select(LogVerificationRow)).all()
+        assert row.ok is True and row.records_checked == api["records_checked"]
+        assert row.finished_at is not None and row.started_by == "console: auditor"
     # A decision edited behind the service's back: both report the same problem.
     tamper(engine, "UPDATE recommendations SET action_label = 'edited' WHERE id = 1")
     api = client.get("/v1/log/verify", headers=audit).json()
     assert api["ok"] is False
-    ran = client.post("/console/log/verify", data={"csrf": csrf_of(ran.text)})
-    assert "Problem found" in ran.text
-    assert f"{api['problem']['kind']} {api['problem']['id']}" in ran.text
+    client.post("/console/log/verify", data={"csrf": csrf_of(done)})
+    done = _finished(client)
+    assert "Problem found" in done
+    assert f"{api['problem']['kind']} {api['problem']['id']}: {api['problem']['reason']}" in done
+
+
+def test_the_page_shows_a_run_in_progress_and_starts_no_second(
+    client: TestClient, tokens: dict[str, str], session_factory: sessionmaker[Session]
+) -> None:
+    csrf = sign_in(client, tokens["audit"])
+    with session_factory() as session:  # a run in progress (another worker's, say)
+        run_id = log_verifications.start(session, "console: someone", utcnow())
+        session.commit()
+    page = client.get("/console/log").text
+    assert "<strong>Running</strong>" in page and "console: someone" in page
+    assert 'action="/console/log/verify"' not in page
+    again = client.post("/console/log/verify", data={"csrf": csrf})
+    assert "already running" in again.text
+    with session_factory() as session:
+        assert len(session.scalars(select(LogVerificationRow)).all()) == 1
+        log_verifications.fail(session, run_id, "stopped", utcnow())
+        session.commit()
+    page = client.get("/console/log").text
+    assert "Could not finish" in page and "stopped" in page
+    assert 'action="/console/log/verify"' in page
+
+
+def test_a_cli_run_is_kept_and_shown(
+    client: TestClient,
+    tokens: dict[str, str],
+    make_key: Callable[..., str],
+    session_factory: sessionmaker[Session],
+    database_url: str,
+    monkeypatch: pytest.MonkeyPatch,
+    capsys: pytest.CaptureFixture[str],
+) -> None:
+    _decide(client, tokens, make_key)
+    seal(session_factory)
+    monkeypatch.setenv("EVENHAND_DATABASE_URL", database_url)
+    assert main(["log", "verify", "--json"]) == 0
+    capsys.readouterr()
+    api = client.get("/v1/log/verify", headers=bearer(tokens["audit"])).json()
+    sign_in(client, tokens["audit"])
+    page = client.get("/console/log").text
+    assert "by evenhand log verify" in page and "<strong>Verified</strong>" in page
+    assert f'Records checked</th><td class="num">{api["records_checked"]}<' in page
 
 
 def test_the_log_page_is_for_the_audit_role(client: TestClient, tokens: dict[str, str]) -> None:

@@ -1,21 +1,30 @@
-"""Decision look-up (audit role): one stored recommendation by its id, with its outcome and
-final decision."""
+"""Decision look-up (scoring and audit roles): one stored recommendation by its id, or the
+decisions of one case, each with its outcome and final decision."""
 
 from __future__ import annotations
 
-from typing import Any
+from typing import Annotated, Any
 
-from fastapi import APIRouter
+from fastapi import APIRouter, Depends, Query
 from pydantic import BaseModel, Field
 
-from service.api.deps import AuditKey, ReadSession
+from service.api.deps import Caller, ReadSession, require_role
 from service.api.errors import error_responses
-from service.api.fields import RecommendationIdPath
+from service.api.fields import MAX_TEXT_CHARS, SLUG_PATTERN, RecommendationIdPath
 from service.api.recommendation_schemas import RecommendationResponse
 from service.log.records import format_timestamp
-from service.store.decision_lookup import StoredDecision, find_decision
+from service.policy.attributes import TEXT_PATTERN
+from service.store.decision_lookup import (
+    MAX_CASE_PAGE,
+    StoredDecision,
+    decisions_of_case,
+    find_decision,
+)
 
 router = APIRouter(prefix="/v1/recommendations", tags=["recommendations"])
+
+ReaderKey = Annotated[Caller, Depends(require_role("scoring", "audit"))]
+"""Who may read decisions back: the scoring role (its own systems' decisions) and auditors."""
 
 
 class ShadowAnswer(BaseModel):
@@ -101,8 +110,53 @@ class DecisionResponse(BaseModel):
     responses=error_responses(401, 403, 404, 422),
 )
 def get_decision(
-    recommendation_id: RecommendationIdPath, _key: AuditKey, session: ReadSession
+    recommendation_id: RecommendationIdPath, _key: ReaderKey, session: ReadSession
 ) -> DecisionResponse:
-    """404 ``unknown_recommendation`` when no recommendation has this id (a text that is not
-    a UUID names none)."""
+    """Roles: scoring, audit. 404 ``unknown_recommendation`` when no recommendation has this
+    id (a text that is not a UUID names none)."""
     return DecisionResponse.of(find_decision(session, recommendation_id))
+
+
+class CaseDecisions(BaseModel):
+    decisions: list[DecisionResponse] = Field(
+        description="newest first (by record id, the order they were recorded)"
+    )
+    next_before: int | None = Field(
+        description="pass as before= for the next page; null when there is none"
+    )
+
+
+@router.get(
+    "",
+    summary="The decisions recorded for one case_id, newest first, a page at a time",
+    response_model=CaseDecisions,
+    responses=error_responses(401, 403, 422),
+)
+def decisions_for_case(
+    _key: ReaderKey,
+    session: ReadSession,
+    case_id: Annotated[
+        str,
+        Query(
+            min_length=1,
+            max_length=MAX_TEXT_CHARS,
+            pattern=TEXT_PATTERN,
+            description="the case_id sent when scoring",
+        ),
+    ],
+    policy: Annotated[
+        str | None, Query(pattern=SLUG_PATTERN, description="only this policy's decisions")
+    ] = None,
+    limit: Annotated[int, Query(ge=1, le=MAX_CASE_PAGE, description="decisions per page")] = 20,
+    before: Annotated[
+        int | None,
+        Query(ge=1, le=2**62, description="only record ids below this (the previous next_before)"),
+    ] = None,
+) -> CaseDecisions:
+    """Roles: scoring, audit. A case may have several decisions (one per scoring request),
+    each as ``GET /v1/recommendations/{id}`` gives it; none is an empty list. Pages of at
+    most 50: pass ``next_before`` as ``before`` for the next one."""
+    page = decisions_of_case(session, case_id, policy, limit, before)
+    return CaseDecisions(
+        decisions=[DecisionResponse.of(d) for d in page.decisions], next_before=page.next_before
+    )

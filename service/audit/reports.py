@@ -2,18 +2,32 @@
 
 from __future__ import annotations
 
-from typing import Any, Literal
+from typing import Any, Literal, get_args
 
 from pydantic import ValidationError
 from sqlalchemy import select
 from sqlalchemy.orm import Session
 
 from service.audit.month import Month
-from service.audit.snapshot_model import SNAPSHOT_FORMAT, Snapshot
+from service.audit.snapshot_model import SNAPSHOT_FORMAT, Snapshot, StatusName
 from service.errors import Conflict, NotFound
 from service.store.audit_models import AuditSnapshot
 
 View = Literal["published", "internal"]
+
+
+STATUS_ORDER: tuple[str, ...] = get_args(StatusName)
+
+
+def status_counts(content: dict[str, Any]) -> dict[str, int]:
+    """How many of the snapshot's checks (every version's) have each status, in the order
+    of ``StatusName``; statuses no check has are left out."""
+    counts = dict.fromkeys(STATUS_ORDER, 0)
+    for version in content.get("versions", []):
+        for check in version.get("checks", []):
+            status = str(check.get("status"))
+            counts[status] = counts.get(status, 0) + 1
+    return {status: n for status, n in counts.items() if n}
 
 
 def snapshot_summary(row: AuditSnapshot) -> dict[str, Any]:
@@ -32,6 +46,7 @@ def snapshot_summary(row: AuditSnapshot) -> dict[str, Any]:
         "maturity": maturity.get("state"),
         "alerts": len(alerts),
         "breaches": sum(1 for a in alerts if a.get("level") == "breach"),
+        "status_counts": status_counts(content),
         "code_version": row.code_version,
     }
 

@@ -20,12 +20,13 @@ from service.cli.progress import StepBar
 from service.log.heads import new_signing_key
 from service.log.key_errors import SigningKeyError
 from service.settings import Settings, SigningKeyUnavailable
-from service.store import log_proofs, retention
+from service.store import log_proofs, log_verifications, retention
 from service.store.audit_models import Seal
 from service.store.db import begin_read_only, create_db_engine, create_session_factory
 from service.store.log_sources import KIND_ORDER
 from service.store.log_upkeep import keep_log
-from service.store.log_verify import VerifyResult, verify_log
+from service.store.log_verify import VerifyResult
+from service.store.models import utcnow
 from service.store.sealing import signed_head
 from service.store.signing import signer_from_settings, trusted_public_keys
 
@@ -202,9 +203,15 @@ def _verify(args: argparse.Namespace) -> int:
             "no trusted public key: set EVENHAND_SIGNING_KEY_FILE (the service's key) or "
             "EVENHAND_TRUSTED_PUBLIC_KEYS, or pass --trust-database-keys"
         )
+    factory = _factory(settings)
+    # Kept in log_verifications, so the console shows this run as the last result.
+    with factory() as session:
+        run_id = log_verifications.start(session, "evenhand log verify", utcnow())
+        session.commit()
     with StepBar("verifying") as bar:
-        result = verify_log(
-            _factory(settings),
+        result = log_verifications.run_and_keep(
+            factory,
+            run_id,
             trusted,
             trust_database_keys=args.trust_database_keys,
             heads=heads,

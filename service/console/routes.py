@@ -9,9 +9,12 @@ from importlib.resources import files
 from typing import Annotated, Any
 
 from fastapi import APIRouter, Depends, Path, Query, Request, Response
-from sqlalchemy.orm import Session, sessionmaker
 
 from service.console import actions, drafts, report_view
+from service.console.deps import PostedForm, Who
+from service.console.deps import read_session as _read_session
+from service.console.deps import require_audit as _require_audit
+from service.console.deps import write_session as _write_session
 from service.console.report_view import history_tables
 from service.console.rule_view import compare_chart, describe_rule, rule_chart
 from service.console.sessions import ConsoleSession
@@ -24,43 +27,25 @@ from service.console.web import (
     Form,
     check_csrf,
     clear_cookie,
-    current_session,
-    read_form,
     redirect,
     render,
     require_admin,
     sessions_of,
     set_cookie,
 )
-from service.errors import Forbidden, NotFound, ServiceError, Unprocessable
+from service.errors import NotFound, ServiceError, Unprocessable
 from service.policy.document import DEFAULT_RULE_KEY, PolicyDocument, content_hash
 from service.store import keys, lifecycle
 from service.store import policies as repo
-from service.store.db import begin_read_only
-from service.store.models import utcnow
 
 router = APIRouter(prefix=PREFIX, route_class=ConsoleRoute, include_in_schema=False)
 
-Who = Annotated[ConsoleSession, Depends(current_session)]
-PostedForm = Annotated[Form, Depends(read_form)]
 Name = Annotated[str, Path(pattern=r"^[a-z0-9][a-z0-9._-]{0,63}$")]
 Version = Annotated[int, Path(ge=1, le=2_147_483_647)]
 Month = Annotated[str, Path(pattern=r"^\d{4}-(0[1-9]|1[0-2])$")]
 
 _STATIC = files("service.console").joinpath("static")
 _STATIC_TYPES = {"console.css": "text/css", "icon.svg": "image/svg+xml"}
-
-
-def _read_session(request: Request) -> Session:
-    factory: sessionmaker[Session] = request.app.state.session_factory
-    session = factory()
-    begin_read_only(session)
-    return session
-
-
-def _write_session(request: Request) -> Session:
-    factory: sessionmaker[Session] = request.app.state.session_factory
-    return factory()
 
 
 # --- sign-in, sign-out, stylesheet -------------------------------------------------------
@@ -117,12 +102,13 @@ def sign_in(request: Request, form: PostedForm) -> Response:
 def sign_in_with_password(request: Request, form: PostedForm) -> Response:
     """Sign in as a person with the password an admin set: the session is the key's the
     person stands for (its role; actions attributed to its credential)."""
-    from service.console import passwords
+    from service.console import attempts, passwords
     from service.store import console_passwords
 
     check_csrf(form, request.cookies.get(SIGN_IN_COOKIE))
     person = form.get("person")[:64]
     password = form.fields.get("password", "")[: passwords.MAX_LENGTH]
+    counted = attempts.count(request, person)  # 429 past the limit, before any scrypt work
     with _read_session(request) as session:
         row = console_passwords.find(session, person) if person else None
         stored = None if row is None else row.hashed()
@@ -132,6 +118,7 @@ def sign_in_with_password(request: Request, form: PostedForm) -> Response:
         session.rollback()
     if found is None:
         return _sign_in_page(request, 401, "Unknown name, wrong password or a revoked key.")
+    attempts.succeeded(request, counted)
     return _start_session(request, *found)
 
 
@@ -157,79 +144,6 @@ def sign_out(request: Request, who: Who, form: PostedForm) -> Response:
     response = redirect(f"{PREFIX}/sign-in")
     clear_cookie(request, response, SESSION_COOKIE)
     return response
-
-
-# --- people and their passwords (admin) -----------------------------------------------------
-
-
-def _people_page(
-    request: Request,
-    who: ConsoleSession,
-    status_code: int = 200,
-    message: str | None = None,
-    done: str | None = None,
-) -> Response:
-    from service.store import console_passwords
-
-    with _read_session(request) as session:
-        people = [
-            {"person": row.person, "key": key_name, "set_by": row.set_by, "set_at": row.set_at}
-            for row, key_name in console_passwords.people(session)
-        ]
-    return render(
-        request,
-        "people.html",
-        status_code,
-        who=who,
-        title="People",
-        people=people,
-        message=message,
-        done=done,
-    )
-
-
-@router.get("/people")
-def people_page(request: Request, who: Who) -> Response:
-    require_admin(who)
-    return _people_page(request, who)
-
-
-@router.post("/people")
-def set_password(request: Request, who: Who, form: PostedForm) -> Response:
-    """Bind a person to an API key (whose token the admin types in, so no one can stand for
-    a credential they do not hold) with a password (scrypt, service/console/passwords.py)."""
-    from service.console import passwords
-    from service.store import console_passwords
-
-    check_csrf(form, who.csrf)
-    require_admin(who)
-    person = form.get("person")
-    password = form.fields.get("password", "")
-    if not NAME_PATTERN.match(person):
-        return _people_page(
-            request, who, 422, "A name is 1 to 64 lower-case letters, digits, '.', '_' or '-'."
-        )
-    weak = passwords.weakness(password)
-    if weak is not None:
-        return _people_page(request, who, 422, f"Refused: {weak}.")
-    if password != form.fields.get("password_again", ""):
-        return _people_page(request, who, 422, "Refused: the two passwords differ.")
-    token = form.get("api_key")
-    with _write_session(request) as session:
-        key = keys.authenticate(session, token) if keys.well_formed(token) else None
-        if key is None or key.role not in CONSOLE_ROLES:
-            session.rollback()
-            return _people_page(
-                request, who, 422, "Refused: the API key is not a live admin or audit key."
-            )
-        key_name = key.name
-        console_passwords.set_password(
-            session, person, key, passwords.hash_password(password), who.key_name, utcnow()
-        )
-        session.commit()
-    return _people_page(
-        request, who, done=f"{person} can now sign in with a password, as key {key_name}."
-    )
 
 
 # --- policies ------------------------------------------------------------------------------
@@ -501,11 +415,6 @@ def draft_submit(request: Request, who: Who, form: DraftForm) -> Response:
 # --- reports (audit) -----------------------------------------------------------------------
 
 
-def _require_audit(who: ConsoleSession) -> None:
-    if who.role != "audit":
-        raise Forbidden(f"a {who.role!r} key may not read reports: they need an audit key")
-
-
 @router.get("/reports")
 def report_policies(request: Request, who: Who) -> Response:
     _require_audit(who)
@@ -603,34 +512,6 @@ def report_file(
     return actions.report_response(content, name, month, kind, REPORT_CSP)
 
 
-# --- decision look-up (audit) ----------------------------------------------------------------
-
-
-@router.get("/decisions")
-def decision_page(request: Request, who: Who, id: str = "") -> Response:
-    from service.store.decision_lookup import find_decision
-
-    _require_audit(who)
-    wanted = id.strip()[:128]
-    decision, message, status_code = None, None, 200
-    if wanted:
-        with _read_session(request) as session:
-            try:
-                decision = find_decision(session, wanted)
-            except NotFound as exc:
-                message, status_code = exc.message, 404
-    return render(
-        request,
-        "decision.html",
-        status_code,
-        who=who,
-        title="Decision look-up",
-        wanted=wanted,
-        decision=decision,
-        message=message,
-    )
-
-
 BUNDLE_FILE = "bundle.ehb"
 
 
@@ -641,45 +522,3 @@ def _bundle(request: Request, name: str, month: str) -> Response:
 
     with _read_session(request) as session:
         return bundle_response(session, name, AuditMonth.parse(month))
-
-
-# --- the log (audit) -----------------------------------------------------------------------
-
-
-def _latest_head(request: Request) -> dict[str, Any] | None:
-    from sqlalchemy import select
-
-    from service.store.audit_models import Seal
-    from service.store.sealing import signed_head
-
-    with _read_session(request) as session:
-        seal = session.scalars(select(Seal).order_by(Seal.id.desc()).limit(1)).first()
-        return None if seal is None else signed_head(seal)
-
-
-@router.get("/log")
-def log_page(request: Request, who: Who) -> Response:
-    _require_audit(who)
-    return render(
-        request, "log.html", who=who, title="The log", head=_latest_head(request), result=None
-    )
-
-
-@router.post("/log/verify")
-def log_verify(request: Request, who: Who, form: PostedForm) -> Response:
-    """Recompute the whole log: the same function as ``GET /v1/log/verify``."""
-    from service.store.log_verify import verify_log
-    from service.store.signing import trusted_public_keys
-
-    check_csrf(form, who.csrf)
-    _require_audit(who)
-    settings = request.app.state.settings
-    result = verify_log(request.app.state.session_factory, trusted_public_keys(settings))
-    return render(
-        request,
-        "log.html",
-        who=who,
-        title="The log",
-        head=_latest_head(request),
-        result=result,
-    )

@@ -19,7 +19,7 @@ from fastapi.routing import APIRoute
 from jinja2 import Environment, PackageLoader, StrictUndefined, select_autoescape
 
 from service.console.sessions import ConsoleSession, SessionStore, same_token
-from service.errors import Forbidden, ServiceError, Unprocessable
+from service.errors import Forbidden, ServiceError, TooManyRequests, Unprocessable
 from service.settings import Settings
 
 PREFIX = "/console"
@@ -189,6 +189,8 @@ class ConsoleRoute(APIRoute):
                 response = redirect(f"{PREFIX}/sign-in")
             except ServiceError as exc:
                 response = _error_page(request, exc)
+                if isinstance(exc, TooManyRequests):
+                    response.headers["Retry-After"] = str(exc.retry_after)
             except RequestValidationError:
                 response = _error_page(request, ServiceError("no such page", code="not_found"))
                 response.status_code = 404

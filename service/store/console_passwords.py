@@ -76,3 +76,22 @@ def people(session: Session) -> list[tuple[ConsolePasswordRow, str]]:
         .order_by(ConsolePasswordRow.person)
     )
     return [(row, name) for row, name in rows]
+
+
+def of_key(session: Session, key_id: int) -> ConsolePasswordRow | None:
+    """The person bound to this key, if any (one per key)."""
+    return session.scalars(
+        select(ConsolePasswordRow).where(ConsolePasswordRow.key_id == key_id)
+    ).first()
+
+
+def change_password(
+    session: Session, person: str, hashed: Hashed, set_by: str, at: datetime
+) -> None:
+    """Replace the person's password hash (salt and parameters with it) in place."""
+    row = session.get(ConsolePasswordRow, person, with_for_update=True)
+    if row is None:
+        return
+    row.salt, row.hash, row.n, row.r, row.p = hashed.salt, hashed.hash, hashed.n, hashed.r, hashed.p
+    row.set_by, row.set_at = set_by, at
+    session.flush()

@@ -22,6 +22,7 @@ from service.log.records import DecisionRecord
 from service.store.audit_models import FinalDecision, OutcomeRecord
 from service.store.feedback import canonical_recommendation_id
 from service.store.models import Recommendation
+from service.store.policies import policy_names
 
 
 @dataclass(frozen=True)
@@ -73,6 +74,49 @@ def find_decision(session: Session, recommendation_id: str) -> StoredDecision:
         raise NotFound(
             f"no recommendation has the id {recommendation_id!r}", code="unknown_recommendation"
         )
+    return _stored(session, row)
+
+
+MAX_CASE_PAGE = 50
+"""The most decisions one page of a case look-up holds."""
+
+
+@dataclass(frozen=True)
+class CasePage:
+    decisions: list[StoredDecision]
+    """Newest first (by record id: the order they were recorded)."""
+    next_before: int | None
+    """The record id to ask ``before`` for the next page; None when this is the last."""
+
+
+def decisions_of_case(
+    session: Session,
+    case_id: str,
+    policy: str | None = None,
+    limit: int = 20,
+    before: int | None = None,
+) -> CasePage:
+    """The decisions recorded for ``case_id`` (of ``policy``, or of any policy), newest
+    first, at most ``limit`` (1 to ``MAX_CASE_PAGE``), with record ids below ``before``.
+
+    Served by ``ix_recommendations_policy_case_id``: the policy names are listed first and
+    the index is searched once per name (a case id alone is not a prefix of any index, and
+    a new index would cost every decision's insert). The matches of one case are sorted."""
+    limit = max(1, min(limit, MAX_CASE_PAGE))
+    names = [policy] if policy is not None else list(policy_names(session))
+    if not names:
+        return CasePage([], None)
+    query = select(Recommendation).where(
+        Recommendation.policy.in_(names), Recommendation.case_id == case_id
+    )
+    if before is not None:
+        query = query.where(Recommendation.id < before)
+    rows = session.scalars(query.order_by(Recommendation.id.desc()).limit(limit + 1)).all()
+    page = [_stored(session, row) for row in rows[:limit]]
+    return CasePage(page, page[-1].row_id if len(rows) > limit else None)
+
+
+def _stored(session: Session, row: Recommendation) -> StoredDecision:
     return StoredDecision(
         row_id=row.id,
         response=json.loads(DecisionRecord.from_stored(row).response_text()),
