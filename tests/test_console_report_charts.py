@@ -182,3 +182,25 @@ def test_the_cross_month_charts_match_the_api_history(
         assert any(candidates), chart.title
         drawn += len(chart.points)
     assert drawn > 0
+
+
+def test_the_value_axis_holds_every_interval_between_exact_ticks() -> None:
+    from service.console.interval_chart import Figure, interval_chart, value_range
+
+    # Worked by hand: -0.269..0.069 needs steps of 0.1 from -0.3 to 0.1 (4 intervals).
+    assert value_range([-0.269, 0.0], [0.069, 0.0]) == (-0.3, 0.1, 0.1)
+    assert value_range([0.0], [1.0]) == (0.0, 1.0, 0.25)
+    chart = interval_chart(
+        "t",
+        [Figure("a", 1.7, 1.2, 2.4, "a"), Figure("b", None, None, None, "b", "withheld")],
+        0.0,
+        1.0,
+        reference=(0.8, "four-fifths"),
+    )
+    values = [float(t.label) for t in chart.y_ticks]
+    assert values[0] <= 0.0 and values[-1] >= 2.4
+    assert [p.key for p in chart.points] == ["a"] and chart.notes[0].text == "withheld"
+    drawn = Drawn("t", ticks=[(t.position, float(t.label)) for t in chart.y_ticks])
+    point = chart.points[0]
+    assert _close(drawn.value(point.y), 1.7) and _close(drawn.value(point.y_high), 2.4)
+    assert chart.reference is not None and _close(drawn.value(chart.reference.position), 0.8)

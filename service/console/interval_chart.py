@@ -16,15 +16,16 @@ import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 
-WIDTH = 360.0
-HEIGHT = 200.0
+WIDTH = 360.0  # at least; wider when many categories need room (MIN_SLOT each)
+HEIGHT = 210.0
 LEFT = 48.0
 RIGHT = 12.0
 TOP = 14.0
 BOTTOM = 40.0
 _STEPS = (0.05, 0.1, 0.2, 0.25, 0.5, 1.0, 2.0, 5.0)
 MAX_TICK_INTERVALS = 5
-MAX_LABELS = 6
+MAX_LABELS = 12
+MIN_SLOT = 64.0
 
 
 def _px(value: float) -> float:
@@ -39,6 +40,7 @@ def _label(value: float) -> str:
 class Tick:
     position: float  # pixels along the axis
     label: str
+    row: int = 0  # category labels alternate between two rows so long names do not collide
 
 
 @dataclass(frozen=True, slots=True)
@@ -100,7 +102,7 @@ def value_range(lows: Sequence[float], highs: Sequence[float]) -> tuple[float, f
         first = math.floor(lo / step + 1e-9) * step
         last = math.ceil(hi / step - 1e-9) * step
         if (last - first) / step <= MAX_TICK_INTERVALS + 1e-9:
-            return first, last, step
+            return round(first, 10), round(last, 10), step
     step = 10.0 ** math.ceil(math.log10((hi - lo) / MAX_TICK_INTERVALS))
     return math.floor(lo / step) * step, math.ceil(hi / step) * step, step
 
@@ -121,8 +123,9 @@ def interval_chart(
         lows.append(reference[0])
         highs.append(reference[0])
     first, last, step = value_range(lows, highs)
+    width = max(WIDTH, LEFT + RIGHT + MIN_SLOT * min(len(figures), MAX_LABELS))
     top, bottom = TOP, HEIGHT - BOTTOM
-    left, right = LEFT, WIDTH - RIGHT
+    left, right = LEFT, width - RIGHT
 
     def y_of(value: float) -> float:
         clamped = min(max(value, first), last)
@@ -132,11 +135,13 @@ def interval_chart(
     y_ticks = [Tick(y_of(first + i * step), _label(first + i * step)) for i in range(count + 1)]
     slot = (right - left) / max(len(figures), 1)
     every = max(1, math.ceil(len(figures) / MAX_LABELS))  # labels that fit side by side
-    x_labels, points, notes = [], [], []
+    x_labels: list[Tick] = []
+    points: list[Point] = []
+    notes: list[Note] = []
     for i, f in enumerate(figures):
         x = _px(left + (i + 0.5) * slot)
         if i % every == 0:
-            x_labels.append(Tick(x, f.key))
+            x_labels.append(Tick(x, f.key, len(x_labels) % 2))
         if f.value is None or f.low is None or f.high is None:
             notes.append(Note(x, _px((top + bottom) / 2), f.note))
             continue
@@ -144,7 +149,7 @@ def interval_chart(
     line = " ".join(f"{p.x},{p.y}" for p in points) if join and len(points) > 1 else ""
     return IntervalChart(
         title=title,
-        width=WIDTH,
+        width=width,
         height=HEIGHT,
         left=left,
         right=right,
