@@ -189,7 +189,7 @@ def test_the_value_axis_holds_every_interval_between_exact_ticks() -> None:
 
     # Worked by hand: -0.269..0.069 needs steps of 0.1 from -0.3 to 0.1 (4 intervals).
     assert value_range([-0.269, 0.0], [0.069, 0.0]) == (-0.3, 0.1, 0.1)
-    assert value_range([0.0], [1.0]) == (0.0, 1.0, 0.25)
+    assert value_range([0.0], [1.0]) == (0.0, 1.0, 0.2)
     chart = interval_chart(
         "t",
         [Figure("a", 1.7, 1.2, 2.4, "a"), Figure("b", None, None, None, "b", "withheld")],
