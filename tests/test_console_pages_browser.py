@@ -21,7 +21,6 @@ import json
 from collections.abc import Iterator
 from dataclasses import dataclass
 from datetime import UTC, datetime
-from pathlib import Path
 from typing import Any
 
 import httpx
@@ -108,8 +107,10 @@ def _fill(api: httpx.Client, tokens: dict[str, str]) -> tuple[str, str]:
     return month, decided[0]["recommendation_id"]
 
 
-@pytest.fixture
-def console(tmp_path: Path) -> Iterator[Console]:
+@pytest.fixture(scope="module")
+def console(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Console]:
+    """One server for the module's tests (filling it is the slow part); they only read."""
+    tmp_path = tmp_path_factory.mktemp("pages")
     url = f"sqlite:///{tmp_path / 'pages.db'}"
     with changes_allowed():
         upgrade(url)
