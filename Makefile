@@ -15,8 +15,8 @@ demo: $(STAMP)
 	$(VENV)/bin/evenhand demo
 
 lint: $(STAMP)
-	$(VENV)/bin/ruff check service tests benchmarks
-	$(VENV)/bin/ruff format --check service tests benchmarks
+	$(VENV)/bin/ruff check service tests benchmarks scripts
+	$(VENV)/bin/ruff format --check service tests benchmarks scripts
 	$(VENV)/bin/mypy
 
 test: lint

@@ -23,6 +23,10 @@ from tests.helpers import actor, bearer, make_policy, make_request
 CSRF = re.compile(r'name="csrf" value="([^"]+)"')
 
 
+# Where a signed-out GET of the policy list is sent: sign in, then back to the list.
+SIGNED_OUT = "/console/sign-in?next=/console/policies"
+
+
 def csrf_of(html: str) -> str:
     found = CSRF.search(html)
     assert found is not None, html
@@ -98,7 +102,7 @@ def test_scoring_key_cannot_sign_in(client: TestClient, tokens: dict[str, str]) 
     assert r.status_code == 403
     assert "cannot sign in" in r.text
     r = client.get("/console/policies", follow_redirects=False)
-    assert r.status_code == 303 and r.headers["location"] == "/console/sign-in"
+    assert r.status_code == 303 and r.headers["location"] == SIGNED_OUT
 
 
 def test_sign_in_without_or_with_wrong_csrf_is_refused(
@@ -183,7 +187,7 @@ def test_signing_in_again_ends_the_earlier_session(
     assert "auditor" in client.get("/console/policies").text
     old = TestClient(client.app, cookies={"evenhand_console": first})
     r = old.get("/console/policies", follow_redirects=False)
-    assert r.status_code == 303 and r.headers["location"] == "/console/sign-in"
+    assert r.status_code == 303 and r.headers["location"] == SIGNED_OUT
     current = TestClient(
         client.app, cookies={"evenhand_console": client.cookies["evenhand_console"]}
     )
@@ -195,7 +199,7 @@ def test_expired_session_is_sent_to_sign_in(client: TestClient, tokens: dict[str
     store = client.app.state.console_sessions  # type: ignore[attr-defined]
     store.idle_seconds = 0.0
     r = client.get("/console/policies", follow_redirects=False)
-    assert r.status_code == 303 and r.headers["location"] == "/console/sign-in"
+    assert r.status_code == 303 and r.headers["location"] == SIGNED_OUT
 
 
 def test_revoked_key_ends_its_sessions(client: TestClient, tokens: dict[str, str]) -> None:

@@ -16,8 +16,6 @@ Skipped when Chromium or Playwright is missing, except under CI=true, where that
 
 from __future__ import annotations
 
-import os
-import shutil
 from collections.abc import Iterator
 from dataclasses import dataclass
 from datetime import UTC, datetime
@@ -33,16 +31,9 @@ from service.settings import Settings
 from service.store import lifecycle
 from service.store.db import create_db_engine, create_session_factory
 from service.store.migrate import upgrade
+from tests.browser_helpers import CHROMIUM, Watch, need_browser, watched_page
 from tests.helpers import TEST_SECRET, actor, bearer, create_key, make_policy, make_request
 from tests.insert_only import changes_allowed
-
-CHROMIUM = os.environ.get("EVENHAND_TEST_CHROMIUM", "/usr/bin/chromium")
-
-
-def _unavailable(message: str) -> None:
-    if os.environ.get("CI", "").lower() in {"1", "true", "yes"}:
-        pytest.fail(message + " (CI=true: the browser test is mandatory)")
-    pytest.skip(message)
 
 
 @pytest.fixture
@@ -71,33 +62,19 @@ def served(tmp_path: Path) -> Iterator[tuple[ServerProcess, dict[str, str]]]:
         server.stop()
 
 
-def _need_browser() -> None:
-    if shutil.which(CHROMIUM) is None:
-        _unavailable(f"no Chromium at {CHROMIUM} (apt-get install chromium)")
-    try:
-        import playwright.sync_api  # noqa: F401
-    except ImportError:
-        _unavailable("the playwright package is not installed (pip install -e '.[test]')")
-
-
 def test_admin_approves_a_draft_in_the_browser(
     served: tuple[ServerProcess, dict[str, str]],
 ) -> None:
-    _need_browser()
+    need_browser()
     from playwright.sync_api import sync_playwright
 
     server, tokens = served
-    errors: list[str] = []
+    watch = Watch()
+    errors = watch.errors
     with sync_playwright() as p:
         browser = p.chromium.launch(executable_path=CHROMIUM, headless=True)
         try:
-            page = browser.new_page()
-            page.on("console", lambda m: errors.append(m.text) if m.type == "error" else None)
-            page.on("pageerror", lambda e: errors.append(str(e)))
-            page.on(
-                "response",
-                lambda r: errors.append(f"{r.status} {r.url}") if r.status >= 400 else None,
-            )
+            page = watched_page(browser, server.base_url, watch)
 
             def sign_in(token: str) -> None:
                 page.goto(f"{server.base_url}/console")
@@ -146,10 +123,11 @@ def test_admin_approves_a_draft_in_the_browser(
             page.get_by_role("button", name="Sign out").click()
             page.wait_for_url("**/console/sign-in")
             page.goto(f"{server.base_url}/console/policies")
-            assert page.url.endswith("/console/sign-in")
+            assert page.url.endswith("/console/sign-in?next=/console/policies")
         finally:
             browser.close()
     assert errors == [], errors
+    assert watch.elsewhere == [], watch.elsewhere
 
 
 @dataclass
@@ -232,32 +210,16 @@ def audited(tmp_path: Path) -> Iterator[Audited]:
 
 
 def test_the_auditor_reads_a_report_and_a_decision_offline(audited: Audited) -> None:
-    _need_browser()
-    from playwright.sync_api import Route, sync_playwright
+    need_browser()
+    from playwright.sync_api import sync_playwright
 
     base = audited.server.base_url
-    errors: list[str] = []
-    elsewhere: list[str] = []
-
-    def only_this_host(route: Route) -> None:
-        # The network is cut off: a request to any other host fails (and is recorded).
-        if route.request.url.startswith(base + "/"):
-            route.continue_()
-        else:
-            elsewhere.append(route.request.url)
-            route.abort()
-
+    watch = Watch()  # the network is cut off: a request to any other host fails (recorded)
+    errors, elsewhere = watch.errors, watch.elsewhere
     with sync_playwright() as p:
         browser = p.chromium.launch(executable_path=CHROMIUM, headless=True)
         try:
-            page = browser.new_page()
-            page.route("**/*", only_this_host)
-            page.on("console", lambda m: errors.append(m.text) if m.type == "error" else None)
-            page.on("pageerror", lambda e: errors.append(str(e)))
-            page.on(
-                "response",
-                lambda r: errors.append(f"{r.status} {r.url}") if r.status >= 400 else None,
-            )
+            page = watched_page(browser, base, watch)
             page.goto(f"{base}/console")
             page.get_by_label("API key").fill(audited.auditor)
             page.get_by_role("button", name="Sign in").click()
@@ -344,17 +306,6 @@ def lifecycle_served(tmp_path: Path) -> Iterator[tuple[ServerProcess, dict[str, 
         server.stop()
 
 
-def _browser_page(browser: Any, errors: list[str]) -> Any:
-    page = browser.new_page()
-    page.on("console", lambda m: errors.append(m.text) if m.type == "error" else None)
-    page.on("pageerror", lambda e: errors.append(str(e)))
-    page.on(
-        "response",
-        lambda r: errors.append(f"{r.status} {r.url}") if r.status >= 400 else None,
-    )
-    return page
-
-
 def _sign_in(page: Any, base_url: str, token: str) -> None:
     page.goto(f"{base_url}/console")
     assert page.url.endswith("/console/sign-in")
@@ -366,15 +317,16 @@ def _sign_in(page: Any, base_url: str, token: str) -> None:
 def test_activate_through_the_confirmation_page_then_roll_back(
     lifecycle_served: tuple[ServerProcess, dict[str, str]],
 ) -> None:
-    _need_browser()
+    need_browser()
     from playwright.sync_api import sync_playwright
 
     server, tokens = lifecycle_served
-    errors: list[str] = []
+    watch = Watch()
+    errors = watch.errors
     with sync_playwright() as p:
         browser = p.chromium.launch(executable_path=CHROMIUM, headless=True)
         try:
-            page = _browser_page(browser, errors)
+            page = watched_page(browser, server.base_url, watch)
             _sign_in(page, server.base_url, tokens["approver"])
             page.get_by_role("link", name="readmission").click()
             page.get_by_role("link", name="v2", exact=True).click()
@@ -417,6 +369,7 @@ def test_activate_through_the_confirmation_page_then_roll_back(
         finally:
             browser.close()
     assert errors == [], errors
+    assert watch.elsewhere == [], watch.elsewhere
     r = httpx.get(
         f"{server.base_url}/v1/policies/readmission/history",
         headers=bearer(tokens["author"]),
@@ -430,7 +383,7 @@ def test_activate_through_the_confirmation_page_then_roll_back(
 def test_submit_a_draft_through_the_console_form(
     served: tuple[ServerProcess, dict[str, str]], tmp_path: Path
 ) -> None:
-    _need_browser()
+    need_browser()
     import json
 
     from playwright.sync_api import sync_playwright
@@ -439,11 +392,12 @@ def test_submit_a_draft_through_the_console_form(
     bad = tmp_path / "bad.json"
     bad.write_text(json.dumps(make_policy(costs={"false_positive": -1, "false_negative": 4})))
     good = make_policy(description="second version")
-    errors: list[str] = []
+    watch = Watch()
+    errors = watch.errors
     with sync_playwright() as p:
         browser = p.chromium.launch(executable_path=CHROMIUM, headless=True)
         try:
-            page = _browser_page(browser, errors)
+            page = watched_page(browser, server.base_url, watch)
             _sign_in(page, server.base_url, tokens["author"])
             page.get_by_role("link", name="Submit a draft…").click()
             page.get_by_label("Policy name").fill("readmission")
@@ -474,21 +428,23 @@ def test_submit_a_draft_through_the_console_form(
         finally:
             browser.close()
     assert errors == [], errors
+    assert watch.elsewhere == [], watch.elsewhere
 
 
 def test_a_person_signs_in_with_a_password_an_admin_set(
     served: tuple[ServerProcess, dict[str, str]],
 ) -> None:
-    _need_browser()
+    need_browser()
     from playwright.sync_api import sync_playwright
 
     server, tokens = served
     password = "long enough password"
-    errors: list[str] = []
+    watch = Watch()
+    errors = watch.errors
     with sync_playwright() as p:
         browser = p.chromium.launch(executable_path=CHROMIUM, headless=True)
         try:
-            page = _browser_page(browser, errors)
+            page = watched_page(browser, server.base_url, watch)
             _sign_in(page, server.base_url, tokens["author"])
             page.get_by_role("link", name="People").click()
             page.get_by_label("Name", exact=True).fill("bo")
@@ -509,3 +465,4 @@ def test_a_person_signs_in_with_a_password_an_admin_set(
         finally:
             browser.close()
     assert errors == [], errors
+    assert watch.elsewhere == [], watch.elsewhere

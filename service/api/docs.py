@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import html
 from importlib import import_module
+from importlib.resources import files
 from pathlib import Path
 from typing import Any
 
@@ -26,6 +27,8 @@ ASSETS = {
     "swagger-ui.css": "text/css",
     "favicon-32x32.png": "image/png",
 }
+# Our own stylesheet on top of Swagger UI's (colours with enough contrast), from this package.
+OWN_CSS = "evenhand-docs.css"
 ASSET_PREFIX = "/docs/assets"
 
 
@@ -48,7 +51,7 @@ def docs_router() -> APIRouter:
     def docs_page(request: Request) -> HTMLResponse:
         if folder is None:
             return _route_list(request.app)
-        return get_swagger_ui_html(
+        page = get_swagger_ui_html(
             openapi_url="/openapi.json",
             title="Evenhand API",
             swagger_js_url=f"{ASSET_PREFIX}/swagger-ui-bundle.js",
@@ -56,9 +59,13 @@ def docs_router() -> APIRouter:
             swagger_favicon_url=f"{ASSET_PREFIX}/favicon-32x32.png",
             swagger_ui_parameters={"validatorUrl": None, "persistAuthorization": False},
         )
+        return HTMLResponse(_accessible(bytes(page.body).decode("utf-8")))
 
     @router.get(f"{ASSET_PREFIX}/{{file}}")
     def docs_asset(file: str) -> Response:
+        if file == OWN_CSS:
+            css = files("service.api").joinpath("static", "docs.css").read_bytes()
+            return Response(css, media_type="text/css", headers={"Cache-Control": "max-age=86400"})
         media_type = ASSETS.get(file)
         if folder is None or media_type is None:
             raise NotFound(f"no documentation asset {file!r}")
@@ -68,6 +75,14 @@ def docs_router() -> APIRouter:
         return Response(body, media_type=media_type, headers={"Cache-Control": "max-age=86400"})
 
     return router
+
+
+def _accessible(page: str) -> str:
+    """FastAPI's Swagger UI page with a language and our colour overrides after Swagger
+    UI's stylesheet."""
+    own = f'<link type="text/css" rel="stylesheet" href="{ASSET_PREFIX}/{OWN_CSS}">'
+    page = page.replace("<html>", '<html lang="en">', 1)
+    return page.replace("</head>", own + "\n</head>", 1)
 
 
 def _route_list(app: FastAPI) -> HTMLResponse:

@@ -13,6 +13,8 @@ from dataclasses import dataclass, field
 from service.audit.check_rows import METRIC_LABELS
 from service.audit.history import ChartState, HistoryRow
 from service.audit.snapshot_model import Estimate, PublishedCount, Snapshot
+from service.console.interval_chart import IntervalChart
+from service.console.report_charts import GroupRates, group_rates, history_chart
 
 _WITHHELD = {
     "small-cell": "withheld (small cell)",
@@ -82,6 +84,7 @@ class VersionPart:
     reference_group: str | None
     checks: list[CheckLine]
     totals: list[tuple[str, str]]
+    rates: GroupRates
 
 
 @dataclass(frozen=True)
@@ -143,6 +146,7 @@ def report_page(s: Snapshot) -> ReportPage:
                 reference_group=v.reference_group,
                 checks=checks,
                 totals=[(k, fmt_count(n)) for k, n in v.totals.items()],
+                rates=group_rates(v),
             )
         )
     return ReportPage(
@@ -200,13 +204,16 @@ class HistoryTable:
     check: str
     against: str
     lines: list[HistoryLine]
+    chart: IntervalChart
 
 
 def history_tables(rows: Sequence[HistoryRow]) -> list[HistoryTable]:
     """One table per (group, check, metric, against), its months in order."""
     tables: dict[tuple[str, str, str, str], list[HistoryLine]] = {}
+    raw: dict[tuple[str, str, str, str], list[HistoryRow]] = {}
     for r in sorted(rows, key=lambda r: (r.group, r.check, r.metric, r.against, r.month)):
         estimate, interval = fmt_estimate(r.estimate, signed=r.check == "parity")
+        raw.setdefault((r.group, r.check, r.metric, r.against), []).append(r)
         tables.setdefault((r.group, r.check, r.metric, r.against), []).append(
             HistoryLine(
                 month=r.month,
@@ -220,6 +227,18 @@ def history_tables(rows: Sequence[HistoryRow]) -> list[HistoryTable]:
             )
         )
     return [
-        HistoryTable(group=g, check=f"{c}: {metric_label(m)}", against=a, lines=lines)
+        HistoryTable(
+            group=g,
+            check=f"{c}: {metric_label(m)}",
+            against=a,
+            lines=lines,
+            chart=history_chart(
+                f"{c}: {metric_label(m)} of group {g}"
+                + (f" against {a}" if a else "")
+                + ", month by month, with 95% intervals",
+                c,
+                raw[(g, c, m, a)],
+            ),
+        )
         for (g, c, m, a), lines in tables.items()
     ]

@@ -16,6 +16,7 @@ from service.console.deps import read_session as _read_session
 from service.console.deps import require_audit as _require_audit
 from service.console.deps import write_session as _write_session
 from service.console.report_view import history_tables
+from service.console.return_to import after_sign_in, safe_next
 from service.console.rule_view import compare_chart, describe_rule, rule_chart
 from service.console.sessions import ConsoleSession
 from service.console.web import (
@@ -70,18 +71,26 @@ def home(request: Request) -> Response:
     return redirect(f"{PREFIX}/policies" if signed_in else f"{PREFIX}/sign-in")
 
 
-def _sign_in_page(request: Request, status_code: int = 200, message: str | None = None) -> Response:
+def _sign_in_page(
+    request: Request, status_code: int = 200, message: str | None = None, next_page: str = ""
+) -> Response:
     token = secrets.token_urlsafe(32)
     response = render(
-        request, "sign_in.html", status_code, title="Sign in", csrf=token, message=message
+        request,
+        "sign_in.html",
+        status_code,
+        title="Sign in",
+        csrf=token,
+        message=message,
+        next_page=safe_next(next_page) or "",
     )
     set_cookie(request, response, SIGN_IN_COOKIE, token)
     return response
 
 
 @router.get("/sign-in")
-def sign_in_form(request: Request) -> Response:
-    return _sign_in_page(request)
+def sign_in_form(request: Request, next: str = "") -> Response:
+    return _sign_in_page(request, next_page=next)
 
 
 @router.post("/sign-in")
@@ -94,8 +103,8 @@ def sign_in(request: Request, form: PostedForm) -> Response:
         found = None if key is None else (key.id, key.name, key.role)
         session.rollback()
     if found is None:
-        return _sign_in_page(request, 401, "Unknown or revoked API key.")
-    return _start_session(request, *found)
+        return _sign_in_page(request, 401, "Unknown or revoked API key.", form.get("next"))
+    return _start_session(request, *found, form.get("next"))
 
 
 @router.post("/sign-in/password")
@@ -117,12 +126,16 @@ def sign_in_with_password(request: Request, form: PostedForm) -> Response:
         found = None if key is None else (key.id, key.name, key.role)
         session.rollback()
     if found is None:
-        return _sign_in_page(request, 401, "Unknown name, wrong password or a revoked key.")
+        return _sign_in_page(
+            request, 401, "Unknown name, wrong password or a revoked key.", form.get("next")
+        )
     attempts.succeeded(request, counted)
-    return _start_session(request, *found)
+    return _start_session(request, *found, form.get("next"))
 
 
-def _start_session(request: Request, key_id: int, name: str, role: str) -> Response:
+def _start_session(
+    request: Request, key_id: int, name: str, role: str, next_page: str = ""
+) -> Response:
     if role not in CONSOLE_ROLES:
         return _sign_in_page(
             request, 403, f"A {role!r} key cannot sign in: the console is for admin and audit keys."
@@ -131,7 +144,7 @@ def _start_session(request: Request, key_id: int, name: str, role: str) -> Respo
     if previous:  # signing in again (perhaps as someone else) ends the earlier session
         sessions_of(request).end(previous)
     session_id = sessions_of(request).create(key_id, name, role)
-    response = redirect(f"{PREFIX}/policies")
+    response = redirect(after_sign_in(next_page))
     set_cookie(request, response, SESSION_COOKIE, session_id)
     clear_cookie(request, response, SIGN_IN_COOKIE)
     return response

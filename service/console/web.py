@@ -18,6 +18,7 @@ from fastapi.responses import HTMLResponse, RedirectResponse
 from fastapi.routing import APIRoute
 from jinja2 import Environment, PackageLoader, StrictUndefined, select_autoescape
 
+from service.console.return_to import sign_in_location
 from service.console.sessions import ConsoleSession, SessionStore, same_token
 from service.errors import Forbidden, ServiceError, TooManyRequests, Unprocessable
 from service.settings import Settings
@@ -186,7 +187,9 @@ class ConsoleRoute(APIRoute):
             try:
                 response = await handler(request)
             except SignInRequired:
-                response = redirect(f"{PREFIX}/sign-in")
+                response = redirect(
+                    sign_in_location(request.method, request.url.path, request.url.query)
+                )
             except ServiceError as exc:
                 response = _error_page(request, exc)
                 if isinstance(exc, TooManyRequests):
