@@ -271,6 +271,8 @@ def run_backend(backend: str, args: argparse.Namespace, workdir: Path) -> dict[s
         env = {
             "EVENHAND_DATABASE_URL": db.url,
             "EVENHAND_DRAW_SECRET": secrets.token_hex(32),
+            # The server seals the log as it runs, and refuses to start without a key.
+            "EVENHAND_SIGNING_KEY": secrets.token_hex(32),
             "EVENHAND_SQLITE_SYNCHRONOUS": args.sqlite_synchronous,
         }
         document = demo_policy()

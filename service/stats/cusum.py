@@ -263,34 +263,79 @@ def _check_chain(h: float, states: int) -> None:
         raise ValueError(f"need at least 2 states, got {states}")
 
 
-def _transition(h: float, step: StepDistribution, states: int) -> FloatArray:
-    """Substochastic transition matrix among the grid points (see the module docstring)."""
+Support = tuple[FloatArray, FloatArray]
+"""The increment values a chain uses and their probabilities (renormalised)."""
+
+
+def _support(step: StepDistribution) -> Support:
+    """``step`` without the values of negligible probability: the part of it that does not
+    depend on the limit, computed once per distribution rather than once per limit tried."""
     keep = step.probabilities >= NEGLIGIBLE_PROBABILITY
-    values = step.values[keep]
-    probabilities = step.probabilities[keep] / step.probabilities[keep].sum()
+    return step.values[keep], step.probabilities[keep] / step.probabilities[keep].sum()
+
+
+def _transition(h: float, support: Support, states: int) -> FloatArray:
+    """Substochastic transition matrix among the grid points (see the module docstring).
+
+    Computed in place in a few buffers per chunk: this runs once per limit tried by
+    ``control_limit``, and fresh temporaries of the size of the grid times the support cost
+    more than the arithmetic on them."""
+    values, probabilities = support
     spacing = h / (states - 1)
     grid = np.arange(states, dtype=np.float64) * spacing
     rows = (np.arange(states, dtype=np.int64) * states)[:, None]
     matrix = np.zeros(states * states)
     width = max(1, _CHUNK // states)
     for start in range(0, values.size, width):
-        v = np.maximum(grid[:, None] + values[None, start : start + width], 0.0)
+        v = grid[:, None] + values[None, start : start + width]
+        np.maximum(v, 0.0, out=v)
         weight = np.where(v < h, probabilities[None, start : start + width], 0.0)
-        position = np.minimum(v / spacing, states - 1.0)
-        lower = np.minimum(position.astype(np.int64), states - 2)
-        fraction = np.clip(position - lower, 0.0, 1.0)
-        matrix += np.bincount(
-            np.concatenate([(rows + lower).ravel(), (rows + lower + 1).ravel()]),
-            weights=np.concatenate(
-                [(weight * (1.0 - fraction)).ravel(), (weight * fraction).ravel()]
-            ),
-            minlength=states * states,
-        )
+        position = np.divide(v, spacing, out=v)
+        np.minimum(position, states - 1.0, out=position)
+        lower = position.astype(np.int64)
+        np.minimum(lower, states - 2, out=lower)
+        # position - lower lies in [0, 1]: lower is the floor of position, or states - 2
+        # when position is at most states - 1.
+        fraction = np.subtract(position, lower, out=position)
+        size = lower.size
+        index = np.empty(2 * size, dtype=np.int64)
+        np.add(rows, lower, out=index[:size].reshape(lower.shape))
+        np.add(index[:size], 1, out=index[size:])
+        weights = np.empty(2 * size)
+        np.multiply(weight, fraction, out=weights[size:].reshape(lower.shape))
+        np.subtract(1.0, fraction, out=fraction)
+        np.multiply(weight, fraction, out=weights[:size].reshape(lower.shape))
+        matrix += np.bincount(index, weights=weights, minlength=states * states)
     return matrix.reshape(states, states)
 
 
 def _can_signal(step: StepDistribution) -> bool:
     return bool(np.any((step.values > 0.0) & (step.probabilities > 0.0)))
+
+
+def _supports(steps: Sequence[StepDistribution]) -> list[Support]:
+    """The support of each period's step, computed once per distinct distribution."""
+    seen: dict[int, Support] = {}
+    return [seen.setdefault(id(step), _support(step)) for step in steps]
+
+
+def _occupancy(
+    h: float, supports: Sequence[Support], horizon: int, states: int, cdf: FloatArray | None
+) -> FloatArray:
+    """The chain's occupancy of the grid after ``horizon`` periods from 0 (the rest of the
+    mass has signalled); ``P(run length <= t)`` is written into ``cdf[t - 1]`` if given."""
+    matrices: dict[int, FloatArray] = {}
+    occupancy = np.zeros(states)
+    occupancy[0] = 1.0
+    for t in range(horizon):
+        support = supports[min(t, len(supports) - 1)]
+        matrix = matrices.get(id(support))
+        if matrix is None:
+            matrix = matrices[id(support)] = _transition(h, support, states)
+        occupancy = occupancy @ matrix
+        if cdf is not None:
+            cdf[t] = 1.0 - occupancy.sum()
+    return occupancy
 
 
 def run_length_cdf(
@@ -303,16 +348,8 @@ def run_length_cdf(
     _check_chain(h, states)
     if horizon < 1 or len(steps) == 0:
         raise ValueError("need horizon >= 1 and at least one step distribution")
-    matrices: dict[int, FloatArray] = {}
-    occupancy = np.zeros(states)
-    occupancy[0] = 1.0
     cdf = np.empty(horizon)
-    for t in range(horizon):
-        step = steps[min(t, len(steps) - 1)]
-        if id(step) not in matrices:
-            matrices[id(step)] = _transition(h, step, states)
-        occupancy = occupancy @ matrices[id(step)]
-        cdf[t] = 1.0 - occupancy.sum()
+    _occupancy(h, _supports(steps), horizon, states, cdf)
     return np.clip(cdf, 0.0, 1.0)
 
 
@@ -321,7 +358,7 @@ def average_run_length(h: float, step: StepDistribution, states: int = 200) -> f
     _check_chain(h, states)
     if not _can_signal(step):
         raise ValueError("no positive increment: the chart never signals")
-    q = _transition(h, step, states)
+    q = _transition(h, _support(step), states)
     try:
         lengths = np.linalg.solve(np.eye(states) - q, np.ones(states))
     except np.linalg.LinAlgError as exc:
@@ -351,8 +388,13 @@ def control_limit(
     if not any(_can_signal(step) for step in used):
         raise ValueError("no positive increment within the horizon: the chart never signals")
 
+    supports = _supports(steps)
+
     def alarm(h: float) -> float:
-        return float(run_length_cdf(h, steps, horizon, states)[-1])
+        # P(run length <= horizon), as run_length_cdf(h, steps, horizon, states)[-1].
+        _check_chain(h, states)
+        occupancy = _occupancy(h, supports, horizon, states, None)
+        return float(np.clip(1.0 - occupancy.sum(), 0.0, 1.0))
 
     low, high = 0.0, 1.0
     while alarm(high) > false_alarm:
