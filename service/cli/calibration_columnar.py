@@ -94,7 +94,7 @@ def _read_table(raw: bytes, score: str, outcome: str, group_columns: list[str]) 
     try:
         return pa_csv.read_csv(
             pa.py_buffer(raw),
-            read_options=pa_csv.ReadOptions(column_names=header, skip_rows=1),
+            read_options=pa_csv.ReadOptions(column_names=header, skip_rows=1, use_threads=False),
             parse_options=pa_csv.ParseOptions(newlines_in_values=True),
             convert_options=pa_csv.ConvertOptions(
                 column_types=types,
@@ -103,6 +103,7 @@ def _read_table(raw: bytes, score: str, outcome: str, group_columns: list[str]) 
                 strings_can_be_null=False,
                 quoted_strings_can_be_null=False,
             ),
+            memory_pool=pa.system_memory_pool(),
         )
     except (pa.ArrowException, ValueError, OSError):
         return None
