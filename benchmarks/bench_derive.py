@@ -137,6 +137,7 @@ def bench_derive(
                 speedup_shared=t_shared / t_ours,
                 rel_gap_shared=abs(ours - shared) / shared,
             )
+        print(f"  {criterion.value}: {json.dumps(entry)}", file=sys.stderr, flush=True)
     return {
         "rows": rows,
         "groups": 8,
@@ -217,7 +218,7 @@ def bench_end_to_end(n: int = 300_000) -> dict[str, float]:
 
 def bench_scalar(n: int = 50_000) -> dict[str, float]:
     policy = PolicyDocument.model_validate_json(
-        (ROOT / "policies" / "fernhollow-follow-up.json").read_text()
+        (ROOT / "service" / "policies" / "fernhollow-follow-up.json").read_text()
     )
     rng = np.random.default_rng(3)
     scores = rng.random(n).tolist()
