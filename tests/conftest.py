@@ -87,7 +87,14 @@ def database_url(
 
 @pytest.fixture
 def settings(database_url: str) -> Settings:
-    return Settings(database_url=database_url, draw_secret=TEST_SECRET)  # type: ignore[arg-type]
+    # No periodic sealing by the apps the tests start: a test seals when it chooses (a
+    # background round would take the upkeep lock and seal a test's records first). The
+    # sealer's own tests start one with a short interval.
+    return Settings(
+        database_url=database_url,
+        draw_secret=TEST_SECRET,  # type: ignore[arg-type]
+        seal_interval_seconds=3600,
+    )
 
 
 @pytest.fixture(scope="session")

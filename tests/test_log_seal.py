@@ -26,6 +26,7 @@ from sqlalchemy.orm import Session, sessionmaker
 from service.store.audit_models import Seal
 from service.store.log_proofs import consistency, inclusion
 from service.store.log_sources import KIND_ORDER, SOURCES, rows
+from service.store.log_upkeep import UPKEEP_LOCK_KEY, keep_log
 from service.store.sealing import seal_pending
 from tests.helpers import bearer, make_request
 from tests.log_helpers import SIGNER, scalar, seal, tamper, verify, write_every_kind
@@ -523,3 +524,27 @@ def test_postgresql_refuses_updates_and_deletes_of_the_log(
             ):
                 conn.execute(text(statement))
                 pytest.fail(f"{statement} was not refused")
+
+
+def test_upkeep_skips_its_round_while_another_process_keeps_the_log(
+    client: TestClient,
+    make_key: Callable[..., str],
+    engine: Engine,
+    session_factory: sessionmaker[Session],
+) -> None:
+    if engine.dialect.name != "postgresql":
+        pytest.skip("the upkeep lock is PostgreSQL's (SQLite has one writer)")
+    write_every_kind(client, make_key, cases=2)
+    with engine.connect() as other:  # another worker, in the middle of its round
+        other.exec_driver_sql(f"SELECT pg_advisory_lock({UPKEEP_LOCK_KEY})")
+        skipped = keep_log(session_factory, SIGNER, "UTC", wait=False)
+        assert skipped.seals == [] and skipped.batches == []
+        assert verify(session_factory).unsealed["decision"] > 0
+        other.exec_driver_sql(f"SELECT pg_advisory_unlock({UPKEEP_LOCK_KEY})")
+    done = keep_log(session_factory, SIGNER, "UTC", wait=False)
+    assert done.sealed > 0
+    result = verify(session_factory)
+    assert result.ok and set(result.unsealed.values()) == {0}, result
+    with engine.connect() as conn:  # the round let go of the lock
+        assert conn.exec_driver_sql(f"SELECT pg_try_advisory_lock({UPKEEP_LOCK_KEY})").scalar()
+        conn.exec_driver_sql(f"SELECT pg_advisory_unlock({UPKEEP_LOCK_KEY})")

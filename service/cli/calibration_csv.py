@@ -23,7 +23,22 @@ from service.policy.units import CalibrationData
 def load_calibration(
     path: Path, score: str, outcome: str, group_columns: list[str]
 ) -> CalibrationData:
-    """Score in [0, 1], outcome 0/1 and the group columns of every row of ``path``."""
+    """Score in [0, 1], outcome 0/1 and the group columns of every row of ``path``.
+
+    Read by pyarrow's columnar reader (:mod:`service.cli.calibration_columnar`) when it
+    can vouch for giving the same answer; otherwise, and for every error message, row by row
+    with the standard library's ``csv`` module.
+    """
+    from service.cli.calibration_columnar import read_columnar
+
+    fast = read_columnar(path, score, outcome, group_columns)
+    if fast is not None:
+        return fast
+    return read_rows(path, score, outcome, group_columns)
+
+
+def read_rows(path: Path, score: str, outcome: str, group_columns: list[str]) -> CalibrationData:
+    """The row-by-row reading: every check, with the line and column of the first problem."""
     wanted = [score, outcome, *group_columns]
     try:
         f = path.open(newline="", encoding="utf-8-sig")

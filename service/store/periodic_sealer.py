@@ -1,8 +1,10 @@
 """The server's periodic sealer: an asyncio task running the log's upkeep in a thread.
 
-Every worker process may run one: seals and tally batches take consecutive ids, so of two
-processes writing the same one, one succeeds and the other finds nothing left, and several
-workers or replicas are safe. A failed round is logged and tried again at the next tick:
+Every worker process runs one. On PostgreSQL a round runs only in the process that holds the
+upkeep lock (``service.store.log_upkeep``); the others skip their tick, so N workers do one
+worker's sealing, not N. Without the lock it would still be safe (seals and tally batches take
+consecutive ids: of two processes writing the same one, one succeeds and the other finds
+nothing left), only wasteful. A failed round is logged and tried again at the next tick:
 unsealed records stay pending, nothing is lost.
 """
 
@@ -60,7 +62,12 @@ class PeriodicSealer:
     async def _tick(self) -> None:
         try:
             done = await asyncio.to_thread(
-                keep_log, self._session_factory, self._signer, self._time_zone, mirror=self._mirror
+                keep_log,
+                self._session_factory,
+                self._signer,
+                self._time_zone,
+                mirror=self._mirror,
+                wait=False,  # another worker is sealing: this tick has nothing to do
             )
         except Exception as exc:
             if is_unavailable(exc):
