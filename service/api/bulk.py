@@ -1,0 +1,208 @@
+"""Streaming bulk scoring (scoring role): newline-delimited JSON in, newline-delimited JSON out.
+
+``POST /v1/recommendations/stream`` reads its body as it arrives, one
+``RecommendationRequest`` per line, and answers one ``RecommendationResponse`` per line in the
+same order, chunk by chunk (``service.store.bulk_scoring``): a chunk is decided and committed
+by the batch route's own function before any of its answers is sent, so every answer received
+is on the record, and a retried stream replays the same answers. At most one chunk of lines is
+held in memory, and one line may be at most ``MAX_LINE_BYTES`` long; the body size limit of
+the other routes does not apply (``service.api.limits``).
+
+A bad line stops the stream: every line before it is answered, then one error line in the one
+error shape (``{"error": {...}}``, its field ``line.<n>.<field>``), and nothing after it is
+read. If the very first chunk holds no good line before the bad one, the answer is the
+error's own status instead (422, 413...), as on the other routes.
+"""
+
+from __future__ import annotations
+
+from collections.abc import AsyncIterator
+from typing import Any
+
+from fastapi import APIRouter, Request, Response
+from fastapi.concurrency import run_in_threadpool
+from pydantic import TypeAdapter, ValidationError
+from sqlalchemy.exc import SQLAlchemyError
+from starlette.responses import StreamingResponse
+from starlette.types import Receive, Scope, Send
+
+from service.api.deps import ScoringKey
+from service.api.errors import error_responses, service_error_response, validation_details
+from service.api.recommendation_schemas import RecommendationRequest, RecommendationResponse
+from service.errors import ServiceError, Unprocessable
+from service.store.bulk_scoring import (
+    Chunk,
+    ChunkAnswer,
+    LineRefused,
+    chunk_size,
+    score_chunk,
+)
+from service.store.db import DatabaseUnavailable, is_unavailable
+from service.store.scoring import ScoreInput, ScoringContext
+
+NDJSON = "application/x-ndjson"
+MAX_LINE_BYTES = 64 * 1024
+"""Longest line: a request at its bounds (32 attributes of 64-character names and values,
+every character escaped) fits several times over."""
+PATH = "/v1/recommendations/stream"
+
+router = APIRouter(prefix="/v1/recommendations", tags=["recommendations"])
+
+_MANY = TypeAdapter(list[RecommendationRequest])
+
+
+class _Stream(StreamingResponse):
+    """A streaming answer that does not listen for a disconnect while it sends: the body is
+    still being read as the answers go out, and a listener would swallow its messages. A
+    client that goes away stops the stream when the next read or send fails."""
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        await self.stream_response(send)
+
+
+async def _lines(body: AsyncIterator[bytes]) -> AsyncIterator[tuple[int, bytes | None]]:
+    """(line number, its bytes) for each line of ``body``; None for a line over the limit,
+    after which nothing more is read."""
+    buffer = bytearray()
+    number = 0
+    async for piece in body:
+        buffer += piece
+        start = 0
+        while (end := buffer.find(b"\n", start)) >= 0:
+            number += 1
+            if end - start > MAX_LINE_BYTES:
+                yield number, None
+                return
+            yield number, bytes(buffer[start:end])
+            start = end + 1
+        del buffer[:start]
+        if len(buffer) > MAX_LINE_BYTES:
+            yield number + 1, None
+            return
+    if buffer:
+        yield number + 1, bytes(buffer)
+
+
+def _too_long(number: int) -> LineRefused:
+    return LineRefused(
+        number, "line_too_long", f"is longer than {MAX_LINE_BYTES} bytes; is it one request?", None
+    )
+
+
+def _parse(lines: list[tuple[int, bytes]]) -> Chunk:
+    """The requests of ``lines`` (all validated in one pass in the common case), up to the
+    first bad line, whose refusal ends the chunk."""
+    try:
+        requests = _MANY.validate_json(b"[" + b",".join(raw for _, raw in lines) + b"]")
+        return Chunk(list[ScoreInput](requests), [n for n, _ in lines])
+    except ValidationError:
+        pass
+    good: list[ScoreInput] = []
+    for number, raw in lines:
+        try:
+            good.append(RecommendationRequest.model_validate_json(raw))
+        except ValidationError as exc:
+            return Chunk(good, [n for n, _ in lines[: len(good)]], _line_problem(number, exc))
+    raise AssertionError("a chunk refused as a whole has a bad line")  # pragma: no cover
+
+
+def _line_problem(number: int, exc: ValidationError) -> LineRefused:
+    errors = exc.errors()
+    bad_json = next((e for e in errors if e.get("type") == "json_invalid"), None)
+    if bad_json is not None:
+        reason = (bad_json.get("ctx") or {}).get("error", "invalid JSON")
+        return LineRefused(number, "malformed_json", f"is not valid JSON: {reason}", None)
+    details = validation_details(errors)
+    for detail in details:
+        detail["field"] = f"line.{number}" + (f".{detail['field']}" if detail["field"] else "")
+    first = details[0]
+    field = first["field"].split(".", 2)[2] if first["field"].count(".") >= 2 else None
+    return LineRefused(number, "validation_error", first["message"], field, details)
+
+
+async def _chunks(request: Request, size: int) -> AsyncIterator[Chunk]:
+    pending: list[tuple[int, bytes]] = []
+    async for number, raw in _lines(request.stream()):
+        if raw is None:
+            chunk = _parse(pending) if pending else Chunk([], [])
+            yield Chunk(chunk.requests, chunk.lines, chunk.problem or _too_long(number))
+            return
+        if raw.strip():
+            pending.append((number, raw))
+            if len(pending) == size:
+                chunk = _parse(pending)
+                pending = []
+                yield chunk
+                if chunk.problem is not None:
+                    return
+    if pending:
+        yield _parse(pending)
+
+
+class UnsupportedMediaType(ServiceError):
+    status_code = 415
+    code = "unsupported_media_type"
+
+
+def _error_line(exc: ServiceError) -> bytes:
+    return bytes(service_error_response(exc).body) + b"\n"
+
+
+@router.post(
+    "/stream",
+    status_code=200,
+    summary="Any number of recommendations as newline-delimited JSON, answered line by line",
+    response_model=None,
+    responses={
+        200: {
+            "description": "One RecommendationResponse per line, in input order; if a line "
+            "is refused after some were answered, one ErrorResponse line ends the stream",
+            "content": {NDJSON: {"schema": RecommendationResponse.model_json_schema()}},
+        },
+        **error_responses(400, 401, 403, 409, 413, 415, 422),
+    },
+    openapi_extra={
+        "requestBody": {
+            "required": True,
+            "description": "One RecommendationRequest per line (UTF-8, lines of at most "
+            f"{MAX_LINE_BYTES} bytes, blank lines skipped)",
+            "content": {NDJSON: {"schema": {"type": "string"}}},
+        }
+    },
+)
+async def recommend_stream(request: Request, _key: ScoringKey) -> Response:
+    media = request.headers.get("content-type", "").split(";")[0].strip().lower()
+    if media != NDJSON:
+        raise UnsupportedMediaType(f"send newline-delimited JSON with Content-Type: {NDJSON}")
+    ctx: ScoringContext = request.app.state.scoring
+    engine = request.app.state.engine
+    reader = _chunks(request, chunk_size(ctx))
+    first = await anext(reader, None)
+    if first is None:
+        raise Unprocessable("the body holds no request", code="empty_stream")
+    answer = await run_in_threadpool(score_chunk, engine, first, ctx)
+    if answer.error is not None and not answer.responses:
+        raise answer.error  # nothing answered yet: the error's own status
+    return _Stream(_answers(answer, reader, engine, ctx), media_type=NDJSON)
+
+
+async def _answers(
+    answer: ChunkAnswer, reader: AsyncIterator[Chunk], engine: Any, ctx: ScoringContext
+) -> AsyncIterator[bytes]:
+    while True:
+        if answer.responses:
+            yield ("\n".join(answer.responses) + "\n").encode("utf-8")
+        if answer.error is not None:
+            yield _error_line(answer.error)
+            return
+        chunk = await anext(reader, None)
+        if chunk is None:
+            return
+        try:
+            answer = await run_in_threadpool(score_chunk, engine, chunk, ctx)
+        except SQLAlchemyError as exc:
+            # The status went out with the first answers: the error handlers cannot answer
+            # any more, so an unavailable database ends the stream with its error line.
+            if not is_unavailable(exc):
+                raise
+            answer = ChunkAnswer([], 0, DatabaseUnavailable())

@@ -1,0 +1,138 @@
+"""Streaming bulk scoring: requests decided and recorded chunk by chunk, answers in order.
+
+The bulk paths (``POST /v1/recommendations/stream`` and ``evenhand score``) never hold more
+than one chunk of requests: they read up to ``chunk_size`` lines, decide and record them with
+:func:`service.store.scoring.recommend_batch` (the batch route's own function, with its
+transactions and its request_id idempotency), hand back the answers and read on. Every
+answer handed back is committed; a repeated ``request_id`` is answered from its stored
+record, so a retried stream replays the same answers and writes nothing new.
+
+A bad line stops the stream. The lines before it are decided, recorded and answered (the
+chunk holding it is recorded up to the line before it), then its error is handed back and
+nothing after it is read. A line number counts every line of the input from 1, blank lines
+included (they are skipped); errors name it in their field (``line.7.score``).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable, Iterator
+from dataclasses import dataclass
+from typing import Any
+
+from sqlalchemy import Engine
+
+from service.errors import BatchRefused, ServiceError, Unprocessable, item_index
+from service.store import scoring
+from service.store.scoring import ScoreInput, ScoringContext
+
+CHUNK_ROWS = 5_000
+"""Requests decided and committed together (capped by ``EVENHAND_MAX_BATCH_ITEMS``)."""
+
+
+class LineRefused(Unprocessable):
+    """A refused line of a stream: the refusal's own code, its field prefixed with the line
+    number (``line.7.score``), the message beginning with it."""
+
+    def __init__(
+        self,
+        number: int,
+        code: str,
+        message: str,
+        field: str | None,
+        details: list[dict[str, Any]] | None = None,
+    ) -> None:
+        where = f"line {number}" + (f": {field}" if field else "")
+        super().__init__(
+            f"{where}: {message}",
+            code=code,
+            field=f"line.{number}" + (f".{field}" if field else ""),
+            details=details,
+        )
+        self.line = number
+        self.column = field
+        self.reason = message
+
+
+def refused_line(number: int, detail: dict[str, Any]) -> LineRefused:
+    """A problem detail (``{"code", "message", "field"}``; a batch's ``items.<i>...`` prefix
+    dropped) as the refusal of line ``number``."""
+    field = detail.get("field")
+    if field is not None and field.startswith("items."):
+        field = field.split(".", 2)[2] if field.count(".") >= 2 else None
+    return LineRefused(number, str(detail["code"]), str(detail["message"]), field)
+
+
+@dataclass(frozen=True, slots=True)
+class Chunk:
+    """Requests read in order, with their line numbers, and the problem that ended the
+    reading if one did (then this is the last chunk)."""
+
+    requests: list[ScoreInput]
+    lines: list[int]
+    problem: ServiceError | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class ChunkAnswer:
+    """What a chunk gave: the answers (JSON text of each request, in order), how many were
+    newly written, and the error that stops the stream after them, if any."""
+
+    responses: list[str]
+    created: int
+    error: ServiceError | None
+
+
+def chunk_size(ctx: ScoringContext, wanted: int = CHUNK_ROWS) -> int:
+    """The chunk size: ``wanted`` within what one batch may hold."""
+    return max(1, min(wanted, ctx.max_batch_items))
+
+
+def score_chunk(engine: Engine, chunk: Chunk, ctx: ScoringContext) -> ChunkAnswer:
+    """Decide and record a chunk (committed before this returns). If the store refuses a
+    request, the requests before it are recorded and answered, and the refusal is the error;
+    a reading problem comes after every request of the chunk."""
+    if not chunk.requests:
+        return ChunkAnswer([], 0, chunk.problem)
+    try:
+        responses, created = scoring.recommend_batch(engine, chunk.requests, ctx)
+    except BatchRefused as exc:
+        first = item_index(exc.details[0]["field"])  # the details are sorted by item
+        error = refused_line(chunk.lines[first], exc.details[0])
+        before = Chunk(chunk.requests[:first], chunk.lines[:first], error)
+        # Recorded without the refused request and all after it; if the store moved on
+        # meanwhile and refuses an earlier one, that one is the first error.
+        return score_chunk(engine, before, ctx)
+    return ChunkAnswer(responses, created, chunk.problem)
+
+
+Read = tuple[int, ScoreInput] | ServiceError
+"""One line read: (its number, the request), or the problem that stops the reading."""
+
+
+def chunks(lines: Iterable[Read], size: int) -> Iterator[Chunk]:
+    """Group the lines read into chunks of ``size`` requests; a problem ends the last chunk."""
+    requests: list[ScoreInput] = []
+    numbers: list[int] = []
+    for line in lines:
+        if isinstance(line, ServiceError):
+            yield Chunk(requests, numbers, line)
+            return
+        requests.append(line[1])
+        numbers.append(line[0])
+        if len(requests) == size:
+            yield Chunk(requests, numbers)
+            requests, numbers = [], []
+    if requests:
+        yield Chunk(requests, numbers)
+
+
+def score_all(
+    engine: Engine, lines: Iterable[Read], ctx: ScoringContext, size: int = CHUNK_ROWS
+) -> Iterator[ChunkAnswer]:
+    """Score ``lines`` chunk by chunk, handing back each chunk's answers once committed;
+    stops after the first answer that carries an error."""
+    for chunk in chunks(lines, chunk_size(ctx, size)):
+        answer = score_chunk(engine, chunk, ctx)
+        yield answer
+        if answer.error is not None:
+            return
