@@ -16,6 +16,7 @@ error's own status instead (422, 413...), as on the other routes.
 
 from __future__ import annotations
 
+import asyncio
 from collections.abc import AsyncIterator
 from typing import Any
 
@@ -28,7 +29,7 @@ from starlette.types import Receive, Scope, Send
 
 from service.api.deps import ScoringKey
 from service.api.errors import error_responses, service_error_response, validation_details
-from service.api.recommendation_schemas import RecommendationRequest, RecommendationResponse
+from service.api.recommendation_schemas import RecommendationRequest
 from service.errors import ServiceError, Unprocessable
 from service.store.bulk_scoring import (
     Chunk,
@@ -148,6 +149,12 @@ def _error_line(exc: ServiceError) -> bytes:
     return bytes(service_error_response(exc).body) + b"\n"
 
 
+def _lines_of(*models: str) -> dict[str, Any]:
+    """The schema of newline-delimited JSON: an array of its lines (each one of ``models``)."""
+    refs = [{"$ref": f"#/components/schemas/{m}"} for m in models]
+    return {"type": "array", "items": refs[0] if len(refs) == 1 else {"anyOf": refs}}
+
+
 @router.post(
     "/stream",
     status_code=200,
@@ -157,7 +164,7 @@ def _error_line(exc: ServiceError) -> bytes:
         200: {
             "description": "One RecommendationResponse per line, in input order; if a line "
             "is refused after some were answered, one ErrorResponse line ends the stream",
-            "content": {NDJSON: {"schema": RecommendationResponse.model_json_schema()}},
+            "content": {NDJSON: {"schema": _lines_of("RecommendationResponse", "ErrorResponse")}},
         },
         **error_responses(400, 401, 403, 409, 413, 415, 422),
     },
@@ -165,8 +172,8 @@ def _error_line(exc: ServiceError) -> bytes:
         "requestBody": {
             "required": True,
             "description": "One RecommendationRequest per line (UTF-8, lines of at most "
-            f"{MAX_LINE_BYTES} bytes, blank lines skipped)",
-            "content": {NDJSON: {"schema": {"type": "string"}}},
+            f"{MAX_LINE_BYTES} bytes, blank lines skipped); the schema lists the lines",
+            "content": {NDJSON: {"schema": _lines_of("RecommendationRequest")}},
         }
     },
 )
@@ -175,31 +182,50 @@ async def recommend_stream(request: Request, _key: ScoringKey) -> Response:
     if media != NDJSON:
         raise UnsupportedMediaType(f"send newline-delimited JSON with Content-Type: {NDJSON}")
     ctx: ScoringContext = request.app.state.scoring
-    engine = request.app.state.engine
-    reader = _chunks(request, chunk_size(ctx))
-    first = await anext(reader, None)
+    answers = _pipeline(_chunks(request, chunk_size(ctx)), request.app.state.engine, ctx)
+    first = await anext(answers, None)
     if first is None:
         raise Unprocessable("the body holds no request", code="empty_stream")
-    answer = await run_in_threadpool(score_chunk, engine, first, ctx)
-    if answer.error is not None and not answer.responses:
-        raise answer.error  # nothing answered yet: the error's own status
-    return _Stream(_answers(answer, reader, engine, ctx), media_type=NDJSON)
+    if first.error is not None and not first.responses:
+        raise first.error  # nothing answered yet: the error's own status
+    return _Stream(_lines_out(first, answers), media_type=NDJSON)
 
 
-async def _answers(
-    answer: ChunkAnswer, reader: AsyncIterator[Chunk], engine: Any, ctx: ScoringContext
+async def _pipeline(
+    reader: AsyncIterator[Chunk], engine: Any, ctx: ScoringContext
+) -> AsyncIterator[ChunkAnswer]:
+    """Each chunk's answer once committed, in order; the same pipeline as
+    ``bulk_scoring.score_all``: the next chunk is read while the current one is written, and
+    written only after the current one was answered without an error."""
+    first = await anext(reader, None)
+    running = None if first is None else _start(engine, first, ctx)
+    while running is not None:
+        upcoming = await anext(reader, None)
+        answer = await running
+        running = None
+        if answer.error is None and upcoming is not None:
+            running = _start(engine, upcoming, ctx)
+        yield answer
+        if answer.error is not None:
+            return
+
+
+def _start(engine: Any, chunk: Chunk, ctx: ScoringContext) -> asyncio.Future[ChunkAnswer]:
+    return asyncio.ensure_future(run_in_threadpool(score_chunk, engine, chunk, ctx))
+
+
+async def _lines_out(
+    first: ChunkAnswer, answers: AsyncIterator[ChunkAnswer]
 ) -> AsyncIterator[bytes]:
-    while True:
+    answer: ChunkAnswer | None = first
+    while answer is not None:
         if answer.responses:
             yield ("\n".join(answer.responses) + "\n").encode("utf-8")
         if answer.error is not None:
             yield _error_line(answer.error)
             return
-        chunk = await anext(reader, None)
-        if chunk is None:
-            return
         try:
-            answer = await run_in_threadpool(score_chunk, engine, chunk, ctx)
+            answer = await anext(answers, None)
         except SQLAlchemyError as exc:
             # The status went out with the first answers: the error handlers cannot answer
             # any more, so an unavailable database ends the stream with its error line.

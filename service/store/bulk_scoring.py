@@ -16,6 +16,7 @@ included (they are skipped); errors name it in their field (``line.7.score``).
 from __future__ import annotations
 
 from collections.abc import Iterable, Iterator
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import Any
 
@@ -130,9 +131,23 @@ def score_all(
     engine: Engine, lines: Iterable[Read], ctx: ScoringContext, size: int = CHUNK_ROWS
 ) -> Iterator[ChunkAnswer]:
     """Score ``lines`` chunk by chunk, handing back each chunk's answers once committed;
-    stops after the first answer that carries an error."""
-    for chunk in chunks(lines, chunk_size(ctx, size)):
-        answer = score_chunk(engine, chunk, ctx)
-        yield answer
-        if answer.error is not None:
-            return
+    stops after the first answer that carries an error.
+
+    Pipelined, one chunk ahead on each side and never further: the next chunk is read while
+    the current one is decided and written (on a worker thread), and it goes to the store
+    only once the current one was answered without an error, so nothing after a bad line
+    is written; it is written while the current answers are handed out.
+    """
+    pending = chunks(lines, chunk_size(ctx, size))
+    with ThreadPoolExecutor(1, thread_name_prefix="bulk-scoring") as pool:
+        first = next(pending, None)
+        running = None if first is None else pool.submit(score_chunk, engine, first, ctx)
+        while running is not None:
+            upcoming = next(pending, None)  # read while the current chunk is written
+            answer = running.result()
+            running = None
+            if answer.error is None and upcoming is not None:
+                running = pool.submit(score_chunk, engine, upcoming, ctx)
+            yield answer
+            if answer.error is not None:
+                return
