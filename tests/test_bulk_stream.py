@@ -216,3 +216,26 @@ def test_the_body_is_read_as_the_answers_go_out(
     assert reads_before == [2 * CHUNK, 3 * CHUNK, 3 * CHUNK + 2, 3 * CHUNK + 2]
     answered = [json.loads(x)["request_id"] for b in sent for x in b.splitlines()]
     assert answered == [b["request_id"] for b in bodies]
+
+
+def test_a_repeated_request_id_is_answered_as_a_replay_within_and_across_chunks(
+    client: TestClient,
+    tokens: dict[str, str],
+    publish: Callable[..., int],
+    session_factory: sessionmaker[Session],
+) -> None:
+    publish()
+    bodies = _requests(6)
+    # Line 3 repeats line 1 (same chunk), line 7 repeats line 2 (next chunk).
+    stream = [bodies[0], bodies[1], bodies[0], *bodies[2:], bodies[1]]
+    r = _stream(client, tokens["scoring"], _ndjson(stream))
+    lines = r.content.splitlines()
+    assert len(lines) == 8
+    assert lines[2] == lines[0] and lines[7] == lines[1]
+    assert count_rows(session_factory, "recommendations") == 6
+    # The same request_id with another body: the single route's conflict, on its line.
+    r = _stream(client, tokens["scoring"], _ndjson([bodies[2], {**bodies[0], "score": 0.9}]))
+    lines = r.content.splitlines()
+    assert len(lines) == 2
+    error = json.loads(lines[1])["error"]
+    assert (error["code"], error["field"]) == ("idempotency_conflict", "line.2.request_id")

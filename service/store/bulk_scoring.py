@@ -91,19 +91,28 @@ def chunk_size(ctx: ScoringContext, wanted: int = CHUNK_ROWS) -> int:
 def score_chunk(engine: Engine, chunk: Chunk, ctx: ScoringContext) -> ChunkAnswer:
     """Decide and record a chunk (committed before this returns). If the store refuses a
     request, the requests before it are recorded and answered, and the refusal is the error;
-    a reading problem comes after every request of the chunk."""
-    if not chunk.requests:
-        return ChunkAnswer([], 0, chunk.problem)
-    try:
-        responses, created = scoring.recommend_batch(engine, chunk.requests, ctx)
-    except BatchRefused as exc:
-        first = item_index(exc.details[0]["field"])  # the details are sorted by item
-        error = refused_line(chunk.lines[first], exc.details[0])
-        before = Chunk(chunk.requests[:first], chunk.lines[:first], error)
-        # Recorded without the refused request and all after it; if the store moved on
-        # meanwhile and refuses an earlier one, that one is the first error.
-        return score_chunk(engine, before, ctx)
-    return ChunkAnswer(responses, created, chunk.problem)
+    a reading problem comes after every request of the chunk. A request_id repeated within
+    the chunk is answered as a replay of its first use, as it would be in a later chunk (the
+    batch refuses repeats: the requests up to the repeat are recorded first)."""
+    requests, error = chunk.requests, chunk.problem
+    responses: list[str] = []
+    created = 0
+    start, end, limit = 0, len(requests), len(requests)
+    while start < end:
+        try:
+            out, new = scoring.recommend_batch(engine, requests[start:end], ctx)
+        except BatchRefused as exc:
+            detail = exc.details[0]  # the details are sorted by item: the first refused
+            at = start + item_index(detail["field"])
+            if detail["code"] != "duplicate_request_id":
+                error = refused_line(chunk.lines[at], detail)
+                limit = at
+            end = at  # record what comes before it (if the store moved on meanwhile and
+            continue  # refuses an earlier one, that one becomes the first error)
+        responses.extend(out)
+        created += new
+        start, end = end, limit
+    return ChunkAnswer(responses, created, error)
 
 
 Read = tuple[int, ScoreInput] | ServiceError
