@@ -12,8 +12,10 @@ from typing import Any
 
 import pytest
 from fastapi.testclient import TestClient
+from sqlalchemy import Engine, text
 from sqlalchemy.orm import Session, sessionmaker
 
+from service.app import create_app
 from service.settings import Settings
 from tests.helpers import TEST_SECRET, bearer, count_rows, make_request
 
@@ -239,3 +241,36 @@ def test_a_repeated_request_id_is_answered_as_a_replay_within_and_across_chunks(
     assert len(lines) == 2
     error = json.loads(lines[1])["error"]
     assert (error["code"], error["field"]) == ("idempotency_conflict", "line.2.request_id")
+
+
+def test_every_answer_is_committed_before_it_is_sent(
+    settings: Settings,
+    engine: Engine,
+    tokens: dict[str, str],
+    client: TestClient,
+    publish: Callable[..., int],
+) -> None:
+    """Watching the ASGI send channel: whenever answers go out, another connection already
+    sees at least as many records as lines were answered."""
+    publish()
+    app = create_app(settings)
+    seen: list[tuple[int, int]] = []
+    answered = 0
+
+    async def watching(scope: Any, receive: Any, send: Any) -> None:
+        async def watched_send(message: Any) -> None:
+            nonlocal answered
+            if message["type"] == "http.response.body" and message.get("body"):
+                answered += message["body"].count(b"\n")
+                with engine.connect() as conn:
+                    n = conn.execute(text("SELECT COUNT(*) FROM recommendations")).scalar_one()
+                seen.append((answered, int(n)))
+            await send(message)
+
+        await app(scope, receive, watched_send)
+
+    with TestClient(watching) as watched:  # type: ignore[arg-type]
+        r = _stream(watched, tokens["scoring"], _ndjson(_requests(3 * CHUNK + 1)))
+    assert r.status_code == 200
+    assert len(seen) == 4 and seen[-1][0] == 3 * CHUNK + 1
+    assert all(stored >= sent for sent, stored in seen), seen
