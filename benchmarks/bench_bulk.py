@@ -234,8 +234,16 @@ def run_floor(
     return {"seconds": timed, "rows_per_s": n / timed}
 
 
-def run_size(backend: str, n: int, workdir: Path, key: Path) -> dict[str, Any] | None:
-    env = {"EVENHAND_DRAW_SECRET": secrets.token_hex(32), "EVENHAND_SIGNING_KEY_FILE": str(key)}
+def run_size(
+    backend: str, n: int, workdir: Path, key: Path, seal_interval: float
+) -> dict[str, Any] | None:
+    env = {
+        "EVENHAND_DRAW_SECRET": secrets.token_hex(32),
+        "EVENHAND_SIGNING_KEY_FILE": str(key),
+        # The server's periodic sealer hashes what the stream writes, in the same process;
+        # the CLI leaves sealing to the server or job runner. Default: out of the run.
+        "EVENHAND_SEAL_INTERVAL_SECONDS": str(seal_interval),
+    }
     ndjson, table = write_inputs(n, workdir, str(demo_policy()["name"]))
     dbs = []
     try:
@@ -256,6 +264,7 @@ def run_size(backend: str, n: int, workdir: Path, key: Path) -> dict[str, Any] |
     result = {
         "backend": backend,
         "rows": n,
+        "seal_interval_seconds": seal_interval,
         "load_average_1m_at_start": round(load, 2),
         "load_average_1m_at_end": round(os.getloadavg()[0], 2),
         "route": route,
@@ -280,6 +289,13 @@ def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--backends", default="sqlite,postgresql")
     parser.add_argument("--rows", default="100000,1000000", help="comma-separated sizes")
+    parser.add_argument(
+        "--seal-interval",
+        type=float,
+        default=3600.0,
+        help="the route server's EVENHAND_SEAL_INTERVAL_SECONDS (default 3600: no sealing during "
+        "the run; the service's default is 5)",
+    )
     parser.add_argument("--json", type=Path, help="also write the figures to this file")
     args = parser.parse_args()
     machine = f"{platform.machine()}, {os.cpu_count()} cores, Python {platform.python_version()}"
@@ -294,7 +310,7 @@ def main() -> int:
                 workdir = Path(tmp) / f"{backend}-{n}"
                 for label in ("route", "cli", "floor"):
                     (workdir / label).mkdir(parents=True)
-                result = run_size(backend.strip(), n, workdir, key)
+                result = run_size(backend.strip(), n, workdir, key, args.seal_interval)
                 if result is not None:
                     results.append(result)
     report = {

@@ -61,29 +61,6 @@ class _Stream(StreamingResponse):
         await self.stream_response(send)
 
 
-async def _lines(body: AsyncIterator[bytes]) -> AsyncIterator[tuple[int, bytes | None]]:
-    """(line number, its bytes) for each line of ``body``; None for a line over the limit,
-    after which nothing more is read."""
-    buffer = bytearray()
-    number = 0
-    async for piece in body:
-        buffer += piece
-        start = 0
-        while (end := buffer.find(b"\n", start)) >= 0:
-            number += 1
-            if end - start > MAX_LINE_BYTES:
-                yield number, None
-                return
-            yield number, bytes(buffer[start:end])
-            start = end + 1
-        del buffer[:start]
-        if len(buffer) > MAX_LINE_BYTES:
-            yield number + 1, None
-            return
-    if buffer:
-        yield number + 1, bytes(buffer)
-
-
 def _too_long(number: int) -> LineRefused:
     return LineRefused(
         number, "line_too_long", f"is longer than {MAX_LINE_BYTES} bytes; is it one request?", None
@@ -122,17 +99,33 @@ def _line_problem(number: int, exc: ValidationError) -> LineRefused:
 
 
 async def _chunks(request: Request, size: int) -> AsyncIterator[Chunk]:
+    """The body's requests in chunks of ``size`` as it arrives (split piece by piece, not
+    line by line), up to the first bad line, whose refusal ends the last chunk."""
     pending: list[tuple[int, bytes]] = []
-    async for number, raw in _lines(request.stream()):
-        if raw is None:
-            chunk = _parse(pending) if pending else Chunk([], [])
-            yield Chunk(chunk.requests, chunk.lines, chunk.problem or _too_long(number))
-            return
-        if raw.strip():
+    number = 0
+    tail = b""
+    ended = False
+    stream = request.stream()
+    while not ended:
+        piece = await anext(stream, None)
+        if piece is None:
+            ended, parts = True, [tail]
+        else:
+            parts = (tail + piece).split(b"\n")
+            tail = parts.pop()
+        if len(tail) > MAX_LINE_BYTES:
+            ended, parts = True, [*parts, tail]
+        for raw in parts:
+            number += 1
+            if len(raw) > MAX_LINE_BYTES:
+                chunk = _parse(pending) if pending else Chunk([], [])
+                yield Chunk(chunk.requests, chunk.lines, chunk.problem or _too_long(number))
+                return
+            if not raw.strip():
+                continue
             pending.append((number, raw))
             if len(pending) == size:
-                chunk = _parse(pending)
-                pending = []
+                chunk, pending = _parse(pending), []
                 yield chunk
                 if chunk.problem is not None:
                     return
