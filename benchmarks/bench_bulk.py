@@ -86,6 +86,42 @@ def peak_rss_mib(pid: int) -> float:
     return float("nan")
 
 
+class RssTrace:
+    """Samples a process's resident set (``VmRSS``) twice a second while it runs; ``quarters``
+    is the largest sample in each quarter of the run (flat memory: four equal figures)."""
+
+    def __init__(self, pid: int) -> None:
+        self.pid = pid
+        self.samples: list[float] = []
+        self._stop = threading.Event()
+        self._thread = threading.Thread(target=self._run, daemon=True)
+
+    def _run(self) -> None:
+        status = Path(f"/proc/{self.pid}/status")
+        while not self._stop.wait(0.5):
+            try:
+                text = status.read_text()
+            except OSError:
+                return
+            for line in text.splitlines():
+                if line.startswith("VmRSS:"):
+                    self.samples.append(int(line.split()[1]) / 1024)
+
+    def __enter__(self) -> RssTrace:
+        self._thread.start()
+        return self
+
+    def __exit__(self, *_: object) -> None:
+        self._stop.set()
+        self._thread.join()
+
+    def quarters(self) -> list[float]:
+        n = len(self.samples)
+        if n < 4:
+            return []
+        return [round(max(self.samples[q * n // 4 : (q + 1) * n // 4]), 1) for q in range(4)]
+
+
 def stream_file(port: int, token: str, path: Path) -> tuple[float, int]:
     """(seconds, answer lines): send ``path`` while reading the chunked answer."""
     size = path.stat().st_size
@@ -141,14 +177,21 @@ def run_route(url: str, env: dict[str, str], n: int, workdir: Path, ndjson: Path
     tokens = prepare(url)
     with ServerProcess({**env, "EVENHAND_DATABASE_URL": url}, workdir / "route.log") as server:
         publish(server, tokens)
-        cpu_before = server_cpu_seconds(server.pid) or 0.0
-        seconds, lines = stream_file(server.port, tokens["scoring"], ndjson)
-        cpu = (server_cpu_seconds(server.pid) or 0.0) - cpu_before
         assert server.pid is not None
+        cpu_before = server_cpu_seconds(server.pid) or 0.0
+        with RssTrace(server.pid) as trace:
+            seconds, lines = stream_file(server.port, tokens["scoring"], ndjson)
+        cpu = (server_cpu_seconds(server.pid) or 0.0) - cpu_before
         rss = peak_rss_mib(server.pid)
     if lines != n:
         raise SystemExit(f"route answered {lines} lines for {n}")
-    return {"seconds": seconds, "rows_per_s": n / seconds, "cpu_s": cpu, "peak_rss_mib": rss}
+    return {
+        "seconds": seconds,
+        "rows_per_s": n / seconds,
+        "cpu_s": cpu,
+        "peak_rss_mib": rss,
+        "rss_by_quarter_mib": trace.quarters(),
+    }
 
 
 def run_cli(url: str, env: dict[str, str], n: int, workdir: Path, table: Path) -> dict[str, Any]:
@@ -162,7 +205,8 @@ def run_cli(url: str, env: dict[str, str], n: int, workdir: Path, table: Path) -
         [*command, "--out", str(out)],
         env={**os.environ, **env, "EVENHAND_DATABASE_URL": url, "EVENHAND_PROGRESS": "0"},
     )
-    _, status, usage = os.wait4(child.pid, 0)
+    with RssTrace(child.pid) as trace:
+        _, status, usage = os.wait4(child.pid, 0)
     seconds = time.perf_counter() - start
     if status != 0:
         raise SystemExit(f"evenhand score failed ({status})")
@@ -176,6 +220,7 @@ def run_cli(url: str, env: dict[str, str], n: int, workdir: Path, table: Path) -
         "rows_per_s": n / seconds,
         "cpu_s": usage.ru_utime + usage.ru_stime,
         "peak_rss_mib": usage.ru_maxrss / 1024,
+        "rss_by_quarter_mib": trace.quarters(),
     }
 
 
@@ -281,7 +326,8 @@ def run_size(
         f"route {route['rows_per_s']:>8,.0f}/s = {result['route_vs_floor']:.2f}x, server CPU "
         f"{route['cpu_s']:.1f} s, peak RSS {route['peak_rss_mib']:.0f} MiB | cli "
         f"{cli['rows_per_s']:>8,.0f}/s = {result['cli_vs_floor']:.2f}x, CPU {cli['cpu_s']:.1f} s, "
-        f"peak RSS {cli['peak_rss_mib']:.0f} MiB",
+        f"peak RSS {cli['peak_rss_mib']:.0f} MiB; RSS by quarter of the run: route "
+        f"{route['rss_by_quarter_mib']}, cli {cli['rss_by_quarter_mib']}",
         file=sys.stderr,
         flush=True,
     )
