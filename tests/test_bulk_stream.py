@@ -165,17 +165,12 @@ def test_refusals_before_any_answer_take_their_own_status(
     assert r.status_code == 403
 
 
-def test_the_body_is_read_as_the_answers_go_out(
-    client: TestClient, tokens: dict[str, str], publish: Callable[..., int]
-) -> None:
-    """Driven at the ASGI level, one line per body message: the answers go out while the
-    body is still being read, and no more than two chunks of the input are read ahead of
-    the answers (the one being written and the next one)."""
-    publish()
-    bodies = _requests(3 * CHUNK + 2)
-    pieces = [json.dumps(b).encode() + b"\n" for b in bodies]
+def _drive(client: TestClient, token: str, pieces: list[bytes]) -> tuple[list[str], list[bytes]]:
+    """Call the app at the ASGI level with the body in ``pieces``: ("read"/"sent" events in
+    order, the answer's body messages)."""
     events: list[str] = []
     sent: list[bytes] = []
+    pieces = list(pieces)
 
     async def receive() -> dict[str, Any]:
         piece = pieces.pop(0)
@@ -183,9 +178,7 @@ def test_the_body_is_read_as_the_answers_go_out(
         return {"type": "http.request", "body": piece, "more_body": bool(pieces)}
 
     async def send(message: dict[str, Any]) -> None:
-        if message["type"] == "http.response.start":
-            assert message["status"] == 200
-        elif message.get("body"):
+        if message.get("body"):
             events.append("sent")
             sent.append(message["body"])
 
@@ -200,7 +193,7 @@ def test_the_body_is_read_as_the_answers_go_out(
         "root_path": "",
         "query_string": b"",
         "headers": [
-            (b"authorization", f"Bearer {tokens['scoring']}".encode()),
+            (b"authorization", f"Bearer {token}".encode()),
             (b"content-type", b"application/x-ndjson"),
             (b"transfer-encoding", b"chunked"),
         ],
@@ -210,6 +203,20 @@ def test_the_body_is_read_as_the_answers_go_out(
     }
     assert client.portal is not None
     client.portal.call(client.app, scope, receive, send)
+    return events, sent
+
+
+def test_the_body_is_read_as_the_answers_go_out(
+    client: TestClient, tokens: dict[str, str], publish: Callable[..., int]
+) -> None:
+    """Driven at the ASGI level, one line per body message: the answers go out while the
+    body is still being read, and no more than two chunks of the input are read ahead of
+    the answers (the one being written and the next one)."""
+    publish()
+    bodies = _requests(3 * CHUNK + 2)
+    events, sent = _drive(
+        client, tokens["scoring"], [json.dumps(b).encode() + b"\n" for b in bodies]
+    )
     # One answer message per chunk: 4 + 4 + 4 + 2 lines.
     assert [len(b.splitlines()) for b in sent] == [CHUNK, CHUNK, CHUNK, 2]
     # How many lines were read before each answer went out: two chunks before the first
@@ -218,6 +225,24 @@ def test_the_body_is_read_as_the_answers_go_out(
     assert reads_before == [2 * CHUNK, 3 * CHUNK, 3 * CHUNK + 2, 3 * CHUNK + 2]
     answered = [json.loads(x)["request_id"] for b in sent for x in b.splitlines()]
     assert answered == [b["request_id"] for b in bodies]
+
+
+def test_lines_split_across_body_messages(
+    client: TestClient, tokens: dict[str, str], publish: Callable[..., int]
+) -> None:
+    publish()
+    bodies = _requests(6)
+    body = _ndjson(bodies).rstrip(b"\n")  # the last line without its line feed
+    _, sent = _drive(client, tokens["scoring"], [body[i : i + 7] for i in range(0, len(body), 7)])
+    answered = [json.loads(x)["request_id"] for b in sent for x in b.splitlines()]
+    assert answered == [b["request_id"] for b in bodies]
+    # A line over the limit, arriving in small pieces, is refused without being held whole.
+    long_line = b"x" * 70_000
+    pieces = [_ndjson(_requests(1))] + [long_line[i : i + 1000] for i in range(0, 70_000, 1000)]
+    events, sent = _drive(client, tokens["scoring"], pieces)
+    error = json.loads(sent[-1].splitlines()[-1])["error"]
+    assert (error["code"], error["field"]) == ("line_too_long", "line.2")
+    assert events.count("read") < len(pieces)  # stopped reading at the limit
 
 
 def test_a_repeated_request_id_is_answered_as_a_replay_within_and_across_chunks(

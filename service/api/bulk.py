@@ -103,18 +103,21 @@ async def _chunks(request: Request, size: int) -> AsyncIterator[Chunk]:
     line by line), up to the first bad line, whose refusal ends the last chunk."""
     pending: list[tuple[int, bytes]] = []
     number = 0
-    tail = b""
+    tail = bytearray()  # the unfinished line: appended to, so tiny pieces cost no copies
     ended = False
     stream = request.stream()
     while not ended:
         piece = await anext(stream, None)
+        parts: list[bytes] = []
         if piece is None:
-            ended, parts = True, [tail]
+            ended, parts = True, [bytes(tail)]
         else:
-            parts = (tail + piece).split(b"\n")
-            tail = parts.pop()
+            tail += piece
+            if b"\n" in piece:
+                parts = bytes(tail).split(b"\n")
+                tail = bytearray(parts.pop())
         if len(tail) > MAX_LINE_BYTES:
-            ended, parts = True, [*parts, tail]
+            ended, parts = True, [*parts, bytes(tail)]
         for raw in parts:
             number += 1
             if len(raw) > MAX_LINE_BYTES:
