@@ -11,6 +11,7 @@ import anyio.to_thread
 from fastapi import FastAPI
 
 from service.api import (
+    bulk,
     decisions,
     docs,
     health,
@@ -110,6 +111,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     # Every route that reads or writes the database may answer 503 database_unavailable.
     unavailable = error_responses(503)
     app.include_router(recommendations.router, responses=unavailable)
+    app.include_router(bulk.router, responses=unavailable)
     app.include_router(health.router)
     for router in (
         policies.router,
@@ -130,7 +132,11 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.include_router(metrics_router(settings.metrics_access), include_in_schema=False)
     app.state.request_metrics = RequestMetrics()
     app.state.db_metrics = DatabaseCollector(app.state)
-    app.add_middleware(BodySizeLimit, max_bytes=settings.max_body_bytes)
+    app.add_middleware(
+        BodySizeLimit,
+        max_bytes=settings.max_body_bytes,
+        unbounded_paths=frozenset({bulk.PATH}),  # bounded line by line instead
+    )
     # Outermost: every request gets an id and is timed, refusals included.
     app.add_middleware(
         RequestObserver, metrics=app.state.request_metrics, access_log_on=settings.access_log

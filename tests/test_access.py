@@ -23,6 +23,7 @@ ACCESS: dict[tuple[str, str], str] = {
     ("GET", "/readyz"): PUBLIC,
     ("POST", "/v1/recommendations"): "scoring",
     ("POST", "/v1/recommendations/batch"): "scoring",
+    ("POST", "/v1/recommendations/stream"): "scoring",
     ("GET", "/v1/policies"): "admin",
     ("POST", "/v1/policies/{name}/versions"): "admin",
     ("GET", "/v1/policies/{name}/versions"): "admin",

@@ -10,6 +10,7 @@ same 503.
 
 from __future__ import annotations
 
+import json
 import socket
 from collections.abc import Iterator
 from typing import Any
@@ -56,6 +57,9 @@ BODIES: dict[tuple[str, str], Any] = {
         "decided_at": AT,
     },
 }
+NDJSON: dict[tuple[str, str], bytes] = {
+    ("POST", "/v1/recommendations/stream"): json.dumps(make_request()).encode() + b"\n",
+}
 PARAMS: dict[tuple[str, str], dict[str, str]] = {
     ("GET", "/v1/policies/{name}/diff"): {"from": "1", "to": "2"},
     ("DELETE", "/v1/policies/{name}/shadow"): {"expected_current": "1"},
@@ -99,12 +103,12 @@ def test_every_route_answers_503_when_the_database_is_unreachable(
     wrong = []
     for (method, path), role in sorted(ACCESS.items()):
         headers = {} if role == PUBLIC else bearer(tokens[role])
+        body: dict[str, Any] = {"json": BODIES.get((method, path))}
+        if (method, path) in NDJSON:
+            body = {"content": NDJSON[(method, path)]}
+            headers["Content-Type"] = "application/x-ndjson"
         response = client.request(
-            method,
-            _url(path),
-            json=BODIES.get((method, path)),
-            params=PARAMS.get((method, path)),
-            headers=headers,
+            method, _url(path), params=PARAMS.get((method, path)), headers=headers, **body
         )
         if path == "/healthz":
             ok = response.status_code == 200  # liveness: the process is up

@@ -12,6 +12,7 @@ so they reach the store instead of stopping at "unknown policy". Deterministic
 from __future__ import annotations
 
 import itertools
+import json
 import math
 import time
 from collections import Counter
@@ -91,7 +92,7 @@ def _steer(case: Any, known: dict[str, str], suffix: str) -> None:
     query = case.query
     if isinstance(query, dict) and isinstance(query.get("case_id"), str):
         query["case_id"] = known["case_id"]  # the decisions of a stored case
-    bodies = case.body.get("items") if isinstance(case.body, dict) else None
+    bodies = case.body.get("items") if isinstance(case.body, dict) else case.body
     for body in [case.body, *(bodies if isinstance(bodies, list) else [])]:
         if not isinstance(body, dict):
             continue
@@ -143,6 +144,18 @@ def _check(case: Any, response: Any) -> None:
         response,
         checks=[not_a_server_error, status_code_conformance, response_schema_conformance],
     )
+
+
+@schemathesis.serializer("application/x-ndjson")
+def _ndjson_lines(_ctx: Any, value: Any) -> bytes:
+    """A streaming body (its schema: an array of its lines) as newline-delimited JSON."""
+    lines = value if isinstance(value, list) else [value]
+    return "".join(json.dumps(line) + "\n" for line in lines).encode()
+
+
+@schemathesis.deserializer("application/x-ndjson")
+def _ndjson_answers(_ctx: Any, response: Any) -> list[Any]:
+    return [json.loads(line) for line in response.content.splitlines() if line.strip()]
 
 
 @dataclass(frozen=True)

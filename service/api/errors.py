@@ -46,6 +46,7 @@ def error_responses(*statuses: int) -> dict[int | str, dict[str, Any]]:
         404: "Not found",
         409: "Conflict with the current state (lifecycle, idempotency)",
         413: "Body or batch too large",
+        415: "The body is not of the media type the route reads",
         422: "Invalid input: see error.field and error.details",
         503: "Unavailable for now (the database, or the server shutting down): retry after "
         "the Retry-After header's seconds",

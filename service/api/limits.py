@@ -3,7 +3,8 @@
 By ``Content-Length`` before a byte is read; a body without one (chunked) is counted as it
 streams in, buffered up to the limit and then handed to the application unchanged. A
 declared length within the limit is passed straight through: the HTTP server frames the
-body by that header and never delivers more.
+body by that header and never delivers more. Streaming routes (``unbounded_paths``) bound
+each line instead and are passed through unread.
 """
 
 from __future__ import annotations
@@ -14,9 +15,12 @@ from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 
 class BodySizeLimit:
-    def __init__(self, app: ASGIApp, max_bytes: int) -> None:
+    def __init__(
+        self, app: ASGIApp, max_bytes: int, unbounded_paths: frozenset[str] = frozenset()
+    ) -> None:
         self.app = app
         self.max_bytes = max_bytes
+        self.unbounded_paths = unbounded_paths
 
     async def _reject(self, send: Send) -> None:
         body = json.dumps(
@@ -44,7 +48,11 @@ class BodySizeLimit:
         await send({"type": "http.response.body", "body": body})
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
-        if scope["type"] != "http" or scope["method"] in ("GET", "HEAD", "OPTIONS"):
+        if (
+            scope["type"] != "http"
+            or scope["method"] in ("GET", "HEAD", "OPTIONS")
+            or scope["path"] in self.unbounded_paths
+        ):
             await self.app(scope, receive, send)
             return
         declared = -1

@@ -30,6 +30,10 @@ COMMANDS: dict[str, tuple[str, str]] = {
         "service.cli.derive",
         "derive a policy from calibration data under a parity criterion",
     ),
+    "score": (
+        "service.cli.score_csv",
+        "score a CSV file of cases into a CSV file of decisions (streamed, recorded)",
+    ),
     "schema": (
         "service.cli.schema",
         "the policy document's JSON Schema (service/policies/schema.json)",
