@@ -349,7 +349,7 @@ def recommend(conn: Connection, req: ScoreInput, ctx: ScoringContext) -> tuple[s
         d = evaluate(
             plan.document, plan.version, req.score, dict(req.attributes), req.case_id, ctx.secret
         )
-    except (ServiceError, PolicyError):
+    except ServiceError:
         existing = find_existing(conn, req)
         if existing is not None:
             return existing, False
@@ -366,7 +366,7 @@ def recommend(conn: Connection, req: ScoreInput, ctx: ScoringContext) -> tuple[s
     return existing, False
 
 
-GroupResult = tuple[str, bool] | ServiceError | PolicyError
+GroupResult = tuple[str, bool] | ServiceError
 """One request's outcome in a group: (response JSON, created), or the error it is refused with."""
 
 
@@ -560,7 +560,7 @@ def prepare_batch(
     at = positions if positions is not None else range(len(items))
     errors: list[dict[str, Any]] = []
 
-    def refuse(i: int, exc: ServiceError | PolicyError) -> None:
+    def refuse(i: int, exc: ServiceError) -> None:
         errors.append(item_problem(at[i], exc))
 
     seen: dict[str, int] = {}
