@@ -1,15 +1,24 @@
-"""One base error for everything the service refuses, rendered in one JSON shape.
+"""The one root of every refusal, :class:`ServiceError`, and its HTTP kinds.
 
-Every refusal becomes ``{"error": {"code", "message", "field", "details"}}`` with the status
-code of its class (see ``service.api.errors``). Codes are stable; messages say what to fix.
+Everything Evenhand refuses (a request, a policy document, a derive input, a CLI argument)
+is a ``ServiceError``: the policy engine's ``PolicyError`` (``service.policy.errors``) and
+the CLI's ``CliError`` derive from it. It is mapped once to HTTP (``service.api.errors``:
+``{"error": {"code", "message", "field", "details"}}`` with the status code of its class)
+and once to the CLI (``service.cli.common.exit_status``: one line, exit code 2). Codes are
+stable; messages say what to fix.
+
+This module imports nothing of the service (nor any third-party package), so the pure
+layers (``service.policy``, ``service.stats``) can derive from it.
 """
 
 from __future__ import annotations
 
-from typing import Any, Protocol
+from typing import Any
 
 
 class ServiceError(Exception):
+    """A refusal: something the caller can fix (or, for 503, retry)."""
+
     status_code = 400
     code = "bad_request"
 
@@ -95,15 +104,7 @@ def check_batch_size(count: int, limit: int) -> None:
         )
 
 
-class Refusal(Protocol):
-    """What every refusal carries: a service error or a policy engine error."""
-
-    code: str
-    message: str
-    field: str | None
-
-
-def item_problem(index: int, error: Refusal) -> dict[str, Any]:
+def item_problem(index: int, error: ServiceError) -> dict[str, Any]:
     """One refused item of a batch as an error detail: its own code and message, the field
     prefixed with ``items.<index>`` (``items.3.score``)."""
     field = error.field

@@ -1,8 +1,10 @@
 """The policy maths and the audit statistics stay pure: no database, HTTP, files or app code.
 
 ``service.policy`` and ``service.stats`` may import each other, the standard library, numpy
-and scipy, and pydantic (the policy document). Nothing above them (store, api, audit, cli,
-demo, reports) and no I/O framework. The check reads every module's imports with ``ast``.
+and scipy, and pydantic (the policy document), and ``service.errors`` (the one root of every
+refusal, which itself imports nothing but the standard library). Nothing above them (store,
+api, audit, cli, demo, reports) and no I/O framework. The check reads every module's imports
+with ``ast``.
 """
 
 from __future__ import annotations
@@ -15,7 +17,7 @@ import pytest
 ROOT = Path(__file__).resolve().parents[1]
 PURE = ("policy", "stats")
 ALLOWED_THIRD_PARTY = {"numpy", "scipy", "pydantic"}
-ALLOWED_SERVICE = {f"service.{p}" for p in PURE}
+ALLOWED_SERVICE = {f"service.{p}" for p in PURE} | {"service.errors"}
 STDLIB_IO = {"sqlite3", "socket", "http", "urllib", "subprocess", "shutil"}
 
 
@@ -57,3 +59,9 @@ def test_the_check_sees_the_modules() -> None:
     # vacuously).
     assert any(p.name == "derive.py" for p in MODULES)
     assert any(p.name == "proportions.py" for p in MODULES)
+
+
+def test_the_error_root_imports_only_the_standard_library() -> None:
+    # The pure layers derive their errors from it, so it must not pull anything in.
+    bad = [n for n in _imports(ROOT / "service" / "errors.py") if not _is_stdlib(n.split(".")[0])]
+    assert not bad, f"service/errors.py imports {bad}"

@@ -1,10 +1,16 @@
 """Request dependencies: the database session and the bearer-token role check.
 
 Routers use ``DbSession`` for the session (``ReadSession`` when the route only reads) and
-``require_role("audit")`` (or several roles) for access. The session never commits on its
-own: a route that writes calls ``session.commit()`` itself before it returns, so the write is
-durable before the response is sent (FastAPI runs the exit code of yield dependencies only
-after the response by default).
+``require_role("audit")`` (or several roles) for access.
+
+The transaction rule: the request's session is committed here when the route returns and
+rolled back when it raises; routes, services and repositories never commit or roll back.
+Both sessions are declared with ``scope="function"``, so FastAPI runs this exit code right
+after the route function has returned and its response has been built, but before the
+response is sent (the default, ``scope="request"``, would run it after the response). A
+commit that fails therefore raises before anything is sent: the client gets the error
+(``service.api.errors``: 503 when the database is unavailable, else 500), never a 2xx for
+a write that was not made durable.
 """
 
 from __future__ import annotations
@@ -31,13 +37,16 @@ def get_settings(request: Request) -> Settings:
 
 
 def get_session(request: Request) -> Iterator[Session]:
+    """The request's one transaction: committed when the route returns, rolled back (and
+    nothing of it kept) when the route or its response raises."""
     factory: sessionmaker[Session] = request.app.state.session_factory
-    session = factory()
-    try:
-        yield session
-    finally:
-        # Anything not committed by the route is rolled back here.
-        session.close()
+    with factory() as session:
+        try:
+            yield session
+        except BaseException:
+            session.rollback()
+            raise
+        session.commit()
 
 
 def get_read_session(request: Request) -> Iterator[Session]:

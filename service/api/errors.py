@@ -15,7 +15,6 @@ from starlette.exceptions import HTTPException as StarletteHTTPException
 from service.api.fields import SLUG_PATTERN
 from service.errors import ServiceError, ServiceUnavailable
 from service.policy.attributes import NAME_PATTERN, TEXT_PATTERN, VALUE_PATTERN, control_character
-from service.policy.errors import PolicyError
 from service.store.db import DatabaseUnavailable, is_unavailable
 
 log = logging.getLogger("evenhand.api")
@@ -137,6 +136,7 @@ def service_error_response(exc: ServiceError) -> JSONResponse:
 def install_error_handlers(app: FastAPI) -> None:
     @app.exception_handler(ServiceError)
     async def _service_error(_request: Request, exc: ServiceError) -> JSONResponse:
+        # Every refusal, the policy engine's included: the one root (service.errors).
         return service_error_response(exc)
 
     @app.exception_handler(SQLAlchemyError)
@@ -148,10 +148,6 @@ def install_error_handlers(app: FastAPI) -> None:
             return service_error_response(DatabaseUnavailable())
         log.error("database error: %s", type(exc).__name__, exc_info=exc)
         return error_json(500, "internal_error", "internal error; the request was not recorded")
-
-    @app.exception_handler(PolicyError)
-    async def _policy_error(_request: Request, exc: PolicyError) -> JSONResponse:
-        return error_json(422, exc.code, exc.message, exc.field)
 
     @app.exception_handler(RequestValidationError)
     async def _request_validation(_request: Request, exc: RequestValidationError) -> JSONResponse:

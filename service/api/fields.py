@@ -13,9 +13,20 @@ from datetime import UTC, datetime
 from typing import Annotated, Any
 
 from fastapi import Path
-from pydantic import AfterValidator, AwareDatetime, BeforeValidator, Field, StringConstraints
+from pydantic import (
+    AfterValidator,
+    AwareDatetime,
+    BeforeValidator,
+    Field,
+    PlainSerializer,
+    PlainValidator,
+    StringConstraints,
+    WithJsonSchema,
+)
 from pydantic_core import PydanticCustomError
 
+from service.audit.month import Month
+from service.errors import ServiceError
 from service.policy.attributes import (
     MAX_NAME_CHARS,
     MAX_VALUE_CHARS,
@@ -91,3 +102,26 @@ def _in_utc(value: datetime) -> datetime:
 
 Instant = Annotated[AwareDatetime, AfterValidator(_in_utc)]
 """A moment with its UTC offset, kept in UTC."""
+
+
+MONTH_PATTERN = r"^\d{4}-(0[1-9]|1[0-2])$"
+
+
+def _month(value: Any) -> Month:
+    if isinstance(value, Month):
+        return value
+    if not isinstance(value, str):
+        raise PydanticCustomError("month_type", "a month is text of the form YYYY-MM")
+    try:
+        return Month.parse(value)
+    except ServiceError as exc:
+        raise PydanticCustomError("month", "{reason}", {"reason": exc.message}) from None
+
+
+MonthField = Annotated[
+    Month,
+    PlainValidator(_month),
+    PlainSerializer(str, return_type=str),
+    WithJsonSchema({"type": "string", "pattern": MONTH_PATTERN, "examples": ["2026-10"]}),
+]
+"""A calendar month in a body, ``YYYY-MM``: parsed into a :class:`Month` at the edge."""

@@ -6,7 +6,7 @@ from __future__ import annotations
 from datetime import datetime
 from typing import Annotated
 
-from fastapi import APIRouter, Path, Request
+from fastapi import APIRouter, BackgroundTasks, Path, Request
 from pydantic import BaseModel, ConfigDict, Field
 
 from service.api.deps import AdminKey, DbSession, KeyCache, ReadSession
@@ -69,12 +69,19 @@ def list_keys(session: ReadSession, _key: AdminKey) -> list[KeyOut]:
     summary="Revoke a key (not the last live admin key); a repeat answers as the first time",
 )
 def revoke_key(
-    name: KeyName, body: RevokeBody, request: Request, session: DbSession, key: AdminKey
+    name: KeyName,
+    body: RevokeBody,
+    request: Request,
+    tasks: BackgroundTasks,
+    session: DbSession,
+    key: AdminKey,
 ) -> KeyOut:
     view = keys.revoke_key(session, name, body.reason, key.actor, keep_an_admin=True)
-    session.commit()
     # This process stops trusting the key at once; others within EVENHAND_AUTH_CACHE_SECONDS.
+    # Cleared now and again once the response is sent (after the commit), so a request that
+    # read the key as live in between does not keep it cached.
     cache: KeyCache | None = getattr(request.app.state, "key_cache", None)
     if cache is not None:
         cache.clear()
+        tasks.add_task(cache.clear)
     return KeyOut.of(view)

@@ -1,7 +1,7 @@
 """Feedback (scoring role): outcomes as they mature, and the person's final decision.
 
 201 when something was written, 200 when the request repeated what is already on record.
-Each route commits before it answers.
+The request's session commits before the response is sent (``service.api.deps``).
 """
 
 from __future__ import annotations
@@ -10,7 +10,6 @@ from datetime import timedelta
 
 from fastapi import APIRouter, Request, Response
 from fastapi.concurrency import run_in_threadpool
-from sqlalchemy.exc import IntegrityError
 from sqlalchemy.orm import Session
 
 from service.api.batch_body import ParsedBatch, documented_body, parse_batch
@@ -29,6 +28,7 @@ from service.errors import BatchRefused, check_batch_size, item_problem
 from service.log.records import format_timestamp
 from service.store import feedback
 from service.store.feedback import FinalReport, ItemsRefused, OutcomeReport, OutcomeResult
+from service.store.stored_meanwhile import in_savepoint
 
 router = APIRouter(tags=["feedback"], responses=error_responses(400, 401, 403, 404, 409, 413, 422))
 
@@ -48,15 +48,8 @@ def _report(body: OutcomeRequest) -> OutcomeReport:
 def _apply(
     session: Session, items: list[OutcomeReport], actor: str, skew: timedelta
 ) -> list[OutcomeResult]:
-    try:
-        results = feedback.record_outcomes(session, items, actor, skew)
-        session.commit()
-    except IntegrityError:
-        # A concurrent request recorded one of these outcomes first: decide again against it.
-        session.rollback()
-        results = feedback.record_outcomes(session, items, actor, skew)
-        session.commit()
-    return results
+    # A concurrent request recorded one of these outcomes first: decide again against it.
+    return in_savepoint(session, lambda: feedback.record_outcomes(session, items, actor, skew))
 
 
 def _out(r: OutcomeResult) -> OutcomeResponse:
@@ -127,9 +120,7 @@ def _record_batch(
         feedback.record_outcomes(session, reports, actor, skew)
     except ItemsRefused as exc:
         problems += [item_problem(batch.positions[i], err) for i, err in exc.failures]
-    finally:
-        session.rollback()
-    raise BatchRefused(problems, batch.total)
+    raise BatchRefused(problems, batch.total)  # the session dependency rolls it all back
 
 
 @router.post(
@@ -154,13 +145,10 @@ def post_final(
         decided_by=body.decided_by,
     )
     skew = settings.clock_skew
-    try:
-        result = feedback.record_final(session, recommendation_id, report, key.name, skew)
-        session.commit()
-    except IntegrityError:
-        session.rollback()
-        result = feedback.record_final(session, recommendation_id, report, key.name, skew)
-        session.commit()
+    result = in_savepoint(
+        session,
+        lambda: feedback.record_final(session, recommendation_id, report, key.name, skew),
+    )
     if result.status == "unchanged":
         response.status_code = 200
     return FinalResponse(

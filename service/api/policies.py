@@ -41,7 +41,6 @@ def submit_version(
     name: Name, document: PolicyDocument, session: DbSession, key: AdminKey
 ) -> VersionSummary:
     view = lifecycle.submit(session, name, document, key.actor)
-    session.commit()
     return VersionSummary.of(view)
 
 
@@ -84,7 +83,6 @@ def approve_version(
     name: Name, version: Version, session: DbSession, key: AdminKey
 ) -> VersionSummary:
     view = lifecycle.approve(session, name, version, key.actor)
-    session.commit()
     return VersionSummary.of(view)
 
 
@@ -93,7 +91,6 @@ def activate(name: Name, body: ActivateBody, session: DbSession, key: AdminKey) 
     view = lifecycle.activate(
         session, name, body.version, key.actor, body.reason, expected_current=body.expected_current
     )
-    session.commit()
     return VersionSummary.of(view)
 
 
@@ -110,7 +107,6 @@ def rollback(name: Name, body: RollbackBody, session: DbSession, key: AdminKey) 
         body.to_version,
         expected_current=body.expected_current,
     )
-    session.commit()
     return VersionSummary.of(view)
 
 
@@ -157,7 +153,6 @@ def set_shadow(name: Name, body: ShadowBody, session: DbSession, key: AdminKey) 
     shadow = lifecycle.set_shadow(
         session, name, body.version, key.actor, expected_current=body.expected_current
     )
-    session.commit()
     return ShadowOut.of(shadow)
 
 
@@ -177,5 +172,4 @@ def clear_shadow(
     ],
 ) -> Response:
     lifecycle.clear_shadow(session, name, key.actor, expected_current=expected_current)
-    session.commit()
     return Response(status_code=204)

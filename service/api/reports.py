@@ -15,9 +15,9 @@ from typing import Annotated, Any, Literal
 from fastapi import APIRouter, Query, Response
 from pydantic import BaseModel, ConfigDict, Field
 
-from service.api.deps import AppSettings, AuditKey, DbSession
+from service.api.deps import AppSettings, AuditKey, DbSession, ReadSession
 from service.api.errors import error_responses
-from service.api.fields import INT32_MAX, PolicyName, PolicyPath
+from service.api.fields import INT32_MAX, MonthField, PolicyName, PolicyPath
 from service.audit.history import history_csv, history_rows, load_snapshots
 from service.audit.job import run_audit
 from service.audit.month import Month
@@ -27,8 +27,7 @@ from service.audit.reports import get_snapshot, list_reports
 from service.audit.snapshot_model import AlertRow
 from service.audit.verdicts import DEFAULT_MIN_COUNT
 from service.errors import NotFound
-from service.policy.values import GroupKey
-from service.store.db import begin_read_only
+from service.policy.values import GroupKey, Tolerance
 
 router = APIRouter(tags=["audit"], responses=error_responses(401, 403, 404, 422))
 
@@ -39,16 +38,14 @@ class AuditRequest(BaseModel):
     model_config = ConfigDict(extra="forbid")
 
     policy: PolicyName
-    month: str = Field(pattern=r"^\d{4}-(0[1-9]|1[0-2])$", examples=["2026-10"])
+    month: MonthField
     reference_group: GroupKey | None = Field(
         default=None,
         description="group every gap is taken against and the four-fifths comparator "
         "(default: each version's own; must be a group of the policy)",
     )
-    tolerance: float | None = Field(
+    tolerance: Tolerance | None = Field(
         default=None,
-        gt=0.0,
-        le=0.5,
         description="tolerance of every check (default: each version's targets.tolerance)",
     )
     min_count: int = Field(default=DEFAULT_MIN_COUNT, ge=1, le=100_000)
@@ -83,7 +80,7 @@ def post_audit(
     run = run_audit(
         session,
         body.policy,
-        Month.parse(body.month),
+        body.month,
         time_zone=settings.timezone,
         actor=key.name,
         reference_group=body.reference_group,
@@ -91,7 +88,6 @@ def post_audit(
         min_count=body.min_count,
         provisional=body.provisional,
     )
-    session.commit()
     s = run.snapshot
     return AuditResponse(
         snapshot_id=run.snapshot_id,
@@ -106,8 +102,7 @@ def post_audit(
 
 
 @router.get("/v1/reports/{policy}", summary="Months and snapshots of a policy")
-def get_reports(policy: PolicyPath, session: DbSession, _key: AuditKey) -> dict[str, Any]:
-    begin_read_only(session)
+def get_reports(policy: PolicyPath, session: ReadSession, _key: AuditKey) -> dict[str, Any]:
     return list_reports(session, policy)
 
 
@@ -124,7 +119,7 @@ def get_reports(policy: PolicyPath, session: DbSession, _key: AuditKey) -> dict[
 )
 def get_history(
     policy: PolicyPath,
-    session: DbSession,
+    session: ReadSession,
     _key: AuditKey,
     first: Annotated[str, Query(alias="from", pattern=r"^\d{4}-\d{2}$", examples=["2026-01"])],
     last: Annotated[str, Query(alias="to", pattern=r"^\d{4}-\d{2}$", examples=["2026-12"])],
@@ -134,7 +129,6 @@ def get_history(
         Query(description="published (small cells suppressed) or internal (every count)"),
     ] = "published",
 ) -> Response:
-    begin_read_only(session)
     snapshots = load_snapshots(
         session, policy, Month.parse(first, "from"), Month.parse(last, "to"), view
     )
@@ -172,7 +166,7 @@ def get_history(
 def get_report(
     policy: PolicyPath,
     month_file: str,
-    session: DbSession,
+    session: ReadSession,
     _key: AuditKey,
     snapshot: Annotated[int | None, Query(ge=1, le=INT32_MAX, description="a snapshot id")] = None,
     view: Annotated[
@@ -187,7 +181,6 @@ def get_report(
             code="report_not_found",
         )
     month, kind = Month.parse(m.group(1)), m.group(2) or "json"
-    begin_read_only(session)
     content = get_snapshot(session, policy, month, snapshot, view)
     headers = {"X-Evenhand-Digest": content.digest, "X-Evenhand-View": view}
     suffix = "" if view == "published" else "-internal"

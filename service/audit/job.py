@@ -9,6 +9,8 @@ ever looks clean for lack of data.
 from __future__ import annotations
 
 import sys
+from collections.abc import Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from typing import Any
@@ -77,38 +79,40 @@ def _check_reference(
         )
 
 
-def run_audit(
-    session: Session,
+@contextmanager
+def _reader(session: Session) -> Iterator[Session]:
+    """Where the counts are read. A caller without a transaction gets a read-only session of
+    its own (on SQLite a WAL snapshot without the write lock, so scoring goes on while a
+    month is counted); the caller's session then holds only the short write of the
+    snapshot, and its transaction is never begun, ended or rolled back here. A caller
+    already in a transaction is read in it (it sees what that transaction wrote)."""
+    if session.in_transaction():
+        yield session
+        return
+    with Session(bind=session.get_bind()) as reader:
+        begin_read_only(reader)
+        yield reader
+
+
+def _count_and_build(
+    reader: Session,
     policy: str,
     month: Month,
+    start: datetime,
+    end: datetime,
+    time_zone: str,
+    now: datetime,
+    progress: Progress,
     *,
-    time_zone: str = "UTC",
-    actor: str = "cli",
-    reference_group: str | None = None,
-    tolerance: float | None = None,
-    min_count: int = DEFAULT_MIN_COUNT,
-    provisional: bool = False,
-    progress: Progress = quiet,
-    now: datetime | None = None,
-) -> AuditRun:
-    """Audit ``policy`` for ``month`` and add the snapshot (the caller commits)."""
-    start, end = month.bounds(time_zone)
-    now = now or datetime.now(UTC)
-    if start > now:
-        raise Unprocessable(
-            f"{month} has not begun in {time_zone}: nothing to audit yet",
-            field="month",
-            code="future_month",
-        )
-    # Count in a read-only transaction (on SQLite: no write lock, so scoring goes on), then
-    # write the snapshot in a short transaction of its own.
-    reading = not session.in_transaction()
-    if reading:
-        begin_read_only(session)
-    known = session.scalar(select(func.count()).where(PolicyVersion.name == policy))
+    reference_group: str | None,
+    tolerance: float | None,
+    min_count: int,
+    provisional: bool,
+) -> tuple[AuditResult, list[VersionCounts]]:
+    known = reader.scalar(select(func.count()).where(PolicyVersion.name == policy))
     if not known:
         raise NotFound(f"unknown policy {policy!r}", code="unknown_policy", field="policy")
-    purged = purged_through_month(session)
+    purged = purged_through_month(reader)
     if purged is not None and month <= purged:
         raise Unprocessable(
             f"the decisions of {month} were purged (retention: the log's personal records are "
@@ -120,7 +124,7 @@ def run_audit(
     span = f"{start:%Y-%m-%d %H:%M}Z to {end:%Y-%m-%d %H:%M}Z"
     progress(f"auditing {policy} for {month} ({time_zone}): {span}")
     try:
-        per_version = by_version(count_month(session, policy, start, end, time_zone, progress))
+        per_version = by_version(count_month(reader, policy, start, end, time_zone, progress))
     except (ValueError, TypeError, KeyError) as exc:
         raise LogInconsistent(
             f"the counts of {policy} for {month} contradict each other ({exc}): the log was "
@@ -132,7 +136,7 @@ def run_audit(
             field="month",
             code="empty_month",
         )
-    documents = _load_documents(session, policy)
+    documents = _load_documents(reader, policy)
     seen = {g for view in per_version.values() for g in view.cells}
     _check_reference(reference_group, documents, seen)
     versions = []
@@ -156,8 +160,7 @@ def run_audit(
                 {g: c for g, c in zones.items() if c is not None},
             )
         )
-    history = month_history(session, policy, month, {v.version for v in versions})
-    created = now
+    history = month_history(reader, policy, month, {v.version for v in versions})
     result = build(
         AuditInput(
             policy=policy,
@@ -165,7 +168,7 @@ def run_audit(
             time_zone=time_zone,
             cohort_from=start,
             cohort_until=end,
-            created_at=created,
+            created_at=now,
             code_version=__version__,
             versions=versions,
             reference_group=reference_group,
@@ -176,15 +179,54 @@ def run_audit(
         ),
         now,
     )
-    if reading:
-        session.rollback()
+    return result, versions
+
+
+def run_audit(
+    session: Session,
+    policy: str,
+    month: Month,
+    *,
+    time_zone: str = "UTC",
+    actor: str = "cli",
+    reference_group: str | None = None,
+    tolerance: float | None = None,
+    min_count: int = DEFAULT_MIN_COUNT,
+    provisional: bool = False,
+    progress: Progress = quiet,
+    now: datetime | None = None,
+) -> AuditRun:
+    """Audit ``policy`` for ``month`` and add the snapshot (the caller commits)."""
+    start, end = month.bounds(time_zone)
+    now = now or datetime.now(UTC)
+    if start > now:
+        raise Unprocessable(
+            f"{month} has not begun in {time_zone}: nothing to audit yet",
+            field="month",
+            code="future_month",
+        )
+    with _reader(session) as reader:
+        result, versions = _count_and_build(
+            reader,
+            policy,
+            month,
+            start,
+            end,
+            time_zone,
+            now,
+            progress,
+            reference_group=reference_group,
+            tolerance=tolerance,
+            min_count=min_count,
+            provisional=provisional,
+        )
     published = result.published
     total_n = sum(c.n for v in versions for c in v.cells.values())
     total_obs = sum(c.observed for v in versions for c in v.cells.values())
     row = AuditSnapshot(
         policy=policy,
         month=str(month),
-        created_at=created,
+        created_at=now,
         created_by=actor,
         time_zone=time_zone,
         code_version=__version__,

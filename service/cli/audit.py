@@ -13,8 +13,7 @@ from datetime import UTC, datetime
 from typing import TYPE_CHECKING
 
 from service.audit.month import Month
-from service.cli.common import CliError
-from service.errors import ServiceError
+from service.cli.common import CliError, tolerance_arg
 
 if TYPE_CHECKING:
     from service.settings import Settings
@@ -36,6 +35,7 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
     run.add_argument("--policy", required=True, help="policy name")
     run.add_argument(
         "--month",
+        type=Month.parse,
         help="calendar month YYYY-MM in the configured time zone (default: the previous month)",
     )
     run.add_argument(
@@ -45,7 +45,7 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
     )
     run.add_argument(
         "--tolerance",
-        type=float,
+        type=tolerance_arg,
         help="tolerance of every check, > 0 and <= 0.5 (default: each version's targets.tolerance)",
     )
     run.add_argument(
@@ -76,29 +76,23 @@ def _run_once(args: argparse.Namespace, settings: Settings) -> None:
     from service.audit.job import run_audit, stderr_progress
     from service.store.db import create_db_engine, create_session_factory
 
-    try:
-        month = Month.parse(args.month) if args.month else last_month(settings.timezone)
-    except ServiceError as exc:
-        raise CliError(exc.message) from None
+    month = args.month or last_month(settings.timezone)
     factory = create_session_factory(create_db_engine(settings))
     started = time.perf_counter()
     with factory() as session:
-        try:
-            run = run_audit(
-                session,
-                args.policy,
-                month,
-                time_zone=settings.timezone,
-                actor="cli",
-                reference_group=args.reference,
-                tolerance=args.tolerance,
-                min_count=args.min_count,
-                provisional=args.provisional,
-                progress=stderr_progress,
-            )
-        except ServiceError as exc:
-            raise CliError(exc.message) from None
-        session.commit()
+        run = run_audit(
+            session,
+            args.policy,
+            month,
+            time_zone=settings.timezone,
+            actor="cli",
+            reference_group=args.reference,
+            tolerance=args.tolerance,
+            min_count=args.min_count,
+            provisional=args.provisional,
+            progress=stderr_progress,
+        )
+        session.commit()  # the command is the entry point: it commits
     stderr_progress(f"done in {time.perf_counter() - started:.2f} s")
     s = run.snapshot
     print(
@@ -117,8 +111,6 @@ def _run(args: argparse.Namespace) -> int:
     settings = Settings()
     if args.min_count < 1:
         raise CliError("--min-count must be at least 1")
-    if args.tolerance is not None and not 0 < args.tolerance <= 0.5:
-        raise CliError("--tolerance must be greater than 0 and at most 0.5")
     if args.every is None:
         _run_once(args, settings)
         return 0

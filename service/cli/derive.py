@@ -21,7 +21,7 @@ from typing import Any
 from pydantic import ValidationError
 
 from service.cli.calibration_csv import load_calibration
-from service.cli.common import CliError
+from service.cli.common import CliError, tolerance_arg
 from service.cli.derive_text import console_table
 from service.cli.output import check_targets, write_all
 from service.cli.progress import CountBar
@@ -44,10 +44,10 @@ from service.policy.promise_spread import (
 )
 from service.policy.targets import Criterion
 from service.policy.units import DeriveError, DeriveSettings, prepare
+from service.policy.values import MAX_TOLERANCE
 
 _SLUG = re.compile(r"^[a-z0-9][a-z0-9._-]{0,63}$")
 DEFAULT_MIN_GROUP_SIZE = 50
-MAX_TOLERANCE = 0.5
 
 
 def _check_non_negative(option: str, value: float) -> None:
@@ -75,7 +75,7 @@ def register(sub: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
     p.add_argument(
         "--tolerance",
         required=True,
-        type=float,
+        type=tolerance_arg,
         help=f"largest gap that keeps the promise, in (0, {MAX_TOLERANCE}]: between groups "
         "(gap criteria) and between realized and promised rates",
     )
@@ -160,12 +160,6 @@ def _check_args(args: argparse.Namespace) -> None:
     _check_non_negative("--cost-fn", args.cost_fn)
     if args.cost_fp == 0 and args.cost_fn == 0:
         raise CliError("--cost-fp and --cost-fn cannot both be 0")
-    if not (math.isfinite(args.tolerance) and 0 < args.tolerance <= MAX_TOLERANCE):
-        raise CliError(
-            f"--tolerance {args.tolerance}: must be > 0 and <= {MAX_TOLERANCE} (the largest "
-            "gap, between groups and between realized and promised rates, that keeps the "
-            "promise)"
-        )
     if args.capacity is not None and not (math.isfinite(args.capacity) and 0 < args.capacity <= 1):
         raise CliError(f"--capacity {args.capacity}: must be > 0 and <= 1")
     if args.folds < 2:
@@ -240,8 +234,6 @@ def run(args: argparse.Namespace) -> int:
                 raise DeriveError(f"the bootstrap of the promises failed: {why}")
         policy = build_document(prepared, solution, cross, identity, spread)
         front = frontier(prepared, criterion, FRONTIER_TOLERANCES, **options)
-    except DeriveError as exc:
-        raise CliError(exc.message) from None
     except InternalDeriveError as exc:
         raise CliError(f"{exc} (a defect in evenhand, not in the data; please report it)") from None
     except ValidationError as exc:

@@ -10,8 +10,6 @@ from __future__ import annotations
 import argparse
 from typing import Any
 
-from service.cli.common import CliError
-from service.errors import ServiceError
 from service.settings import Settings
 from service.store import keys
 from service.store.db import create_db_engine, create_session_factory
@@ -39,11 +37,8 @@ def _factory() -> Any:
 
 def create(args: argparse.Namespace) -> int:
     with _factory()() as session:
-        try:
-            key, token = keys.create_key(session, args.name, args.role, keys.operator_name())
-            session.commit()
-        except ServiceError as exc:
-            raise CliError(exc.message) from None
+        key, token = keys.create_key(session, args.name, args.role, keys.operator_name())
+        session.commit()
     print(f"created {key.role} key {key.name!r}; the token is shown only once:")
     print(token)
     return 0
@@ -51,14 +46,11 @@ def create(args: argparse.Namespace) -> int:
 
 def revoke(args: argparse.Namespace) -> int:
     with _factory()() as session:
-        try:
-            view = keys.revoke_key(
-                session, args.name, args.reason, keys.operator_name(), keep_an_admin=False
-            )
-            left = keys.live_admin_count(session)
-            session.commit()
-        except ServiceError as exc:
-            raise CliError(exc.message) from None
+        view = keys.revoke_key(
+            session, args.name, args.reason, keys.operator_name(), keep_an_admin=False
+        )
+        left = keys.live_admin_count(session)
+        session.commit()
     at = f"{view.revoked_at:%Y-%m-%d %H:%M:%S}" if view.revoked_at else "?"
     print(f"revoked {view.role} key {view.name!r} (at {at} UTC by {view.revoked_by})")
     if left == 0:

@@ -103,7 +103,9 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
         "manifest. The month must be audited and its snapshot sealed. Format: docs/bundle.md.",
     )
     bundle.add_argument("--policy", required=True, metavar="NAME", help="the policy")
-    bundle.add_argument("--month", required=True, metavar="YYYY-MM", help="the audited month")
+    bundle.add_argument(
+        "--month", required=True, type=Month.parse, metavar="YYYY-MM", help="the audited month"
+    )
     bundle.add_argument("--out", required=True, metavar="FILE", help="the file to create")
     bundle.set_defaults(handler=_bundle)
 
@@ -119,7 +121,11 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
         "itself a record of the log, sealed at once when a signing key is configured.",
     )
     purge.add_argument(
-        "--through", required=True, metavar="YYYY-MM", help="the last month to purge"
+        "--through",
+        required=True,
+        type=Month.parse,
+        metavar="YYYY-MM",
+        help="the last month to purge",
     )
     purge.add_argument(
         "--dry-run", action="store_true", help="say what would be purged, delete nothing"
@@ -295,7 +301,7 @@ def _consistency(args: argparse.Namespace) -> int:
 def _bundle(args: argparse.Namespace) -> int:
     from service.store.bundle_export import export_month
 
-    month = Month.parse(args.month)
+    month: Month = args.month
     target = Path(args.out)
     if target.exists():
         raise CliError(f"{target} exists: choose a new file")
@@ -332,7 +338,7 @@ def _describe(plan: retention.PurgePlan) -> str:
 
 def _purge(args: argparse.Namespace) -> int:
     settings = Settings()
-    month = Month.parse(args.through, field="through")
+    month: Month = args.through
     factory = _factory(settings)
 
     def run(dry_run: bool) -> retention.PurgeSummary:

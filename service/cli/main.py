@@ -7,7 +7,7 @@ import importlib
 import sys
 from collections.abc import Sequence
 
-from service.cli.common import CliError
+from service.cli.common import USER_ERROR_EXIT, refusal_line
 
 COMMANDS: dict[str, tuple[str, str]] = {
     "serve": ("service.cli.serve", "run the HTTP API"),
@@ -78,28 +78,27 @@ def build_parser(argv: Sequence[str] | None = None) -> argparse.ArgumentParser:
 
 def main(argv: Sequence[str] | None = None) -> int:
     words = list(sys.argv[1:] if argv is None else argv)
-    args = build_parser(words).parse_args(words)
     from pydantic import ValidationError
 
     from service.errors import ServiceError
     from service.log.key_errors import SigningKeyError
 
     try:
+        # Values parsed at the edge (a month, a tolerance) are argparse types: a refusal
+        # while parsing is reported like any other.
+        args = build_parser(words).parse_args(words)
         result: int = args.handler(args)
-    except CliError as exc:
-        print(f"evenhand: error: {exc}", file=sys.stderr)
-        return CliError.exit_code
-    except ServiceError as exc:  # what the API answers as 4xx, the CLI says in one line
-        print(f"evenhand: error: {exc.message} ({exc.code})", file=sys.stderr)
-        return CliError.exit_code
+    except ServiceError as exc:  # every refusal (the CLI's, the service's, the engine's)
+        print(refusal_line(exc), file=sys.stderr)
+        return USER_ERROR_EXIT
     except SigningKeyError as exc:  # missing, unreadable or weak: say which, in one line
         print(f"evenhand: error: {exc}", file=sys.stderr)
-        return CliError.exit_code
+        return USER_ERROR_EXIT
     except ValidationError as exc:  # a setting out of bounds (EVENHAND_...)
         for error in exc.errors():
             where = ".".join(str(part) for part in error["loc"]) or exc.title
             print(f"evenhand: error: {where}: {error['msg']}", file=sys.stderr)
-        return CliError.exit_code
+        return USER_ERROR_EXIT
     return result
 
 

@@ -10,7 +10,6 @@ from pathlib import Path
 from typing import Any
 
 from service.cli.common import CliError
-from service.errors import ServiceError
 
 
 class HttpBackend:
@@ -85,17 +84,13 @@ class DirectBackend:
         from service.store.keys import admin_actor
 
         with self._factory() as session:
-            try:
-                if write:
-                    if self._token is None:
-                        raise CliError(_NO_TOKEN)
-                    # The same check as the API's: a live admin key, by its token's hash.
-                    args = (admin_actor(session, self._token), *args)
-                result = fn(session, *args)
-                session.commit()
-            except ServiceError as exc:
-                where = f" ({exc.field})" if exc.field else ""
-                raise CliError(f"{exc.code}: {exc.message}{where}") from None
+            if write:
+                if self._token is None:
+                    raise CliError(_NO_TOKEN)
+                # The same check as the API's: a live admin key, by its token's hash.
+                args = (admin_actor(session, self._token), *args)
+            result = fn(session, *args)
+            session.commit()
             return result
 
     def submit(self, name: str, document: Any) -> Any:

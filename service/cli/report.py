@@ -11,8 +11,6 @@ from service.audit.history import history_csv, history_rows, load_snapshots
 from service.audit.month import Month
 from service.audit.reports import View, get_snapshot, list_reports
 from service.audit.snapshot_model import Snapshot
-from service.cli.common import CliError
-from service.errors import ServiceError
 from service.settings import Settings
 from service.store.db import create_db_engine, create_session_factory
 
@@ -31,7 +29,7 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
 
     show = sub.add_parser("show", help="the alert list and headline figures of a month")
     show.add_argument("--policy", required=True)
-    show.add_argument("--month", required=True, help="YYYY-MM")
+    show.add_argument("--month", required=True, type=Month.parse, help="YYYY-MM")
     show.add_argument("--snapshot", type=int, help="a snapshot id (default: the latest)")
     show.add_argument("--json", action="store_true", help="print the whole snapshot as JSON")
     show.add_argument(
@@ -43,7 +41,7 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
 
     export = sub.add_parser("export", help="write a month's report as JSON, CSV or HTML")
     export.add_argument("--policy", required=True)
-    export.add_argument("--month", required=True, help="YYYY-MM")
+    export.add_argument("--month", required=True, type=Month.parse, help="YYYY-MM")
     export.add_argument("--snapshot", type=int, help="a snapshot id (default: the latest)")
     export.add_argument("--format", choices=FORMATS, default="html")
     export.add_argument(
@@ -61,8 +59,12 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
         help="the cross-month view: one row per month x version x group x check",
     )
     history.add_argument("--policy", required=True)
-    history.add_argument("--from", dest="first", required=True, help="first month YYYY-MM")
-    history.add_argument("--to", dest="last", required=True, help="last month YYYY-MM")
+    history.add_argument(
+        "--from", dest="first", required=True, type=Month.parse, help="first month YYYY-MM"
+    )
+    history.add_argument(
+        "--to", dest="last", required=True, type=Month.parse, help="last month YYYY-MM"
+    )
     history.add_argument("--format", choices=("table", "csv", "json"), default="table")
     history.add_argument(
         "--internal",
@@ -74,13 +76,9 @@ def register(subparsers: argparse._SubParsersAction[argparse.ArgumentParser]) ->
 
 def _load(args: argparse.Namespace) -> Snapshot:
     view: View = "internal" if args.internal else "published"
-    try:
-        month = Month.parse(args.month)
-        factory = create_session_factory(create_db_engine(Settings()))
-        with factory() as session:
-            return get_snapshot(session, args.policy, month, args.snapshot, view)
-    except ServiceError as exc:
-        raise CliError(exc.message) from None
+    factory = create_session_factory(create_db_engine(Settings()))
+    with factory() as session:
+        return get_snapshot(session, args.policy, args.month, args.snapshot, view)
 
 
 def to_json(s: Snapshot) -> str:
@@ -153,13 +151,9 @@ def _export(args: argparse.Namespace) -> int:
 
 def _history(args: argparse.Namespace) -> int:
     view: View = "internal" if args.internal else "published"
-    try:
-        first, last = Month.parse(args.first, "from"), Month.parse(args.last, "to")
-        factory = create_session_factory(create_db_engine(Settings()))
-        with factory() as session:
-            snapshots = load_snapshots(session, args.policy, first, last, view)
-    except ServiceError as exc:
-        raise CliError(exc.message) from None
+    factory = create_session_factory(create_db_engine(Settings()))
+    with factory() as session:
+        snapshots = load_snapshots(session, args.policy, args.first, args.last, view)
     rows = history_rows(snapshots)
     if args.format == "csv":
         sys.stdout.write(history_csv(rows))
@@ -168,7 +162,7 @@ def _history(args: argparse.Namespace) -> int:
         print(json.dumps([r.model_dump(mode="json") for r in rows], indent=2, ensure_ascii=False))
         return 0
     if not rows:
-        print(f"no audited months of {args.policy!r} between {first} and {last}")
+        print(f"no audited months of {args.policy!r} between {args.first} and {args.last}")
         return 0
     if view == "internal":
         print("INTERNAL VIEW: small cells are not suppressed; do not publish")

@@ -1,19 +1,23 @@
 """Errors raised by the policy engine.
 
-Each carries a stable ``code`` (the API maps it to a response) and, where there is one,
-the ``field`` it is about, so a caller can point at the exact input to fix.
+Each carries a stable ``code`` and, where there is one, the ``field`` it is about, so a
+caller can point at the exact input to fix. ``PolicyError`` is a ``ServiceError`` (the one
+root, ``service.errors``, which imports nothing of the service): the API answers it 422 and
+the CLI prints it as one line, each in its one place. It is also a ``ValueError``, so pydantic
+validators that raise it report a validation error.
 """
 
 from __future__ import annotations
 
+from service.errors import ServiceError
 
-class PolicyError(ValueError):
+
+class PolicyError(ServiceError, ValueError):
+    status_code = 422
     code = "policy_error"
 
     def __init__(self, message: str, field: str | None = None) -> None:
-        super().__init__(message)
-        self.message = message
-        self.field = field
+        super().__init__(message, field=field)
 
 
 class MissingAttribute(PolicyError):
@@ -42,6 +46,12 @@ class InternalDeriveError(RuntimeError):
     def within(self, context: str) -> InternalDeriveError:
         """The same error, said to have happened in ``context``."""
         return InternalDeriveError(self.detail, context)
+
+
+class InvalidTolerance(PolicyError):
+    """A tolerance outside (0, MAX_TOLERANCE] (``service.policy.values.checked_tolerance``)."""
+
+    code = "invalid_tolerance"
 
 
 class InvalidAttribute(PolicyError):

@@ -8,11 +8,13 @@ characters and fits the decision log's columns.
 
 from __future__ import annotations
 
+import math
 from typing import Annotated
 
 from pydantic import BaseModel, ConfigDict, Field, StringConstraints
 
 from service.policy.attributes import MAX_GROUP_KEY_CHARS, TEXT_PATTERN
+from service.policy.errors import InvalidTolerance
 
 MAX_SCORE_MAGNITUDE = 1e12
 """Largest |score| a policy may name (range, steps, bin edges): differences stay finite."""
@@ -24,6 +26,24 @@ MAX_LABEL_CHARS = 256
 """Longest label or group key (the decision log's text columns hold 256 characters)."""
 MAX_PROSE_CHARS = 2000
 """Longest description or explanation."""
+MAX_TOLERANCE = 0.5
+"""Largest tolerance of a promise or an audit check: the largest gap between groups' rates
+(or shortfall of a ratio) that still keeps the promise."""
+
+
+def checked_tolerance(value: float) -> float:
+    """``value`` if it is a usable tolerance, in (0, MAX_TOLERANCE]; the one check every
+    edge (a derive or audit argument, an audit request, a stored version's targets) uses."""
+    if not (math.isfinite(value) and 0.0 < value <= MAX_TOLERANCE):
+        raise InvalidTolerance(
+            f"must be > 0 and <= {MAX_TOLERANCE} (the largest gap that keeps the promise)",
+            field="tolerance",
+        )
+    return value
+
+
+Tolerance = Annotated[float, Field(gt=0.0, le=MAX_TOLERANCE, allow_inf_nan=False)]
+"""A tolerance in a request body: the bounds of :func:`checked_tolerance`, in the schema."""
 
 Probability = Annotated[float, Field(ge=0.0, le=1.0, allow_inf_nan=False)]
 FiniteFloat = Annotated[float, Field(allow_inf_nan=False)]

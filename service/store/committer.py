@@ -35,7 +35,6 @@ from sqlalchemy import Connection, Engine
 from sqlalchemy.exc import IntegrityError
 
 from service.errors import ServiceError, ServiceUnavailable
-from service.policy.errors import PolicyError
 from service.store.db import DatabaseUnavailable, is_unavailable
 from service.store.scoring import (
     GroupResult,
@@ -203,7 +202,7 @@ class GroupCommitter:
                 conn = self._connection()
                 with conn.begin():
                     results.append(recommend(conn, request, self._ctx))
-            except (ServiceError, PolicyError) as exc:
+            except ServiceError as exc:
                 results.append(exc)
             except Exception as exc:
                 if is_unavailable(exc):

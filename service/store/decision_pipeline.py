@@ -45,7 +45,7 @@ class ScoreInput(Protocol):
     def attributes(self) -> Mapping[str, AttributeValue]: ...
 
 
-Outcome = DecisionRecord | ServiceError | PolicyError
+Outcome = DecisionRecord | ServiceError
 """A new request's outcome: its record, or the error it is refused with."""
 
 

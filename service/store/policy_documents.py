@@ -3,12 +3,15 @@ and auditable (a version with promises says how far realized rates may stray).""
 
 from __future__ import annotations
 
+import math
 from typing import Any
 
 from pydantic import ValidationError
 
 from service.errors import Unprocessable
 from service.policy.document import PolicyDocument
+from service.policy.errors import InvalidTolerance
+from service.policy.values import MAX_TOLERANCE, checked_tolerance
 
 
 def parse_document(data: Any) -> PolicyDocument:
@@ -36,9 +39,6 @@ def parse_document(data: Any) -> PolicyDocument:
         ) from None
 
 
-MAX_TOLERANCE = 0.5
-
-
 def check_auditable(document: PolicyDocument) -> None:
     """A version that makes promises must say how far realized rates may stray: its audit
     tests every gap against that tolerance, so it must be positive (never 0 by omission)."""
@@ -46,11 +46,13 @@ def check_auditable(document: PolicyDocument) -> None:
     if targets is None:
         return
     tolerance = targets.tolerance
-    if tolerance is None or not 0 < tolerance <= MAX_TOLERANCE:
+    try:
+        checked_tolerance(math.nan if tolerance is None else tolerance)
+    except InvalidTolerance:
         raise Unprocessable(
             f"targets.tolerance is {tolerance}: a version with targets needs a tolerance "
             f"greater than 0 and at most {MAX_TOLERANCE} (the largest gap that keeps the "
             "promise; the audit tests every gap against it)",
             code="tolerance_required",
             field="targets.tolerance",
-        )
+        ) from None

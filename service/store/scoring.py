@@ -20,7 +20,6 @@ from sqlalchemy.exc import IntegrityError
 
 from service.errors import BatchRefused, Conflict, ServiceError, check_batch_size, item_problem
 from service.log.records import DecisionRecord
-from service.policy.errors import PolicyError
 from service.store.db import READ_ONLY
 from service.store.decision_pipeline import (
     DecisionPipeline,
@@ -80,7 +79,7 @@ def recommend(conn: Connection, req: ScoreInput, ctx: ScoringContext) -> tuple[s
     raise outcome
 
 
-GroupResult = tuple[str, bool] | ServiceError | PolicyError
+GroupResult = tuple[str, bool] | ServiceError
 """One request's outcome in a group: (response JSON, created), or the error it is refused with."""
 
 
@@ -225,7 +224,7 @@ def prepare_batch(
     at = positions if positions is not None else range(len(items))
     errors: list[dict[str, Any]] = []
 
-    def refuse(i: int, exc: ServiceError | PolicyError) -> None:
+    def refuse(i: int, exc: ServiceError) -> None:
         errors.append(item_problem(at[i], exc))
 
     seen: dict[str, int] = {}
