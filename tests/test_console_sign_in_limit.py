@@ -153,6 +153,25 @@ def test_a_person_changes_their_own_password(
     assert _change(limited["x"], csrf, new, "another long one!").status_code == 429
 
 
+def test_a_password_change_ends_the_keys_other_sessions(
+    limited: dict[str, TestClient], tokens: dict[str, str]
+) -> None:
+    z, y, x2 = limited["z"], limited["y"], limited["x2"]
+    _bind(z, tokens)
+    assert _attempt(y, "bo", PASSWORD)[0] == 303
+    assert _attempt(x2, "bo", PASSWORD)[0] == 303  # bo also signed in elsewhere
+    assert x2.get("/console/password", follow_redirects=False).status_code == 200
+    csrf = csrf_of(y.get("/console/password").text)
+    done = _change(y, csrf, PASSWORD, "a much longer new passphrase")
+    assert done.status_code == 200 and "1 other session(s)" in done.text
+    # The other session is gone (back to sign-in); the one that changed it goes on, and
+    # the admin's own session (another key) is untouched.
+    gone = x2.get("/console/password", follow_redirects=False)
+    assert gone.status_code == 303 and "/console/sign-in" in gone.headers["location"]
+    assert y.get("/console/password", follow_redirects=False).status_code == 200
+    assert z.get("/console/people", follow_redirects=False).status_code == 200
+
+
 def test_no_password_for_a_key_signed_in_session(
     limited: dict[str, TestClient], tokens: dict[str, str]
 ) -> None:

@@ -12,10 +12,12 @@ from service.console.sessions import ConsoleSession
 from service.console.web import (
     CONSOLE_ROLES,
     PREFIX,
+    SESSION_COOKIE,
     ConsoleRoute,
     check_csrf,
     render,
     require_admin,
+    sessions_of,
 )
 from service.store import keys
 from service.store.models import utcnow
@@ -160,4 +162,7 @@ def change_password(request: Request, who: Who, form: PostedForm) -> Response:
             session, person, passwords.hash_password(new), who.key_name, utcnow()
         )
         session.commit()
-    return _password_page(request, who, done=f"The password of {person} is changed.")
+    # Whoever else is signed in as this key (perhaps with the old password) is signed out.
+    ended = sessions_of(request).end_others(who.key_id, request.cookies.get(SESSION_COOKIE, ""))
+    others = f" {ended} other session(s) of key {who.key_name} ended." if ended else ""
+    return _password_page(request, who, done=f"The password of {person} is changed.{others}")

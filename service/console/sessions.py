@@ -109,3 +109,11 @@ class SessionStore:
         with self._factory() as db:
             table.end(db, _digest(session_id))
             db.commit()
+
+    def end_others(self, key_id: int, session_id: str) -> int:
+        """End the key's other sessions (after its person's password changed), keeping
+        ``session_id``; returns how many ended."""
+        with self._factory() as db:
+            ended = table.end_others(db, key_id, _digest(session_id))
+            db.commit()
+        return ended

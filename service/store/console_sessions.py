@@ -72,6 +72,17 @@ def end(session: Session, id_hash: str) -> None:
     session.execute(delete(ConsoleSessionRow).where(ConsoleSessionRow.id_hash == id_hash))
 
 
+def end_others(session: Session, key_id: int, keep_id_hash: str) -> int:
+    """End every session of ``key_id`` but the one whose id hashes to ``keep_id_hash``;
+    returns how many ended."""
+    result = session.execute(
+        delete(ConsoleSessionRow).where(
+            ConsoleSessionRow.key_id == key_id, ConsoleSessionRow.id_hash != keep_id_hash
+        )
+    )
+    return int(getattr(result, "rowcount", 0) or 0)
+
+
 def purge_expired(session: Session, idle_since: datetime, started_since: datetime) -> int:
     """Delete every session past its idle time or lifetime; returns how many."""
     result = session.execute(
