@@ -170,7 +170,7 @@ def test_oversized_body_by_length_and_by_stream(
 
 def test_unknown_route_and_method(client: TestClient) -> None:
     _check(client.get("/v1/nothing-here"), 404, "not_found")
-    _check(client.get(R), 405, "method_not_allowed")
+    _check(client.delete(R), 405, "method_not_allowed")  # GET and POST exist, DELETE not
 
 
 def test_server_refuses_to_start_without_secret(database_url: str) -> None:
