@@ -128,3 +128,30 @@ def test_concurrent_repeats_are_written_once(
     assert [created for _, created in answers].count(True) == 1
     assert len({a for a, _ in answers}) == 1  # the same bytes each time
     assert count_rows(session_factory, "recommendations") == 1
+
+
+def test_a_failed_commit_is_that_requests_error_and_the_committer_goes_on(
+    engine: Engine,
+    ctx: ScoringContext,
+    session_factory: sessionmaker[Session],
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    """A COMMIT the database refuses fails the group, then each request alone: every request
+    gets exactly one answer (the error), nothing is written, and the next group is served."""
+    committer = GroupCommitter(engine, ctx)
+    committer.start()
+
+    def refuse(_dialect: Any, dbapi_connection: Any) -> None:
+        dbapi_connection.rollback()
+        raise RuntimeError("forced: the commit fails")
+
+    with monkeypatch.context() as patch:
+        patch.setattr(type(engine.dialect), "do_commit", refuse)
+        with pytest.raises(RuntimeError, match="forced"):
+            committer.recommend_blocking(_req())
+    assert count_rows(session_factory, "recommendations") == 0
+
+    answer, created = committer.recommend_blocking(_req())  # the thread is still there
+    committer.stop()
+    assert created and json.loads(answer)["recommendation_id"]
+    assert count_rows(session_factory, "recommendations") == 1

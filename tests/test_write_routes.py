@@ -13,6 +13,7 @@ an error): the call must not answer 2xx, and the table must hold what it held be
 
 from __future__ import annotations
 
+import json
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
@@ -37,6 +38,7 @@ class Call:
     role: str
     json: Any = None
     params: dict[str, Any] | None = None
+    ndjson: list[dict[str, Any]] | None = None  # a body of newline-delimited JSON instead
 
 
 @dataclass(frozen=True)
@@ -154,6 +156,12 @@ def _recommend_batch_case(c: TestClient, t: Tokens) -> Call:
     return Call("POST", "/v1/recommendations/batch", "scoring", {"items": items})
 
 
+def _recommend_stream_case(c: TestClient, t: Tokens) -> Call:
+    _live(c, t)
+    lines = [make_request(), make_request()]
+    return Call("POST", "/v1/recommendations/stream", "scoring", ndjson=lines)
+
+
 _P = "/v1/policies/{name}"
 CASES = [
     Case(("POST", f"{_P}/versions"), "policy_versions", _submit_case),
@@ -169,6 +177,7 @@ CASES = [
     Case(("POST", "/v1/recommendations/{recommendation_id}/final"), "final_decisions", _final_case),
     Case(("POST", "/v1/recommendations"), "recommendations", _recommend_case),
     Case(("POST", "/v1/recommendations/batch"), "recommendations", _recommend_batch_case),
+    Case(("POST", "/v1/recommendations/stream"), "recommendations", _recommend_stream_case),
 ]
 
 
@@ -215,6 +224,10 @@ def watch(settings: Settings, engine: Engine) -> Iterator[Watch]:
 
 
 def _send(c: TestClient, call: Call, t: Tokens) -> Any:
+    if call.ndjson is not None:
+        body = "".join(json.dumps(line) + "\n" for line in call.ndjson).encode()
+        headers = {**t[call.role], "Content-Type": "application/x-ndjson"}
+        return c.request(call.method, call.url, headers=headers, content=body)
     return c.request(
         call.method, call.url, headers=t[call.role], json=call.json, params=call.params
     )

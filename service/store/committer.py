@@ -140,7 +140,13 @@ class GroupCommitter:
             jobs = self._next_group()
             if jobs is None:
                 break
-            _settle(jobs, self._decide([job.request for job in jobs]))
+            try:
+                results = self._decide([job.request for job in jobs])
+                _settle(jobs, results)
+            except Exception as exc:  # a defect of ours: answer the group, keep the thread
+                log.exception("the committer could not settle a group of %d", len(jobs))
+                self._close_connection(invalidate=True)
+                _settle(jobs, [exc for _ in jobs])
         self._close_connection()
         # Refuse whatever arrived after the stop.
         refused: list[_Job] = []
@@ -201,7 +207,8 @@ class GroupCommitter:
             try:
                 conn = self._connection()
                 with conn.begin():
-                    results.append(recommend(conn, request, self._ctx))
+                    result = recommend(conn, request, self._ctx)
+                results.append(result)  # only once committed: a failed commit is an error
             except ServiceError as exc:
                 results.append(exc)
             except Exception as exc:
@@ -249,6 +256,8 @@ def _settle_on_loop(pairs: list[tuple[_Job, Any]]) -> None:
 
 
 def _set(future: Future[Answer] | asyncio.Future[Answer], result: Any) -> None:
+    if future.done():
+        return
     if isinstance(result, BaseException):
         future.set_exception(result)
     else:
