@@ -57,4 +57,4 @@ def test_audit_and_report_commands(
     assert "nothing to audit" in capsys.readouterr().err
     argv = ["audit", "run", "--policy", POLICY, "--month", month, "--tolerance", "0"]
     assert main(argv) == 2
-    assert "greater than 0" in capsys.readouterr().err
+    assert "must be > 0" in capsys.readouterr().err

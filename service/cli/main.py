@@ -6,8 +6,12 @@ import argparse
 import importlib
 import sys
 from collections.abc import Sequence
+from typing import TYPE_CHECKING, TypeGuard
 
 from service.cli.common import USER_ERROR_EXIT, refusal_line
+
+if TYPE_CHECKING:
+    from pydantic import ValidationError
 
 COMMANDS: dict[str, tuple[str, str]] = {
     "serve": ("service.cli.serve", "run the HTTP API"),
@@ -78,8 +82,6 @@ def build_parser(argv: Sequence[str] | None = None) -> argparse.ArgumentParser:
 
 def main(argv: Sequence[str] | None = None) -> int:
     words = list(sys.argv[1:] if argv is None else argv)
-    from pydantic import ValidationError
-
     from service.errors import ServiceError
     from service.log.key_errors import SigningKeyError
 
@@ -94,12 +96,21 @@ def main(argv: Sequence[str] | None = None) -> int:
     except SigningKeyError as exc:  # missing, unreadable or weak: say which, in one line
         print(f"evenhand: error: {exc}", file=sys.stderr)
         return USER_ERROR_EXIT
-    except ValidationError as exc:  # a setting out of bounds (EVENHAND_...)
-        for error in exc.errors():
+    except Exception as exc:
+        if not _is_validation_error(exc):
+            raise
+        for error in exc.errors():  # a setting out of bounds (EVENHAND_...)
             where = ".".join(str(part) for part in error["loc"]) or exc.title
             print(f"evenhand: error: {where}: {error['msg']}", file=sys.stderr)
         return USER_ERROR_EXIT
     return result
+
+
+def _is_validation_error(exc: Exception) -> TypeGuard[ValidationError]:
+    """Whether ``exc`` is pydantic's: looked up only once raised, so that ``--help`` and the
+    light commands never import pydantic."""
+    pydantic = sys.modules.get("pydantic")
+    return pydantic is not None and isinstance(exc, pydantic.ValidationError)
 
 
 if __name__ == "__main__":
