@@ -181,3 +181,5 @@ def require_role(*roles: str) -> Callable[..., Awaitable[Caller]]:
 ScoringKey = Annotated[Caller, Depends(require_role("scoring"))]
 AuditKey = Annotated[Caller, Depends(require_role("audit"))]
 AdminKey = Annotated[Caller, Depends(require_role("admin"))]
+PolicyReaderKey = Annotated[Caller, Depends(require_role("admin", "audit"))]
+"""Reads of the policy store: the auditor checks what was approved and served, read-only."""

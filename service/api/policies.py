@@ -6,7 +6,7 @@ from typing import Annotated
 
 from fastapi import APIRouter, Path, Query, Response
 
-from service.api.deps import AdminKey, DbSession, ReadSession
+from service.api.deps import AdminKey, DbSession, PolicyReaderKey, ReadSession
 from service.api.errors import error_responses
 from service.api.fields import INT32_MAX, VersionPath
 from service.api.policy_schemas import (
@@ -45,7 +45,7 @@ def submit_version(
 
 
 @router.get("", summary="All policies with their active and shadow versions")
-def list_policies(session: ReadSession, _key: AdminKey) -> list[PolicySummary]:
+def list_policies(session: ReadSession, _key: PolicyReaderKey) -> list[PolicySummary]:
     out = []
     for name in repo.policy_names(session):
         state = repo.get_state(session, name)
@@ -61,7 +61,7 @@ def list_policies(session: ReadSession, _key: AdminKey) -> list[PolicySummary]:
 
 
 @router.get("/{name}/versions", summary="Every version of a policy")
-def list_versions(name: Name, session: ReadSession, _key: AdminKey) -> list[VersionSummary]:
+def list_versions(name: Name, session: ReadSession, _key: PolicyReaderKey) -> list[VersionSummary]:
     views = repo.version_views(session, name)
     if not views:
         raise NotFound(f"no policy named {name!r}", code="unknown_policy")
@@ -70,7 +70,7 @@ def list_versions(name: Name, session: ReadSession, _key: AdminKey) -> list[Vers
 
 @router.get("/{name}/versions/{version}", summary="One version with its document")
 def get_version(
-    name: Name, version: Version, session: ReadSession, _key: AdminKey
+    name: Name, version: Version, session: ReadSession, _key: PolicyReaderKey
 ) -> VersionDetail:
     return VersionDetail.of(lifecycle.require_version(session, name, version))
 
@@ -111,7 +111,7 @@ def rollback(name: Name, body: RollbackBody, session: DbSession, key: AdminKey) 
 
 
 @router.get("/{name}/history", summary="Every lifecycle event, oldest first")
-def history(name: Name, session: ReadSession, _key: AdminKey) -> list[EventOut]:
+def history(name: Name, session: ReadSession, _key: PolicyReaderKey) -> list[EventOut]:
     return [EventOut.of(e) for e in lifecycle.history(session, name)]
 
 
@@ -119,7 +119,7 @@ def history(name: Name, session: ReadSession, _key: AdminKey) -> list[EventOut]:
 def diff(
     name: Name,
     session: ReadSession,
-    _key: AdminKey,
+    _key: PolicyReaderKey,
     from_version: Annotated[int, Query(alias="from", ge=1, le=INT32_MAX)],
     to_version: Annotated[int, Query(alias="to", ge=1, le=INT32_MAX)],
 ) -> DiffOut:
@@ -138,7 +138,7 @@ def diff(
 
 
 @router.get("/{name}/shadow", summary="The shadow version, if one is designated")
-def get_shadow(name: Name, session: ReadSession, _key: AdminKey) -> ShadowOut:
+def get_shadow(name: Name, session: ReadSession, _key: PolicyReaderKey) -> ShadowOut:
     shadow = repo.shadow_view(session, name)
     if shadow is None:
         raise NotFound(f"policy {name!r} has no shadow version", code="no_shadow")
