@@ -124,9 +124,9 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     ):
         app.include_router(router, responses=unavailable)
     # The console for admins and auditors (server-rendered pages under /console).
-    from service.console import log_pages, lookup_pages, people_pages, routes
+    from service.console import log_pages, lookup_pages, people_pages, report_pages, routes
 
-    for console_pages in (routes, people_pages, lookup_pages, log_pages):
+    for console_pages in (routes, report_pages, people_pages, lookup_pages, log_pages):
         app.include_router(console_pages.router)
     app.include_router(docs.docs_router())
     app.include_router(metrics_router(settings.metrics_access), include_in_schema=False)

@@ -1,21 +1,19 @@
-"""The console's pages: sign-in and sign-out, policies (admins act, auditors read), the
-confirmed lifecycle actions and the audit reports. See docs/console.md."""
+"""The console's pages: sign-in and sign-out, policies (admins act, auditors read) and the
+confirmed lifecycle actions (the reports are in ``report_pages``). See docs/console.md."""
 
 from __future__ import annotations
 
 import re
 import secrets
 from importlib.resources import files
-from typing import Annotated, Any
+from typing import Annotated
 
-from fastapi import APIRouter, Depends, Path, Query, Request, Response
+from fastapi import APIRouter, Depends, Query, Request, Response
 
-from service.console import actions, drafts, report_view
+from service.console import actions, drafts
 from service.console.deps import PostedForm, Who
 from service.console.deps import read_session as _read_session
-from service.console.deps import require_audit as _require_audit
 from service.console.deps import write_session as _write_session
-from service.console.report_view import history_tables
 from service.console.return_to import after_sign_in, safe_next
 from service.console.rule_view import compare_chart, describe_rule, rule_chart
 from service.console.sessions import ConsoleSession
@@ -26,6 +24,8 @@ from service.console.web import (
     SIGN_IN_COOKIE,
     ConsoleRoute,
     Form,
+    Name,
+    Version,
     check_csrf,
     clear_cookie,
     redirect,
@@ -41,9 +41,6 @@ from service.store import policies as repo
 
 router = APIRouter(prefix=PREFIX, route_class=ConsoleRoute, include_in_schema=False)
 
-Name = Annotated[str, Path(pattern=r"^[a-z0-9][a-z0-9._-]{0,63}$")]
-Version = Annotated[int, Path(ge=1, le=2_147_483_647)]
-Month = Annotated[str, Path(pattern=r"^\d{4}-(0[1-9]|1[0-2])$")]
 
 _STATIC = files("service.console").joinpath("static")
 _STATIC_TYPES = {"console.css": "text/css", "icon.svg": "image/svg+xml"}
@@ -423,115 +420,3 @@ def draft_submit(request: Request, who: Who, form: DraftForm) -> Response:
         version = view.row.version
         session.commit()
     return redirect(f"{PREFIX}/policies/{name}/versions/{version}")
-
-
-# --- reports (audit) -----------------------------------------------------------------------
-
-
-@router.get("/reports")
-def report_policies(request: Request, who: Who) -> Response:
-    _require_audit(who)
-    with _read_session(request) as session:
-        names = list(repo.policy_names(session))
-    return render(request, "reports.html", who=who, title="Reports", names=names)
-
-
-@router.get("/reports/{name}")
-def report_months(request: Request, who: Who, name: Name) -> Response:
-    from service.audit.reports import list_reports
-
-    _require_audit(who)
-    with _read_session(request) as session:
-        listing: dict[str, Any] = list_reports(session, name)
-    months = list(reversed(listing["months"]))
-    return render(
-        request, "report_months.html", who=who, title=f"Reports: {name}", name=name, months=months
-    )
-
-
-@router.get("/reports/{name}/history")
-def report_history(
-    request: Request, who: Who, name: Name, since: str = "", until: str = ""
-) -> Response:
-    """The cross-month view: per group and check, each month's estimate, interval, status and
-    monitoring chart state (the last 12 months with a snapshot unless a range is asked)."""
-    from service.audit.history import MAX_MONTHS, history_rows, load_snapshots
-    from service.audit.month import Month as AuditMonth
-    from service.audit.reports import list_reports
-
-    _require_audit(who)
-    with _read_session(request) as session:
-        stored = [m["month"] for m in list_reports(session, name)["months"]]
-        if not stored:
-            raise NotFound(f"no audit of {name!r} has been stored yet", code="report_not_found")
-        last = AuditMonth.parse(until or stored[-1], "until")
-        first = AuditMonth.parse(since, "since") if since else last.shifted(-11)
-        snapshots = load_snapshots(session, name, first, last)
-    tables = history_tables(history_rows(snapshots))
-    return render(
-        request,
-        "report_history.html",
-        who=who,
-        title=f"{name}: months {first} to {last}",
-        name=name,
-        first=str(first),
-        last=str(last),
-        months=[s.month for s in snapshots],
-        tables=tables,
-        max_months=MAX_MONTHS,
-    )
-
-
-@router.get("/reports/{name}/{month}")
-def report_page(request: Request, who: Who, name: Name, month: Month) -> Response:
-    """The month's latest snapshot as a console page (the console's own policy applies)."""
-    from service.audit.month import Month as AuditMonth
-    from service.audit.reports import get_snapshot
-
-    _require_audit(who)
-    with _read_session(request) as session:
-        content = get_snapshot(session, name, AuditMonth.parse(month))
-    return render(
-        request,
-        "report_month.html",
-        who=who,
-        title=f"{name} {month}",
-        name=name,
-        page=report_view.report_page(content),
-        digest=content.digest,
-    )
-
-
-REPORT_CSP = (
-    "default-src 'none'; style-src 'unsafe-inline'; img-src data:; frame-ancestors 'none'; "
-    "base-uri 'none'; form-action 'none'; sandbox"
-)
-
-
-@router.get("/reports/{name}/{month}/{kind}")
-def report_file(
-    request: Request, who: Who, name: Name, month: Month, kind: str, snapshot: int | None = None
-) -> Response:
-    from service.audit.month import Month as AuditMonth
-    from service.audit.reports import get_snapshot
-
-    _require_audit(who)
-    if kind == BUNDLE_FILE:
-        return _bundle(request, name, month)
-    if kind not in ("report.html", "report.json", "report.csv"):
-        raise NotFound("no such report file: report.html, report.json, report.csv or bundle.ehb")
-    with _read_session(request) as session:
-        content = get_snapshot(session, name, AuditMonth.parse(month), snapshot, "published")
-    return actions.report_response(content, name, month, kind, REPORT_CSP)
-
-
-BUNDLE_FILE = "bundle.ehb"
-
-
-def _bundle(request: Request, name: str, month: str) -> Response:
-    """The month bundle: the same file and code path as ``GET /v1/log/bundle``."""
-    from service.api.log import bundle_response
-    from service.audit.month import Month as AuditMonth
-
-    with _read_session(request) as session:
-        return bundle_response(session, name, AuditMonth.parse(month))

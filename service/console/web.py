@@ -9,10 +9,10 @@ from __future__ import annotations
 
 from collections.abc import Callable, Coroutine
 from dataclasses import dataclass
-from typing import Any
+from typing import Annotated, Any
 from urllib.parse import parse_qs
 
-from fastapi import Request, Response
+from fastapi import Path, Request, Response
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import HTMLResponse, RedirectResponse
 from fastapi.routing import APIRoute
@@ -22,6 +22,11 @@ from service.console.return_to import sign_in_location
 from service.console.sessions import ConsoleSession, SessionStore, same_token
 from service.errors import Forbidden, ServiceError, TooManyRequests, Unprocessable
 from service.settings import Settings
+
+# Path parameters of the console's pages, checked as the API checks them.
+Name = Annotated[str, Path(pattern=r"^[a-z0-9][a-z0-9._-]{0,63}$")]
+Version = Annotated[int, Path(ge=1, le=2_147_483_647)]
+Month = Annotated[str, Path(pattern=r"^\d{4}-(0[1-9]|1[0-2])$")]
 
 PREFIX = "/console"
 SESSION_COOKIE = "evenhand_console"
