@@ -10,7 +10,8 @@ models gives the same values (a test compares a row written here with one writte
 the model).
 
 ``stored_records`` is the one replay look-up: the records already stored for some
-request_ids.
+request_ids (on PostgreSQL one ``= ANY(array)`` statement, on SQLite ``IN`` lists of up to
+1,024 ids).
 """
 
 from __future__ import annotations
@@ -202,8 +203,11 @@ def stored_records(
     for both), and the statements after it read with snapshots taken after it was granted.
     """
     found: list[str] = []
-    for start in range(0, len(request_ids), CHUNK):
-        found += _probe(conn, request_ids[start : start + CHUNK], lock and start == 0)
+    if conn.dialect.name == "postgresql" and request_ids:
+        found = _probe_array(conn, request_ids, lock)
+    else:
+        for start in range(0, len(request_ids), CHUNK):
+            found += _probe(conn, request_ids[start : start + CHUNK], lock and start == 0)
     if not request_ids and lock and conn.dialect.name == "postgresql":
         conn.exec_driver_sql(SCORING_LOCK_SQL)
     records: dict[str, DecisionRecord] = {}
@@ -213,6 +217,19 @@ def stored_records(
                 row, bytes(row.request_fingerprint)
             )
     return records
+
+
+_ARRAY_PROBE = "SELECT request_id FROM recommendations WHERE request_id = ANY(%s)"
+_ARRAY_PROBE_LOCKED = (
+    f"{_ARRAY_PROBE} UNION ALL SELECT NULL FROM ({SCORING_LOCK_SQL}) AS switch_lock"
+)
+
+
+def _probe_array(conn: Connection, ids: Sequence[str], lock: bool) -> list[str]:
+    """PostgreSQL: every id in one statement, as one array parameter (one round trip and one
+    plan for any number of ids, read through the unique index on request_id)."""
+    sql = _ARRAY_PROBE_LOCKED if lock else _ARRAY_PROBE
+    return [row[0] for row in conn.exec_driver_sql(sql, (list(ids),)) if row[0] is not None]
 
 
 def _probe(conn: Connection, ids: Sequence[str], lock: bool) -> list[str]:
