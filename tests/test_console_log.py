@@ -136,3 +136,22 @@ def test_the_log_page_is_for_the_audit_role(client: TestClient, tokens: dict[str
     csrf = sign_in(client, tokens["admin"])
     assert client.get("/console/log").status_code == 403
     assert client.post("/console/log/verify", data={"csrf": csrf}).status_code == 403
+
+
+def test_concurrent_starts_record_one_run(session_factory: sessionmaker[Session]) -> None:
+    """Two auditors pressing the button at the same moment start one run, not two (on
+    PostgreSQL an advisory lock orders the starts; on SQLite its write lock does)."""
+    from concurrent.futures import ThreadPoolExecutor
+    from threading import Barrier
+
+    barrier = Barrier(8)
+
+    def start(i: int) -> int | None:
+        barrier.wait()
+        return log_verifications.start_run(session_factory, f"console: auditor-{i}")
+
+    with ThreadPoolExecutor(max_workers=8) as pool:
+        started = list(pool.map(start, range(8)))
+    assert sum(run is not None for run in started) == 1, started
+    with session_factory() as session:
+        assert len(session.scalars(select(LogVerificationRow)).all()) == 1

@@ -21,6 +21,7 @@ from service.store.log_verify import VerifyResult, verify_log
 from service.store.models import Base, BigId, UTCDateTime, utcnow
 
 MAX_BY = 128
+START_LOCK_KEY = 0x45564E48_56524659  # "EVNH" "VRFY": one start at a time on PostgreSQL
 STALE_AFTER = timedelta(hours=6)
 """A run not finished this long after it started is taken for dead (its process stopped):
 the page no longer shows it as running and a new one may start."""
@@ -130,6 +131,9 @@ def start_run(factory: sessionmaker[Session], started_by: str) -> int | None:
     """Record a new run; None (and nothing recorded) when a run is in progress (started, not
     finished, not stale)."""
     with factory() as session:
+        conn = session.connection()
+        if conn.dialect.name == "postgresql":  # SQLite's write lock serialises starts already
+            conn.exec_driver_sql(f"SELECT pg_advisory_xact_lock({START_LOCK_KEY})")
         now = utcnow()
         current = latest(session)
         if current is not None and current.running(now):
