@@ -155,3 +155,34 @@ def test_concurrent_starts_record_one_run(session_factory: sessionmaker[Session]
     assert sum(run is not None for run in started) == 1, started
     with session_factory() as session:
         assert len(session.scalars(select(LogVerificationRow)).all()) == 1
+
+
+def test_a_run_finishing_while_the_page_reads_is_shown_one_way(
+    session_factory: sessionmaker[Session],
+) -> None:
+    """The page reads the newest run, then the newest finished one. A run that finishes in
+    between must not come back from the session's identity map as "finished" with no end
+    (that page failed to render); it is shown as still running, beside the run before it."""
+    from service.store.log_verify import VerifyResult
+
+    with session_factory() as session:
+        first = log_verifications.start(session, "console: a", utcnow())
+        session.commit()
+    with session_factory() as session:
+        result = VerifyResult()
+        log_verifications.finish(session, first, result, utcnow())
+        second = log_verifications.start(session, "console: b", utcnow())
+        session.commit()
+    with session_factory() as reader:
+        seen = log_verifications.latest(reader)  # the newest row, unfinished, held
+        assert seen is not None and seen.finished_at is None
+        reader.commit()  # SQLite's sessions write-lock; the loaded row stays in the session
+        with session_factory() as worker:  # the run ends meanwhile
+            log_verifications.finish(worker, second, result, utcnow())
+            worker.commit()
+        running, done = log_verifications.current_and_last(reader, utcnow())
+    assert running is not None and running.id == second
+    assert done is not None and done.id == first and done.finished_at is not None
+    with session_factory() as session:  # read afresh: the finished run alone
+        running, done = log_verifications.current_and_last(session, utcnow())
+    assert running is None and done is not None and done.id == second

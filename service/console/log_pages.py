@@ -46,10 +46,8 @@ def _runs(request: Request) -> tuple[Any, Any]:
     from service.store.models import utcnow
 
     with read_session(request) as session:
-        current = runs.latest(session)
-        done = runs.last_finished(session)
+        running, done = runs.current_and_last(session, utcnow())
         session.expunge_all()
-    running = current if current is not None and current.running(utcnow()) else None
     return running, done
 
 

@@ -95,14 +95,29 @@ def latest(session: Session) -> LogVerificationRow | None:
     ).first()
 
 
-def last_finished(session: Session) -> LogVerificationRow | None:
-    """The newest finished run."""
+def last_finished(session: Session, before: int) -> LogVerificationRow | None:
+    """The newest finished run with an id below ``before``."""
     return session.scalars(
         select(LogVerificationRow)
-        .where(LogVerificationRow.finished_at.is_not(None))
+        .where(LogVerificationRow.finished_at.is_not(None), LogVerificationRow.id < before)
         .order_by(LogVerificationRow.id.desc())
         .limit(1)
     ).first()
+
+
+def current_and_last(
+    session: Session, now: datetime
+) -> tuple[LogVerificationRow | None, LogVerificationRow | None]:
+    """The run in progress (or None) and the newest finished run (or None), as of one
+    reading of the newest row: a run that finishes between two statements is not shown
+    both as running and, from the session's identity map, as finished without its end."""
+    newest = latest(session)
+    if newest is None:
+        return None, None
+    if newest.finished_at is not None:
+        return None, newest
+    running = newest if newest.running(now) else None
+    return running, last_finished(session, before=newest.id)
 
 
 def run_and_keep(
