@@ -36,6 +36,7 @@ from service.errors import (
 )
 from service.log.records import format_timestamp
 from service.store.audit_models import FinalDecision, OutcomeRecord
+from service.store.id_chunks import key_in, sorted_chunks
 from service.store.models import Recommendation, utcnow
 
 LOOKUP_CHUNK = 500
@@ -180,12 +181,10 @@ class _Current:
 def _existing(session: Session, pks: Sequence[int]) -> dict[int, _Current]:
     o = OutcomeRecord.__table__.c
     found: dict[int, _Current] = {}
-    unique = sorted(set(pks))
-    for start in range(0, len(unique), LOOKUP_CHUNK):
-        chunk = unique[start : start + LOOKUP_CHUNK]
+    for chunk in sorted_chunks(pks):
         rows = session.execute(
             select(o.recommendation_pk, o.outcome, o.correction_reason)
-            .where(o.recommendation_pk.in_(chunk))
+            .where(key_in(o.recommendation_pk, chunk))
             .order_by(o.recommendation_pk, o.id)
         )
         for pk, outcome, reason in rows:

@@ -21,6 +21,7 @@ from service.log import tallies
 from service.log.audit_records import FINAL, OUTCOME
 from service.log.records import DECISION
 from service.store.audit_models import OutcomeRecord
+from service.store.id_chunks import key_in, sorted_chunks
 from service.store.log_sources import SOURCES, decision_facts, decision_window, rows
 
 _OUT: Table = OutcomeRecord.__table__  # type: ignore[assignment]
@@ -36,14 +37,12 @@ def _quiet(_message: str) -> None:
 def _previous_outcomes(session: Session, page: list[Any]) -> dict[int, list[tuple[int, int]]]:
     """For the decisions of a page of outcome records: every record of theirs up to the
     page's last id, as (id, outcome) in id order."""
-    pks = sorted({int(r.recommendation_pk) for r in page})
     last = int(page[-1].id)
     found: dict[int, list[tuple[int, int]]] = {}
-    for start in range(0, len(pks), 1_000):
-        chunk = pks[start : start + 1_000]
+    for chunk in sorted_chunks({int(r.recommendation_pk) for r in page}):
         for pk, rid, outcome in session.execute(
             select(_OUT.c.recommendation_pk, _OUT.c.id, _OUT.c.outcome)
-            .where(_OUT.c.recommendation_pk.in_(chunk), _OUT.c.id <= last)
+            .where(key_in(_OUT.c.recommendation_pk, chunk), _OUT.c.id <= last)
             .order_by(_OUT.c.recommendation_pk, _OUT.c.id)
         ):
             found.setdefault(int(pk), []).append((int(rid), int(outcome)))
