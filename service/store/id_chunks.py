@@ -6,14 +6,15 @@ Without statistics (autovacuum off, or a bulk load it has not analysed yet) Post
 estimates ``key IN (500 values)`` on a non-unique column at a large share of the table and
 scans all of it for every chunk, so each look-up costs time in proportion to the table
 (measured: 180 ms per chunk of 500 at 900,000 outcome records, 1.2 ms with the range beside
-it). The range of the sorted ids, added to the same condition, changes no result (every id
-is inside it) and gives the planner an estimate small enough to use the index; with
-statistics it changes nothing measurable. SQLite plans ``IN`` lists on an index either way.
+it). The ids' range, added to the same condition, changes no result (every id is inside
+it) and gives the planner an estimate small enough to use the index; with statistics both
+forms read the index (1.4 ms and 0.5 ms for the same chunk). SQLite plans ``IN`` lists on
+an index either way.
 """
 
 from __future__ import annotations
 
-from collections.abc import Iterator, Sequence
+from collections.abc import Iterable, Iterator, Sequence
 
 from sqlalchemy import ColumnElement, and_
 
@@ -21,7 +22,7 @@ CHUNK = 500
 """Ids per statement."""
 
 
-def sorted_chunks(ids: Sequence[int] | set[int], size: int = CHUNK) -> Iterator[list[int]]:
+def sorted_chunks(ids: Iterable[int], size: int = CHUNK) -> Iterator[list[int]]:
     """The distinct ids in ascending order, ``size`` at a time."""
     unique = sorted(set(ids))
     for start in range(0, len(unique), size):
@@ -29,5 +30,5 @@ def sorted_chunks(ids: Sequence[int] | set[int], size: int = CHUNK) -> Iterator[
 
 
 def key_in(column: ColumnElement[int], chunk: Sequence[int]) -> ColumnElement[bool]:
-    """``column IN chunk`` with the chunk's range beside it; ``chunk`` sorted ascending."""
-    return and_(column.in_(chunk), column.between(chunk[0], chunk[-1]))
+    """``column IN chunk`` with the chunk's range beside it (``chunk`` not empty)."""
+    return and_(column.in_(chunk), column.between(min(chunk), max(chunk)))
