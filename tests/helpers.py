@@ -5,11 +5,14 @@ from __future__ import annotations
 import copy
 import hashlib
 import uuid
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from sqlalchemy.orm import Session, sessionmaker
 
 from service.store import keys
+
+if TYPE_CHECKING:
+    from service.store.scoring import ScoringContext
 
 TEST_SECRET = "test-draw-secret-not-for-production"
 # An Ed25519 seed for the tests only (SHA-256 of a fixed phrase, so it is not a weak seed).
@@ -83,3 +86,19 @@ def count_rows(factory: sessionmaker[Session], table: str) -> int:
 
     with factory() as session:
         return int(session.execute(text(f"SELECT COUNT(*) FROM {table}")).scalar_one())
+
+
+def live_scoring_context(factory: sessionmaker[Session]) -> ScoringContext:
+    """Policy "readmission" (``make_policy()``) submitted, approved by a second admin and
+    active; the store's scoring context with ``TEST_SECRET``."""
+    from service.store import lifecycle
+    from service.store.scoring import DocumentCache, ScoringContext
+
+    with factory() as s:
+        author = keys.Actor.of(keys.create_key(s, "author", "admin")[0])
+        reviewer = keys.Actor.of(keys.create_key(s, "reviewer", "admin")[0])
+        lifecycle.submit(s, "readmission", make_policy(), author)
+        lifecycle.approve(s, "readmission", 1, reviewer)
+        lifecycle.activate(s, "readmission", 1, author, expected_current=None)
+        s.commit()
+    return ScoringContext(TEST_SECRET.encode(), DocumentCache())

@@ -22,25 +22,17 @@ from service.errors import Conflict, Unprocessable
 from service.policy.document import PolicyDocument
 from service.policy.errors import UnknownGroup
 from service.policy.rules import evaluate
-from service.store import keys, lifecycle
 from service.store.committer import CommitterStopped, GroupCommitter
 from service.store.models import Recommendation
-from service.store.scoring import DocumentCache, ScoringContext, recommend_group
-from tests.helpers import TEST_SECRET, count_rows, make_policy, make_request
+from service.store.scoring import ScoringContext, recommend_group
+from tests.helpers import TEST_SECRET, count_rows, live_scoring_context, make_policy, make_request
 
 SECRET = TEST_SECRET.encode()
 
 
 @pytest.fixture
 def ctx(session_factory: sessionmaker[Session]) -> ScoringContext:
-    with session_factory() as s:
-        author = keys.Actor.of(keys.create_key(s, "author", "admin")[0])
-        reviewer = keys.Actor.of(keys.create_key(s, "reviewer", "admin")[0])
-        lifecycle.submit(s, "readmission", make_policy(), author)
-        lifecycle.approve(s, "readmission", 1, reviewer)
-        lifecycle.activate(s, "readmission", 1, author, expected_current=None)
-        s.commit()
-    return ScoringContext(SECRET, DocumentCache())
+    return live_scoring_context(session_factory)
 
 
 def _req(**overrides: Any) -> RecommendationRequest:

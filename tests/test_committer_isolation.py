@@ -23,24 +23,17 @@ from sqlalchemy.orm import Session, sessionmaker
 
 import service.store.committer as committer_module
 from service.api.recommendation_schemas import RecommendationRequest
-from service.store import decision_pipeline, keys, lifecycle
+from service.store import decision_pipeline
 from service.store.committer import GroupCommitter
-from service.store.scoring import DocumentCache, ScoringContext
-from tests.helpers import TEST_SECRET, count_rows, make_policy, make_request
+from service.store.scoring import ScoringContext
+from tests.helpers import count_rows, live_scoring_context, make_request
 
 GOOD = 10
 
 
 @pytest.fixture
 def ctx(session_factory: sessionmaker[Session]) -> ScoringContext:
-    with session_factory() as s:
-        author = keys.Actor.of(keys.create_key(s, "author", "admin")[0])
-        reviewer = keys.Actor.of(keys.create_key(s, "reviewer", "admin")[0])
-        lifecycle.submit(s, "readmission", make_policy(), author)
-        lifecycle.approve(s, "readmission", 1, reviewer)
-        lifecycle.activate(s, "readmission", 1, author, expected_current=None)
-        s.commit()
-    return ScoringContext(TEST_SECRET.encode(), DocumentCache())
+    return live_scoring_context(session_factory)
 
 
 @pytest.fixture

@@ -16,24 +16,16 @@ from sqlalchemy.orm import Session, sessionmaker
 
 from service.api.recommendation_schemas import RecommendationRequest
 from service.log.records import DecisionRecord
-from service.store import keys, lifecycle
 from service.store.db import is_unavailable
 from service.store.decision_pipeline import DecisionPipeline, fingerprint
 from service.store.recommendations import POSTGRES_COPY_FROM, insert_records, stored_records
-from service.store.scoring import DocumentCache, ScoringContext
-from tests.helpers import TEST_SECRET, count_rows, make_policy, make_request
+from service.store.scoring import ScoringContext
+from tests.helpers import count_rows, live_scoring_context, make_request
 
 
 @pytest.fixture
 def ctx(session_factory: sessionmaker[Session]) -> ScoringContext:
-    with session_factory() as s:
-        author = keys.Actor.of(keys.create_key(s, "author", "admin")[0])
-        reviewer = keys.Actor.of(keys.create_key(s, "reviewer", "admin")[0])
-        lifecycle.submit(s, "readmission", make_policy(), author)
-        lifecycle.approve(s, "readmission", 1, reviewer)
-        lifecycle.activate(s, "readmission", 1, author, expected_current=None)
-        s.commit()
-    return ScoringContext(TEST_SECRET.encode(), DocumentCache())
+    return live_scoring_context(session_factory)
 
 
 def _decided(engine: Engine, ctx: ScoringContext, n: int) -> list[DecisionRecord]:
