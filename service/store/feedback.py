@@ -39,7 +39,6 @@ from service.store.audit_models import FinalDecision, OutcomeRecord
 from service.store.id_chunks import key_in, sorted_chunks
 from service.store.models import Recommendation, utcnow
 
-LOOKUP_CHUNK = 500
 DEFAULT_CLOCK_SKEW = timedelta(minutes=5)
 
 Status = Literal["recorded", "unchanged", "corrected"]
@@ -131,10 +130,9 @@ def _resolve(session: Session, items: Sequence[OutcomeReport]) -> list[_Target |
     names the latest recommendation issued for that case under that policy."""
     by_id: dict[str, _Target] = {}
     named = {i.recommendation_id for i in items if i.recommendation_id is not None}
-    ids = sorted({c for c in map(canonical_recommendation_id, named) if c is not None})
+    ids = {c for c in map(canonical_recommendation_id, named) if c is not None}
     r = Recommendation.__table__.c
-    for start in range(0, len(ids), LOOKUP_CHUNK):
-        chunk = ids[start : start + LOOKUP_CHUNK]
+    for chunk in sorted_chunks(ids):
         rows = session.execute(select(*_target_columns()).where(r.recommendation_id.in_(chunk)))
         for row in rows:
             by_id[row.recommendation_id] = _target(row)
@@ -144,9 +142,7 @@ def _resolve(session: Session, items: Sequence[OutcomeReport]) -> list[_Target |
         if i.recommendation_id is None and i.policy is not None and i.case_id is not None:
             pairs.add((i.policy, i.case_id))
     for policy in sorted({p for p, _ in pairs}):
-        cases = sorted(c for p, c in pairs if p == policy)
-        for start in range(0, len(cases), LOOKUP_CHUNK):
-            chunk = cases[start : start + LOOKUP_CHUNK]
+        for chunk in sorted_chunks(c for p, c in pairs if p == policy):
             found = session.execute(
                 select(*_target_columns(), r.case_id)
                 .where(r.policy == policy, r.case_id.in_(chunk))
